@@ -1,0 +1,221 @@
+"""The public entry point: :func:`open_index` and the :class:`Index` it returns.
+
+The command line, the tests and scripts all go through this surface. The
+embedding model is loaded on first need, so ``status`` never touches it.
+"""
+
+from __future__ import annotations
+
+import fcntl
+import os
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager, suppress
+from dataclasses import dataclass
+from pathlib import Path
+
+from codeseek.config import Settings, load_settings
+from codeseek.embed import Embedder, load_embedder
+from codeseek.errors import (
+    IndexLocked,
+    IndexNotFound,
+    IndexWriteError,
+    ModelMismatch,
+    RepositoryNotFound,
+)
+from codeseek.indexer import ProgressCallback, UpdateSummary, load_vectors, save_vectors
+from codeseek.indexer import update_index as _update_index
+from codeseek.search import Filters, Searcher, SearchHit
+from codeseek.store import DB_NAME, Store
+from codeseek.vectors import HNSW_NAME, VectorIndex
+
+LOCK_NAME = "writer.lock"
+
+
+@dataclass(frozen=True)
+class IndexStatus:
+    """What an index holds and how fresh it is."""
+
+    repo: str
+    index_dir: str
+    files: int
+    units: int
+    languages: dict[str, int]
+    skipped: dict[str, int]
+    files_with_syntax_errors: int
+    model_id: str | None
+    dim: int | None
+    generation: int
+    vectors_in_sync: bool
+    updated_at: float | None
+    bytes_on_disk: int
+
+    def to_json(self) -> dict[str, object]:
+        """A JSON-ready dict."""
+        return dict(self.__dict__)
+
+
+class Index:
+    """One repository's index: update it, search it, ask its status."""
+
+    def __init__(self, settings: Settings, store: Store, embedder: Embedder | None = None) -> None:
+        self.settings = settings
+        self.store = store
+        self._embedder = embedder
+        self._vectors: VectorIndex | None = None
+        self._searcher: Searcher | None = None
+
+    # -- lifecycle -------------------------------------------------------------------
+
+    def close(self) -> None:
+        """Release the store."""
+        self.store.close()
+
+    def __enter__(self) -> Index:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    @property
+    def embedder(self) -> Embedder:
+        """The embedding model, loaded on first use."""
+        if self._embedder is None:
+            self._embedder = load_embedder(self.settings)
+        return self._embedder
+
+    # -- writing ---------------------------------------------------------------------
+
+    def update(self, progress: ProgressCallback | None = None) -> UpdateSummary:
+        """Bring the index up to date with the files on disk."""
+        with self._writer_lock():
+            vectors = self._vectors_for(self.embedder.model_id, self.embedder.dim)
+            summary = _update_index(self.store, self.embedder, vectors, self.settings,
+                                    progress)
+            self._vectors = vectors
+            self._searcher = None
+            return summary
+
+    @contextmanager
+    def _writer_lock(self) -> Iterator[None]:
+        path = self.settings.index_dir / LOCK_NAME
+        try:
+            handle = open(path, "a+")  # noqa: SIM115 - held for the whole update
+        except OSError as exc:
+            raise IndexWriteError(f"{path}: cannot create the lock file: {exc}") from exc
+        try:
+            try:
+                fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+            except BlockingIOError:
+                raise IndexLocked(
+                    f"another codeseek process is updating the index at "
+                    f"{self.settings.index_dir}; wait for it to finish"
+                ) from None
+            yield
+        finally:
+            handle.close()
+
+    # -- reading ---------------------------------------------------------------------
+
+    def _vectors_for(self, model_id: str, dim: int) -> VectorIndex:
+        if self._vectors is not None and self._vectors.dim == dim:
+            return self._vectors
+        manifest = self.store.manifest()
+        if manifest.get("model_id") != model_id:
+            return VectorIndex(dim)  # a new model: every vector is made anew
+        vectors = load_vectors(self.store, model_id, dim, self.settings)
+        if vectors.rebuilt and os.access(self.settings.index_dir, os.W_OK):
+            with suppress(IndexWriteError):  # searching still works from memory
+                save_vectors(self.store, vectors, self.settings)
+        self._vectors = vectors
+        return vectors
+
+    def searcher(self) -> Searcher:
+        """The searcher over this index (loads the model and the vectors)."""
+        if self._searcher is None:
+            manifest = self.store.manifest()
+            built_with = manifest.get("model_id")
+            if built_with is None:
+                raise IndexNotFound(
+                    f"the index at {self.settings.index_dir} is empty; "
+                    "build it with `codeseek index`"
+                )
+            embedder = self.embedder
+            if built_with != embedder.model_id:
+                raise ModelMismatch(
+                    f"the index was built with model {built_with}, not {embedder.model_id}; "
+                    "run `codeseek index` with this model to re-embed"
+                )
+            vectors = self._vectors_for(embedder.model_id, embedder.dim)
+            self._searcher = Searcher(self.store, vectors, embedder, embedder.model_id)
+        return self._searcher
+
+    def search(self, query: str, k: int = 10, *, languages: Sequence[str] = (),
+               paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
+        """The k best units for a natural-language query."""
+        filters = Filters(tuple(languages), tuple(paths), tuple(kinds))
+        return self.searcher().search(query, k, filters)
+
+    def search_many(self, queries: Sequence[str], k: int = 10, *,
+                    languages: Sequence[str] = (), paths: Sequence[str] = (),
+                    kinds: Sequence[str] = ()) -> list[list[SearchHit]]:
+        """The k best units for each of several queries."""
+        filters = Filters(tuple(languages), tuple(paths), tuple(kinds))
+        return self.searcher().search_many(queries, k, filters)
+
+    def status(self) -> IndexStatus:
+        """Counts and freshness; never loads the model."""
+        manifest = self.store.manifest()
+        counts = self.store.counts()
+        generation = self.store.generation()
+        hnsw = self.settings.index_dir / HNSW_NAME
+        size = sum(p.stat().st_size for p in self.settings.index_dir.iterdir() if p.is_file())
+        updated = manifest.get("updated_at")
+        return IndexStatus(
+            repo=str(self.settings.repo), index_dir=str(self.settings.index_dir),
+            files=counts["files"], units=counts["units"], languages=self.store.languages(),
+            skipped=self.store.skipped_counts(),
+            files_with_syntax_errors=counts["files_with_syntax_errors"],
+            model_id=manifest.get("model_id"),
+            dim=int(manifest["dim"]) if "dim" in manifest else None,
+            generation=generation,
+            vectors_in_sync=hnsw.is_file()
+            and manifest.get("hnsw_generation") == str(generation),
+            updated_at=float(updated) if updated else None,
+            bytes_on_disk=size,
+        )
+
+
+def open_index(
+    repo: str | os.PathLike[str] = ".",
+    *,
+    index_dir: str | os.PathLike[str] | None = None,
+    model: str | os.PathLike[str] | None = None,
+    backend: str | None = None,
+    create: bool = False,
+    embedder: Embedder | None = None,
+    settings: Settings | None = None,
+) -> Index:
+    """Open the index of ``repo`` (with ``create``, make it if missing).
+
+    ``embedder`` replaces the configured model (tests pass a FakeEmbedder).
+    """
+    if settings is None:
+        root = Path(repo).expanduser()
+        if not root.is_dir():
+            raise RepositoryNotFound(f"{root}: no such folder")
+        settings = load_settings(root, index_dir=index_dir, model=model, backend=backend)
+    store = Store.open(settings.index_dir, create=create)
+    return Index(settings, store, embedder)
+
+
+def remove_index_files(index_dir: Path) -> None:
+    """Delete the store and vector files of an index (for ``--rebuild``)."""
+    for name in (DB_NAME, DB_NAME + "-wal", DB_NAME + "-shm", HNSW_NAME):
+        try:
+            (index_dir / name).unlink()
+        except FileNotFoundError:
+            continue
+        except OSError as exc:
+            raise IndexWriteError(f"{index_dir / name}: cannot remove: {exc}") from exc
+
+

@@ -1,0 +1,345 @@
+"""The command line: thin, one library call per command.
+
+Each command parses its options, calls the library, prints, and turns a
+:class:`~codeseek.errors.CodeseekError` into one ``error: ...`` line on stderr
+and exit status 1. Heavy modules are imported inside the commands, so
+``codeseek --help`` answers at once.
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import sys
+import time
+from collections.abc import Sequence
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, TextIO
+
+from codeseek import __version__
+from codeseek.errors import CodeseekError, InvalidQuery, RepositoryNotFound
+
+if TYPE_CHECKING:
+    from codeseek.api import Index
+    from codeseek.indexer import UpdateSummary
+    from codeseek.search import SearchHit
+
+EXIT_OK = 0
+EXIT_ERROR = 1
+EXIT_USAGE = 2
+EXIT_INTERRUPTED = 130
+
+DESCRIPTION = """\
+Search a source repository by meaning: ask in plain words, get the functions,
+methods and classes that do it, ranked, with file and line."""
+
+EPILOG = """\
+examples:
+  codeseek index                      build or refresh the index of this repository
+  codeseek search "retry failed uploads"
+  codeseek search "parse the config file" --lang python -k 5 --json
+  codeseek outline src/billing.py     list the units codeseek extracts from a file"""
+
+
+def _common_index_options(parser: argparse.ArgumentParser, *, model: bool = True) -> None:
+    parser.add_argument("--index-dir", metavar="DIR",
+                        help="index folder (default: <repo>/.codeseek)")
+    if model:
+        parser.add_argument("--model", metavar="PATH",
+                            help="local sentence-transformers model folder "
+                                 "(default: the packaged all-MiniLM-L6-v2)")
+        parser.add_argument("--backend", choices=("onnx", "torch", "fake"),
+                            help="embedding backend (default: onnx)")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    """The argument parser of every command."""
+    parser = argparse.ArgumentParser(
+        prog="codeseek", description=DESCRIPTION, epilog=EPILOG,
+        formatter_class=argparse.RawDescriptionHelpFormatter,
+    )
+    parser.add_argument("--version", action="version", version=f"codeseek {__version__}")
+    commands = parser.add_subparsers(dest="command", metavar="COMMAND")
+
+    index = commands.add_parser("index", help="build or bring up to date the index of a repository",
+                                description="Build the index of a repository, or bring it up "
+                                            "to date; only changed files are parsed and only "
+                                            "new code is embedded.")
+    index.add_argument("path", nargs="?", default=".", metavar="PATH",
+                       help="repository root (default: the current folder)")
+    _common_index_options(index)
+    index.add_argument("--rebuild", action="store_true",
+                       help="discard the existing index and build it from scratch")
+    index.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+
+    search = commands.add_parser("search", help="rank the units that match a query",
+                                 description="Rank the functions, methods and classes that "
+                                             "match a natural-language query.")
+    search.add_argument("query", nargs="?", metavar="QUERY", help="what you are looking for")
+    search.add_argument("--repo", metavar="PATH",
+                        help="repository root (default: the current folder's repository)")
+    search.add_argument("-k", type=int, default=10, metavar="N",
+                        help="number of results (default: 10)")
+    search.add_argument("--lang", action="append", default=[], metavar="L",
+                        help="only this language (repeatable)")
+    search.add_argument("--path", action="append", default=[], metavar="GLOB",
+                        help="only files matching this gitignore-style glob (repeatable)")
+    search.add_argument("--kind", action="append", default=[], metavar="K",
+                        help="only this kind: function, method or class (repeatable)")
+    search.add_argument("--json", action="store_true", help="one JSON object per hit (JSON Lines)")
+    search.add_argument("--batch", metavar="FILE",
+                        help="read one query per line from FILE (- for stdin); "
+                             "answers in JSON Lines")
+    _common_index_options(search)
+
+    status = commands.add_parser("status", help="what the index holds and how fresh it is",
+                                 description="Show what the index holds, what was left out "
+                                             "and why, and whether it is up to date.")
+    status.add_argument("path", nargs="?", default=None, metavar="PATH",
+                        help="repository root (default: the current folder's repository)")
+    _common_index_options(status, model=False)
+    status.add_argument("--json", action="store_true", help="one JSON object")
+
+    outline = commands.add_parser("outline", help="list the units extracted from a file or tree",
+                                  description="List the units codeseek extracts from a file or "
+                                              "a folder, without an index or a model.")
+    outline.add_argument("path", metavar="PATH", help="a source file or a folder")
+    outline.add_argument("--json", action="store_true", help="one JSON object per unit")
+    return parser
+
+
+def find_repo_root(start: Path) -> Path:
+    """The nearest folder at or above ``start`` that holds an index or a .git folder."""
+    start = start.resolve()
+    for folder in (start, *start.parents):
+        if (folder / ".codeseek").is_dir():
+            return folder
+    for folder in (start, *start.parents):
+        if (folder / ".git").exists():
+            return folder
+    return start
+
+
+def _open(repo: str | None, args: argparse.Namespace, *, create: bool) -> Index:
+    from codeseek.api import open_index
+
+    root = Path(repo) if repo else find_repo_root(Path.cwd())
+    if not root.is_dir():
+        raise RepositoryNotFound(f"{root}: no such folder")
+    return open_index(root, index_dir=args.index_dir, model=getattr(args, "model", None),
+                      backend=getattr(args, "backend", None), create=create)
+
+
+# -- index -------------------------------------------------------------------------
+
+
+def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    from codeseek.api import remove_index_files
+    from codeseek.config import load_settings
+
+    if args.rebuild:
+        settings = load_settings(args.path, index_dir=args.index_dir)
+        remove_index_files(settings.index_dir)
+    with _open(args.path, args, create=True) as index:
+        if args.quiet or not err.isatty():
+            summary = index.update(progress=_LineProgress(err) if not args.quiet else None)
+        else:
+            summary = _update_with_bar(index, err)
+    print(format_summary(summary), file=out)
+    for path in summary.syntax_warnings[:20]:
+        print(f"warning: {path}: syntax errors; indexed the units that could be recovered",
+              file=err)
+    if len(summary.syntax_warnings) > 20:
+        print(f"warning: {len(summary.syntax_warnings) - 20} more files with syntax errors "
+              "(see `codeseek status`)", file=err)
+    return EXIT_OK
+
+
+class _LineProgress:
+    """Progress for a non-terminal stderr: one line when each stage starts."""
+
+    def __init__(self, err: TextIO) -> None:
+        self.err = err
+        self.stage = ""
+
+    def __call__(self, stage: str, done: int, total: int) -> None:
+        if stage != self.stage:
+            self.stage = stage
+            label = {"scan": "scanning files", "parse": "parsing changed files",
+                     "embed": f"embedding {total} new units", "save": "saving"}.get(stage, stage)
+            print(f"codeseek: {label}", file=self.err, flush=True)
+
+
+def _update_with_bar(index: Index, err: TextIO) -> UpdateSummary:
+    from rich.console import Console
+    from rich.progress import (
+        BarColumn,
+        MofNCompleteColumn,
+        Progress,
+        TextColumn,
+        TimeRemainingColumn,
+    )
+
+    console = Console(file=err)
+    with Progress(TextColumn("{task.description:<8}"), BarColumn(), MofNCompleteColumn(),
+                  TimeRemainingColumn(), console=console, transient=True) as bar:
+        tasks: dict[str, Any] = {}
+
+        def progress(stage: str, done: int, total: int) -> None:
+            if stage not in tasks:
+                tasks[stage] = bar.add_task(stage, total=total or None)
+            bar.update(tasks[stage], completed=done, total=total or None)
+
+        return index.update(progress=progress)
+
+
+def format_summary(summary: UpdateSummary) -> str:
+    """The one line printed after indexing."""
+    skipped = sum(summary.skipped.values())
+    return (f"indexed {summary.files} files, {summary.units} units: "
+            f"{summary.added} added, {summary.changed} changed, {summary.removed} removed, "
+            f"{summary.embedded} embedded, {skipped} files skipped, "
+            f"{summary.seconds:.1f} s")
+
+
+# -- search ------------------------------------------------------------------------
+
+
+def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    if args.batch is None and args.query is None:
+        raise InvalidQuery("give a QUERY or --batch FILE")
+    if args.batch is not None and args.query is not None:
+        raise InvalidQuery("give a QUERY or --batch FILE, not both")
+    with _open(args.repo, args, create=False) as index:
+        options = {"languages": args.lang, "paths": args.path, "kinds": args.kind}
+        if args.batch is not None:
+            queries = _read_batch(args.batch)
+            for hits in index.search_many(queries, args.k, **options) if queries else []:
+                _print_json(hits, out)
+            return EXIT_OK
+        hits = index.search(args.query, args.k, **options)
+    if args.json:
+        _print_json(hits, out)
+    else:
+        _print_hits(hits, out)
+    return EXIT_OK
+
+
+def _read_batch(source: str) -> list[str]:
+    try:
+        text = sys.stdin.read() if source == "-" else Path(source).read_text(encoding="utf-8")
+    except (OSError, UnicodeDecodeError) as exc:
+        raise InvalidQuery(f"{source}: cannot read the batch file: {exc}") from exc
+    return [line.strip() for line in text.splitlines() if line.strip()]
+
+
+def _print_json(hits: Sequence[SearchHit], out: TextIO) -> None:
+    for hit in hits:
+        out.write(json.dumps(hit.to_json(), ensure_ascii=False) + "\n")
+
+
+def _print_hits(hits: Sequence[SearchHit], out: TextIO) -> None:
+    if not hits:
+        print("no matches; try other words or fewer filters", file=out)
+        return
+    for hit in hits:
+        print(f"{hit.rank:>2}. {hit.qualname}  [{hit.kind}, {hit.language}]  "
+              f"{hit.path}:{hit.start_line}", file=out)
+        if hit.doc_summary:
+            print(f"    {_clip(hit.doc_summary, 100)}", file=out)
+        for number, line in enumerate(hit.snippet.splitlines()[:3], hit.start_line):
+            print(f"    {number:>5} | {_clip(line, 90)}", file=out)
+        print(file=out)
+
+
+def _clip(text: str, width: int) -> str:
+    return text if len(text) <= width else text[: width - 3] + "..."
+
+
+# -- status ------------------------------------------------------------------------
+
+
+def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    with _open(args.path, args, create=False) as index:
+        status = index.status()
+    if args.json:
+        out.write(json.dumps(status.to_json(), ensure_ascii=False) + "\n")
+        return EXIT_OK
+    updated = (time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(status.updated_at))
+               if status.updated_at else "never")
+    print(f"repository   {status.repo}", file=out)
+    print(f"index        {status.index_dir} ({status.bytes_on_disk / 1e6:.1f} MB)", file=out)
+    print(f"model        {status.model_id or 'none yet'} ({status.dim or '-'} dimensions)",
+          file=out)
+    print(f"contents     {status.files} files, {status.units} units", file=out)
+    for language, count in sorted(status.languages.items()):
+        print(f"             {count:>6} {language}", file=out)
+    print(f"updated      {updated} (generation {status.generation}; vector index "
+          f"{'in sync' if status.vectors_in_sync else 'will be rebuilt on next search'})",
+          file=out)
+    if status.files_with_syntax_errors:
+        print(f"warnings     {status.files_with_syntax_errors} files with syntax errors",
+              file=out)
+    if status.skipped:
+        print("left out", file=out)
+        for reason, count in sorted(status.skipped.items(), key=lambda kv: -kv[1]):
+            print(f"             {count:>6} {reason}", file=out)
+    return EXIT_OK
+
+
+# -- outline -----------------------------------------------------------------------
+
+
+def cmd_outline(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    from codeseek.outline import outline_path
+
+    for unit in outline_path(Path(args.path)):
+        if args.json:
+            record = {
+                "path": unit.path, "language": unit.language, "kind": unit.kind,
+                "name": unit.name, "qualname": unit.qualname, "signature": unit.signature,
+                "start_line": unit.start_line, "end_line": unit.end_line,
+                "has_doc": bool(unit.doc), "doc_summary": unit.doc_summary,
+            }
+            out.write(json.dumps(record, ensure_ascii=False) + "\n")
+        else:
+            out.write(f"{unit.path}:{unit.start_line}-{unit.end_line} {unit.kind} "
+                      f"{unit.qualname}\n")
+    return EXIT_OK
+
+
+COMMANDS = {"index": cmd_index, "search": cmd_search, "status": cmd_status,
+            "outline": cmd_outline}
+
+
+def main(argv: Sequence[str] | None = None, out: TextIO | None = None,
+         err: TextIO | None = None) -> int:
+    """Run one command; returns the exit status."""
+    out = out or sys.stdout
+    err = err or sys.stderr
+    parser = build_parser()
+    args = parser.parse_args(argv)
+    if args.command is None:
+        parser.print_help(out)
+        return EXIT_USAGE
+    os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
+    try:
+        return COMMANDS[args.command](args, out, err)
+    except CodeseekError as exc:
+        print(f"error: {exc}", file=err)
+        return EXIT_ERROR
+    except KeyboardInterrupt:
+        print("error: interrupted; the index keeps what was committed", file=err)
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        return EXIT_OK
+
+
+def run() -> None:
+    """Console-script entry point."""
+    sys.exit(main())
+
+
+if __name__ == "__main__":
+    run()

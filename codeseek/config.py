@@ -1,0 +1,154 @@
+"""Settings, in one place.
+
+Precedence, highest first: explicit arguments (command-line options), then
+environment variables, then ``codeseek.toml`` at the repository root, then the
+defaults below. The environment variables codeseek reads are listed in
+:data:`ENV_VARS` (README documents them) and are read nowhere else.
+"""
+
+from __future__ import annotations
+
+import os
+import tomllib
+from collections.abc import Mapping
+from dataclasses import dataclass, field, replace
+from pathlib import Path
+from typing import Any
+
+from codeseek.errors import ConfigError
+
+INDEX_DIR_NAME = ".codeseek"
+CONFIG_FILE_NAME = "codeseek.toml"
+DEFAULT_BACKEND = "onnx"
+BACKENDS = ("onnx", "torch", "fake")
+DEFAULT_MAX_FILE_BYTES = 1024 * 1024
+DEFAULT_BATCH_SIZE = 32
+DEFAULT_TOP_K = 10
+
+ENV_VARS: dict[str, str] = {
+    "CODESEEK_INDEX_DIR": "folder of the index (default: <repo>/.codeseek)",
+    "CODESEEK_MODEL": "path of a local sentence-transformers model folder",
+    "CODESEEK_BACKEND": "embedding backend: onnx (default), torch or fake",
+    "CODESEEK_CACHE_DIR": "where the exported ONNX model is cached "
+    "(default: $XDG_CACHE_HOME/codeseek or ~/.cache/codeseek)",
+    "CODESEEK_MAX_FILE_BYTES": "files larger than this are skipped (default 1048576)",
+}
+
+
+@dataclass(frozen=True)
+class Settings:
+    """Everything that changes how a repository is indexed and searched.
+
+    Attributes:
+        repo: the repository root (absolute).
+        index_dir: the index folder (absolute).
+        model: a local sentence-transformers folder, or None for the packaged default.
+        backend: ``onnx`` (default), ``torch`` (the reference) or ``fake`` (tests).
+        max_file_bytes: larger files are skipped with a counted reason.
+        exclude: extra gitignore-style patterns that are never indexed.
+        include_vendored: index ``vendor/`` and similar dependency folders too.
+        batch_size: texts per embedding batch.
+        cache_dir: where derived model files (the ONNX export) are cached.
+    """
+
+    repo: Path
+    index_dir: Path
+    model: Path | None = None
+    backend: str = DEFAULT_BACKEND
+    max_file_bytes: int = DEFAULT_MAX_FILE_BYTES
+    exclude: tuple[str, ...] = ()
+    include_vendored: bool = False
+    batch_size: int = DEFAULT_BATCH_SIZE
+    cache_dir: Path = field(default_factory=lambda: default_cache_dir(os.environ))
+
+    def with_changes(self, **changes: Any) -> Settings:
+        """A copy with some fields replaced."""
+        return replace(self, **changes)
+
+
+def default_cache_dir(env: Mapping[str, str]) -> Path:
+    """The user's cache folder for codeseek."""
+    if env.get("CODESEEK_CACHE_DIR"):
+        return Path(env["CODESEEK_CACHE_DIR"]).expanduser()
+    base = env.get("XDG_CACHE_HOME") or str(Path.home() / ".cache")
+    return Path(base).expanduser() / "codeseek"
+
+
+def load_settings(
+    repo: str | os.PathLike[str],
+    *,
+    index_dir: str | os.PathLike[str] | None = None,
+    model: str | os.PathLike[str] | None = None,
+    backend: str | None = None,
+    env: Mapping[str, str] | None = None,
+) -> Settings:
+    """Build the settings for ``repo`` from arguments, environment and codeseek.toml."""
+    env = os.environ if env is None else env
+    root = Path(repo).expanduser().resolve()
+    file_values = _read_config_file(root / CONFIG_FILE_NAME)
+
+    def pick(arg: Any, env_name: str, key: str) -> Any:
+        if arg is not None:
+            return arg
+        if env.get(env_name):
+            return env[env_name]
+        return file_values.get(key)
+
+    chosen_index = pick(index_dir, "CODESEEK_INDEX_DIR", "index_dir")
+    index_path = (
+        _resolve_against(root, chosen_index) if chosen_index else root / INDEX_DIR_NAME
+    )
+    chosen_model = pick(model, "CODESEEK_MODEL", "model")
+    chosen_backend = str(pick(backend, "CODESEEK_BACKEND", "backend") or DEFAULT_BACKEND)
+    if chosen_backend not in BACKENDS:
+        raise ConfigError(
+            f"unknown embedding backend {chosen_backend!r}; choose one of: {', '.join(BACKENDS)}"
+        )
+    max_bytes = pick(None, "CODESEEK_MAX_FILE_BYTES", "max_file_bytes")
+    exclude = file_values.get("exclude", [])
+    if not isinstance(exclude, list) or not all(isinstance(p, str) for p in exclude):
+        raise ConfigError(f"{root / CONFIG_FILE_NAME}: 'exclude' must be a list of patterns")
+    return Settings(
+        repo=root,
+        index_dir=index_path,
+        model=_resolve_against(root, chosen_model) if chosen_model else None,
+        backend=chosen_backend,
+        max_file_bytes=_positive_int(max_bytes, "max_file_bytes", DEFAULT_MAX_FILE_BYTES),
+        exclude=tuple(exclude),
+        include_vendored=bool(file_values.get("include_vendored", False)),
+        batch_size=_positive_int(
+            file_values.get("batch_size"), "batch_size", DEFAULT_BATCH_SIZE
+        ),
+        cache_dir=default_cache_dir(env),
+    )
+
+
+def _resolve_against(root: Path, value: str | os.PathLike[str]) -> Path:
+    path = Path(value).expanduser()
+    return path if path.is_absolute() else (Path.cwd() / path).resolve()
+
+
+def _positive_int(value: Any, name: str, default: int) -> int:
+    if value is None or value == "":
+        return default
+    try:
+        number = int(value)
+    except (TypeError, ValueError):
+        raise ConfigError(f"{name} must be a whole number, not {value!r}") from None
+    if number <= 0:
+        raise ConfigError(f"{name} must be positive, not {number}")
+    return number
+
+
+def _read_config_file(path: Path) -> dict[str, Any]:
+    try:
+        with path.open("rb") as handle:
+            data = tomllib.load(handle)
+    except FileNotFoundError:
+        return {}
+    except (OSError, tomllib.TOMLDecodeError) as exc:
+        raise ConfigError(f"{path}: cannot read settings: {exc}") from exc
+    section = data.get("codeseek", data)
+    if not isinstance(section, dict):
+        raise ConfigError(f"{path}: [codeseek] must be a table")
+    return section

@@ -1,0 +1,72 @@
+"""The exception family of codeseek.
+
+Every error a user can cause or meet is a :class:`CodeseekError`; the command
+line turns one into a single ``error: ...`` line and a non-zero exit status.
+Third-party errors (sqlite3, hnswlib, tree-sitter, onnxruntime) are translated
+where they are raised, with ``raise ... from exc``.
+
+::
+
+    CodeseekError
+    ├── ConfigError              a bad setting in codeseek.toml or the environment
+    ├── RepositoryNotFound       the path to index or search is not a folder
+    ├── IndexNotFound            no index has been built for this repository yet
+    ├── IndexCorrupt             the SQLite store cannot be read; rebuild it
+    ├── IndexFormatMismatch      the index was written by another format version
+    ├── IndexLocked              another process holds the index for writing
+    ├── IndexWriteError          the index could not be written (disk full, ...)
+    ├── ModelUnavailable         the embedding model folder is missing or broken
+    ├── ModelMismatch            the index was built with another model
+    ├── UnsupportedLanguage      a language name codeseek does not know
+    └── InvalidQuery             an empty query or a bad filter
+"""
+
+from __future__ import annotations
+
+
+class CodeseekError(Exception):
+    """Base class: a condition the user can read about and act on."""
+
+
+class ConfigError(CodeseekError):
+    """A setting in codeseek.toml or an environment variable is invalid."""
+
+
+class RepositoryNotFound(CodeseekError):
+    """The repository path does not exist or is not a folder."""
+
+
+class IndexNotFound(CodeseekError):
+    """No index exists yet for the repository."""
+
+
+class IndexCorrupt(CodeseekError):
+    """The index store cannot be read."""
+
+
+class IndexFormatMismatch(CodeseekError):
+    """The index on disk was written by an incompatible version of codeseek."""
+
+
+class IndexLocked(CodeseekError):
+    """Another process is writing the index."""
+
+
+class IndexWriteError(CodeseekError):
+    """Writing the index failed (for example, the disk is full)."""
+
+
+class ModelUnavailable(CodeseekError):
+    """The embedding model cannot be found or loaded."""
+
+
+class ModelMismatch(CodeseekError):
+    """The index holds vectors of a different model than the one requested."""
+
+
+class UnsupportedLanguage(CodeseekError):
+    """A language name that is not in the registry."""
+
+
+class InvalidQuery(CodeseekError):
+    """The query or one of its filters cannot be used."""

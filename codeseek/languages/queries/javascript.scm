@@ -1,0 +1,12 @@
+; JavaScript units. Arrow functions and function expressions count when bound
+; to a name; the name's declaration is the unit's node so its JSDoc is found.
+(function_declaration name: (identifier) @name) @function
+(generator_function_declaration name: (identifier) @name) @function
+(method_definition name: (_) @name) @function
+(class_declaration name: (_) @name) @class
+(variable_declarator
+  name: (identifier) @name
+  value: [(arrow_function) (function_expression)]) @function
+(assignment_expression
+  left: (member_expression property: (property_identifier) @name)
+  right: [(arrow_function) (function_expression)]) @function

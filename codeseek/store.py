@@ -1,0 +1,470 @@
+"""The SQLite store: the index's source of truth.
+
+Tables: ``manifest`` (format version, model id, dimension, generation),
+``migrations``, ``files``, ``units``, ``vectors`` (float32 BLOBs keyed by
+content hash and model id, so a unit that moves or comes back is never
+embedded twice), ``units_fts`` (FTS5 over identifier-split names, signature,
+doc and code) and ``skipped`` (files left out, with their reason). The
+database runs in WAL mode; every change is one transaction. sqlite3 errors
+are translated here into codeseek's own.
+"""
+
+from __future__ import annotations
+
+import os
+import sqlite3
+import time
+from collections.abc import Iterable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from codeseek.errors import IndexCorrupt, IndexFormatMismatch, IndexNotFound, IndexWriteError
+from codeseek.units import CodeUnit
+
+DB_NAME = "index.sqlite3"
+FORMAT_VERSION = 1
+
+# Migrations: version -> statements. A new format adds a new entry; the store
+# applies what the file lacks, in order, inside one transaction.
+MIGRATIONS: dict[int, tuple[str, ...]] = {
+    1: (
+        """CREATE TABLE manifest (key TEXT PRIMARY KEY, value TEXT NOT NULL)""",
+        """CREATE TABLE files (
+            id INTEGER PRIMARY KEY,
+            path TEXT NOT NULL UNIQUE,
+            language TEXT NOT NULL,
+            size INTEGER NOT NULL,
+            mtime_ns INTEGER NOT NULL,
+            sha256 TEXT NOT NULL,
+            has_errors INTEGER NOT NULL DEFAULT 0,
+            indexed_at REAL NOT NULL)""",
+        """CREATE TABLE units (
+            id INTEGER PRIMARY KEY AUTOINCREMENT,
+            file_id INTEGER NOT NULL REFERENCES files(id) ON DELETE CASCADE,
+            uid TEXT NOT NULL UNIQUE,
+            kind TEXT NOT NULL,
+            name TEXT NOT NULL,
+            qualname TEXT NOT NULL,
+            signature TEXT NOT NULL,
+            doc TEXT NOT NULL,
+            start_line INTEGER NOT NULL,
+            end_line INTEGER NOT NULL,
+            code TEXT NOT NULL,
+            doc_start INTEGER,
+            doc_end INTEGER,
+            ordinal INTEGER NOT NULL DEFAULT 0,
+            content_hash TEXT NOT NULL)""",
+        "CREATE INDEX units_file ON units(file_id)",
+        "CREATE INDEX units_hash ON units(content_hash)",
+        """CREATE TABLE vectors (
+            content_hash TEXT NOT NULL,
+            model_id TEXT NOT NULL,
+            vector BLOB NOT NULL,
+            PRIMARY KEY (content_hash, model_id)) WITHOUT ROWID""",
+        """CREATE VIRTUAL TABLE units_fts USING fts5(
+            names, signature, doc, code, tokenize = 'porter unicode61')""",
+        """CREATE TABLE skipped (path TEXT PRIMARY KEY, reason TEXT NOT NULL)""",
+    ),
+}
+
+
+@dataclass(frozen=True)
+class FileRow:
+    """What the store knows of one indexed file."""
+
+    id: int
+    path: str
+    language: str
+    size: int
+    mtime_ns: int
+    sha256: str
+
+
+@dataclass(frozen=True)
+class StoredUnit:
+    """A unit as stored, with its row id (also its label in the vector index)."""
+
+    id: int
+    unit: CodeUnit
+    content_hash: str
+
+
+def _translate(exc: sqlite3.Error, path: Path) -> Exception:
+    text = str(exc)
+    if isinstance(exc, sqlite3.OperationalError) and (
+        "disk" in text or "full" in text or "readonly" in text or "unable to open" in text
+    ):
+        return IndexWriteError(f"{path}: cannot write the index: {text}")
+    return IndexCorrupt(
+        f"{path}: the index store is unreadable ({text}); "
+        "rebuild it with `codeseek index --rebuild`"
+    )
+
+
+class Store:
+    """One open SQLite index store."""
+
+    def __init__(self, connection: sqlite3.Connection, path: Path) -> None:
+        self._db = connection
+        self.path = path
+
+    # -- opening -----------------------------------------------------------------
+
+    @classmethod
+    def open(cls, index_dir: Path, *, create: bool) -> Store:
+        """Open (and with ``create``, make) the store in ``index_dir``."""
+        path = index_dir / DB_NAME
+        if not path.exists():
+            if not create:
+                raise IndexNotFound(
+                    f"no index at {index_dir}; build one with `codeseek index`"
+                )
+            make_index_dir(index_dir)
+        try:
+            db = sqlite3.connect(path, timeout=30.0, check_same_thread=False,
+                                 isolation_level=None)
+            db.execute("PRAGMA journal_mode=WAL")
+            db.execute("PRAGMA synchronous=NORMAL")
+            db.execute("PRAGMA foreign_keys=ON")
+            store = cls(db, path)
+            store._migrate(create)
+        except sqlite3.Error as exc:
+            raise _translate(exc, path) from exc
+        return store
+
+    def close(self) -> None:
+        """Close the connection."""
+        self._db.close()
+
+    def _migrate(self, create: bool) -> None:
+        self._db.execute(
+            "CREATE TABLE IF NOT EXISTS migrations (version INTEGER PRIMARY KEY, applied_at REAL)"
+        )
+        done = {row[0] for row in self._db.execute("SELECT version FROM migrations")}
+        newest = max(done, default=0)
+        if newest > FORMAT_VERSION:
+            raise IndexFormatMismatch(
+                f"{self.path}: the index has format {newest}, this codeseek reads up to "
+                f"{FORMAT_VERSION}; upgrade codeseek or rebuild with `codeseek index --rebuild`"
+            )
+        pending = [v for v in sorted(MIGRATIONS) if v not in done]
+        if pending and done == set() and not create:
+            raise IndexNotFound(f"no index at {self.path.parent}; build one with `codeseek index`")
+        for version in pending:
+            with self.transaction():
+                for statement in MIGRATIONS[version]:
+                    self._db.execute(statement)
+                self._db.execute(
+                    "INSERT INTO migrations VALUES (?, ?)", (version, time.time())
+                )
+                self._set("format_version", str(version))
+
+    # -- transactions and the manifest ---------------------------------------------
+
+    @contextmanager
+    def transaction(self) -> Iterator[None]:
+        """One atomic change; sqlite3 errors become codeseek errors."""
+        try:
+            self._db.execute("BEGIN IMMEDIATE")
+        except sqlite3.Error as exc:
+            raise _translate(exc, self.path) from exc
+        try:
+            yield
+        except BaseException:
+            self._db.execute("ROLLBACK")
+            raise
+        try:
+            self._db.execute("COMMIT")
+        except sqlite3.Error as exc:
+            self._db.execute("ROLLBACK")
+            raise _translate(exc, self.path) from exc
+
+    def _set(self, key: str, value: str) -> None:
+        self._db.execute(
+            "INSERT INTO manifest VALUES (?, ?) "
+            "ON CONFLICT(key) DO UPDATE SET value=excluded.value",
+            (key, value),
+        )
+
+    def manifest(self) -> dict[str, str]:
+        """The manifest as a dict."""
+        return dict(self._query("SELECT key, value FROM manifest"))
+
+    def set_manifest(self, **values: str) -> None:
+        """Write manifest keys (inside the caller's transaction if there is one)."""
+        try:
+            for key, value in values.items():
+                self._set(key, value)
+        except sqlite3.Error as exc:
+            raise _translate(exc, self.path) from exc
+
+    def generation(self) -> int:
+        """The number of committed changes so far."""
+        return int(self.manifest().get("generation", "0"))
+
+    def _query(self, sql: str, params: Sequence[object] = ()) -> list[tuple]:
+        try:
+            return self._db.execute(sql, params).fetchall()
+        except sqlite3.Error as exc:
+            raise _translate(exc, self.path) from exc
+
+    def _exec(self, sql: str, params: Sequence[object] = ()) -> sqlite3.Cursor:
+        try:
+            return self._db.execute(sql, params)
+        except sqlite3.Error as exc:
+            raise _translate(exc, self.path) from exc
+
+    # -- files and units -----------------------------------------------------------
+
+    def file_rows(self) -> dict[str, FileRow]:
+        """Every indexed file, by path."""
+        rows = self._query("SELECT id, path, language, size, mtime_ns, sha256 FROM files")
+        return {row[1]: FileRow(*row) for row in rows}
+
+    def touch_file(self, file_id: int, size: int, mtime_ns: int) -> None:
+        """Record a new size and mtime for a file whose content did not change."""
+        self._exec("UPDATE files SET size=?, mtime_ns=? WHERE id=?", (size, mtime_ns, file_id))
+
+    def upsert_file(self, path: str, language: str, size: int, mtime_ns: int, sha256: str,
+                    has_errors: bool) -> int:
+        """Insert or update a file row; returns its id."""
+        self._exec(
+            """INSERT INTO files (path, language, size, mtime_ns, sha256, has_errors, indexed_at)
+               VALUES (?, ?, ?, ?, ?, ?, ?)
+               ON CONFLICT(path) DO UPDATE SET language=excluded.language, size=excluded.size,
+                 mtime_ns=excluded.mtime_ns, sha256=excluded.sha256,
+                 has_errors=excluded.has_errors, indexed_at=excluded.indexed_at""",
+            (path, language, size, mtime_ns, sha256, int(has_errors), time.time()),
+        )
+        return int(self._query("SELECT id FROM files WHERE path=?", (path,))[0][0])
+
+    def unit_keys_of_file(self, file_id: int) -> dict[str, tuple[int, str]]:
+        """uid -> (row id, content hash) for one file's units."""
+        rows = self._query("SELECT uid, id, content_hash FROM units WHERE file_id=?", (file_id,))
+        return {uid: (uid_id, digest) for uid, uid_id, digest in rows}
+
+    def insert_unit(self, file_id: int, unit: CodeUnit, content_hash: str) -> int:
+        """Add one unit and its lexical entry; returns its row id."""
+        doc_start, doc_end = unit.doc_span if unit.doc_span else (None, None)
+        cursor = self._exec(
+            """INSERT INTO units (file_id, uid, kind, name, qualname, signature, doc, start_line,
+                 end_line, code, doc_start, doc_end, ordinal, content_hash)
+               VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
+            (file_id, unit.uid, unit.kind, unit.name, unit.qualname, unit.signature, unit.doc,
+             unit.start_line, unit.end_line, unit.code, doc_start, doc_end, unit.ordinal,
+             content_hash),
+        )
+        row_id = int(cursor.lastrowid or 0)
+        fields = unit.lexical_fields()
+        self._exec(
+            "INSERT INTO units_fts (rowid, names, signature, doc, code) VALUES (?, ?, ?, ?, ?)",
+            (row_id, fields["names"], fields["signature"], fields["doc"], fields["code"]),
+        )
+        return row_id
+
+    def update_unit_position(self, row_id: int, unit: CodeUnit) -> None:
+        """Refresh where an unchanged unit now stands (its lines moved)."""
+        doc_start, doc_end = unit.doc_span if unit.doc_span else (None, None)
+        self._exec(
+            """UPDATE units SET start_line=?, end_line=?, code=?, signature=?, doc_start=?,
+                 doc_end=? WHERE id=?""",
+            (unit.start_line, unit.end_line, unit.code, unit.signature, doc_start, doc_end,
+             row_id),
+        )
+
+    def delete_units(self, row_ids: Iterable[int]) -> None:
+        """Remove units and their lexical entries."""
+        for row_id in row_ids:
+            self._exec("DELETE FROM units_fts WHERE rowid=?", (row_id,))
+            self._exec("DELETE FROM units WHERE id=?", (row_id,))
+
+    def delete_file(self, file_id: int) -> list[int]:
+        """Remove a file and its units; returns the removed unit ids."""
+        ids = [row[0] for row in self._query("SELECT id FROM units WHERE file_id=?", (file_id,))]
+        self.delete_units(ids)
+        self._exec("DELETE FROM files WHERE id=?", (file_id,))
+        return ids
+
+    def replace_skipped(self, skipped: Iterable[tuple[str, str]]) -> None:
+        """Record the files left out by the latest scan."""
+        self._exec("DELETE FROM skipped")
+        self._db.executemany("INSERT OR REPLACE INTO skipped VALUES (?, ?)", list(skipped))
+
+    def skipped_counts(self) -> dict[str, int]:
+        """Files left out by the latest scan, counted by reason."""
+        return dict(self._query("SELECT reason, COUNT(*) FROM skipped GROUP BY reason"))
+
+    def counts(self) -> dict[str, int]:
+        """How many files and units the index holds."""
+        files = self._query("SELECT COUNT(*) FROM files")[0][0]
+        units = self._query("SELECT COUNT(*) FROM units")[0][0]
+        errors = self._query("SELECT COUNT(*) FROM files WHERE has_errors")[0][0]
+        return {"files": int(files), "units": int(units), "files_with_syntax_errors": int(errors)}
+
+    def languages(self) -> dict[str, int]:
+        """Units per language."""
+        return dict(self._query(
+            "SELECT f.language, COUNT(*) FROM units u JOIN files f ON f.id=u.file_id "
+            "GROUP BY f.language"
+        ))
+
+    _UNIT_COLUMNS = (
+        "u.id, f.path, f.language, u.kind, u.name, u.qualname, u.signature, u.doc, "
+        "u.start_line, u.end_line, u.code, u.doc_start, u.doc_end, u.ordinal, u.content_hash"
+    )
+
+    def units_by_ids(self, row_ids: Sequence[int]) -> dict[int, StoredUnit]:
+        """Stored units by row id (missing ids are left out)."""
+        found: dict[int, StoredUnit] = {}
+        for start in range(0, len(row_ids), 500):
+            chunk = list(row_ids[start : start + 500])
+            marks = ",".join("?" * len(chunk))
+            rows = self._query(
+                f"SELECT {self._UNIT_COLUMNS} FROM units u JOIN files f ON f.id=u.file_id "
+                f"WHERE u.id IN ({marks})",
+                chunk,
+            )
+            for row in rows:
+                found[row[0]] = _stored_unit(row)
+        return found
+
+    def iter_units(self) -> Iterator[StoredUnit]:
+        """Every stored unit, in row id order."""
+        rows = self._query(
+            f"SELECT {self._UNIT_COLUMNS} FROM units u JOIN files f ON f.id=u.file_id "
+            "ORDER BY u.id"
+        )
+        for row in rows:
+            yield _stored_unit(row)
+
+    def filtered_ids(self, languages: Sequence[str], kinds: Sequence[str]) -> list[int]:
+        """Unit ids of the given languages and kinds (empty sequence: any)."""
+        where: list[str] = []
+        params: list[str] = []
+        if languages:
+            where.append(f"f.language IN ({','.join('?' * len(languages))})")
+            params.extend(languages)
+        if kinds:
+            where.append(f"u.kind IN ({','.join('?' * len(kinds))})")
+            params.extend(kinds)
+        clause = ("WHERE " + " AND ".join(where)) if where else ""
+        rows = self._query(
+            f"SELECT u.id, f.path FROM units u JOIN files f ON f.id=u.file_id {clause}", params
+        )
+        return [row[0] for row in rows]
+
+    def paths_of(self, row_ids: Sequence[int]) -> dict[int, str]:
+        """The file path of each unit id."""
+        return {k: v.unit.path for k, v in self.units_by_ids(row_ids).items()}
+
+    # -- vectors -------------------------------------------------------------------
+
+    def known_hashes(self, model_id: str) -> set[str]:
+        """Content hashes that already have a vector for this model."""
+        rows = self._query("SELECT content_hash FROM vectors WHERE model_id=?", (model_id,))
+        return {row[0] for row in rows}
+
+    def put_vectors(self, model_id: str, vectors: dict[str, np.ndarray]) -> None:
+        """Store vectors (float32) by content hash."""
+        try:
+            self._db.executemany(
+                "INSERT OR REPLACE INTO vectors VALUES (?, ?, ?)",
+                [(h, model_id, np.asarray(v, dtype=np.float32).tobytes())
+                 for h, v in vectors.items()],
+            )
+        except sqlite3.Error as exc:
+            raise _translate(exc, self.path) from exc
+
+    def unit_vectors(self, model_id: str, dim: int,
+                     row_ids: Sequence[int] | None = None) -> tuple[np.ndarray, np.ndarray]:
+        """(unit ids, matrix) of units that have a vector for this model."""
+        sql = ("SELECT u.id, v.vector FROM units u JOIN vectors v "
+               "ON v.content_hash=u.content_hash AND v.model_id=?")
+        rows: list[tuple] = []
+        if row_ids is None:
+            rows = self._query(sql + " ORDER BY u.id", (model_id,))
+        else:
+            ids = list(row_ids)
+            for start in range(0, len(ids), 500):
+                chunk = ids[start : start + 500]
+                rows.extend(self._query(
+                    sql + f" WHERE u.id IN ({','.join('?' * len(chunk))})", [model_id, *chunk]
+                ))
+        labels = np.array([row[0] for row in rows], dtype=np.int64)
+        matrix = np.zeros((len(rows), dim), dtype=np.float32)
+        for i, row in enumerate(rows):
+            matrix[i] = np.frombuffer(row[1], dtype=np.float32)
+        return labels, matrix
+
+    def prune_vectors(self, model_id: str) -> int:
+        """Delete this model's vectors no unit uses any more; returns how many."""
+        cursor = self._exec(
+            "DELETE FROM vectors WHERE model_id=? AND content_hash NOT IN "
+            "(SELECT content_hash FROM units)",
+            (model_id,),
+        )
+        return cursor.rowcount
+
+    def drop_other_models(self, model_id: str) -> None:
+        """Delete the vectors of every other model."""
+        self._exec("DELETE FROM vectors WHERE model_id != ?", (model_id,))
+
+    # -- lexical search ------------------------------------------------------------
+
+    def lexical_search(self, match: str, limit: int) -> list[tuple[int, float]]:
+        """(unit id, BM25 score; higher is better) for an FTS5 MATCH expression."""
+        if not match:
+            return []
+        rows = self._query(
+            "SELECT rowid, bm25(units_fts, 4.0, 2.0, 2.0, 1.0) AS score FROM units_fts "
+            "WHERE units_fts MATCH ? ORDER BY score LIMIT ?",
+            (match, limit),
+        )
+        return [(int(r[0]), -float(r[1])) for r in rows]
+
+
+def _stored_unit(row: tuple) -> StoredUnit:
+    (row_id, path, language, kind, name, qualname, signature, doc, start, end, code,
+     doc_start, doc_end, ordinal, content_hash) = row
+    unit = CodeUnit(
+        path=path, language=language, kind=kind, name=name, qualname=qualname,
+        signature=signature, doc=doc, start_line=start, end_line=end, code=code,
+        doc_span=(doc_start, doc_end) if doc_start is not None else None, ordinal=ordinal,
+    )
+    return StoredUnit(row_id, unit, content_hash)
+
+
+def make_index_dir(index_dir: Path) -> None:
+    """Create the index folder, readable by its owner only, ignoring itself in git."""
+    try:
+        index_dir.mkdir(parents=True, exist_ok=True, mode=0o700)
+        os.chmod(index_dir, 0o700)
+        ignore = index_dir / ".gitignore"
+        if not ignore.exists():
+            ignore.write_text("# codeseek's index folder: never commit it\n*\n", encoding="utf-8")
+    except OSError as exc:
+        raise IndexWriteError(f"{index_dir}: cannot create the index folder: {exc}") from exc
+
+
+def vector_unit_ids(store: Store, model_id: str) -> set[int]:
+    """Ids of the units that have a vector for this model (the HNSW's labels)."""
+    rows = store._query(
+        "SELECT u.id FROM units u JOIN vectors v ON v.content_hash=u.content_hash "
+        "AND v.model_id=?",
+        (model_id,),
+    )
+    return {int(row[0]) for row in rows}
+
+
+def missing_vector_units(store: Store, model_id: str) -> list[StoredUnit]:
+    """One stored unit per content hash that has no vector for this model yet."""
+    rows = store._query(
+        f"SELECT {Store._UNIT_COLUMNS} FROM units u JOIN files f ON f.id=u.file_id "
+        "WHERE NOT EXISTS (SELECT 1 FROM vectors v WHERE v.content_hash=u.content_hash "
+        "AND v.model_id=?) GROUP BY u.content_hash ORDER BY u.id",
+        (model_id,),
+    )
+    return [_stored_unit(row) for row in rows]

@@ -1,0 +1,3 @@
+module kestrune.example/dockd
+
+go 1.21
