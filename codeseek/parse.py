@@ -9,6 +9,7 @@ A file with syntax errors still yields what tree-sitter recovered.
 
 from __future__ import annotations
 
+import re
 from collections import Counter
 from dataclasses import dataclass
 from functools import cache
@@ -23,6 +24,8 @@ if TYPE_CHECKING:
 MAX_SIGNATURE_CHARS = 400
 _CAPTURE_KINDS = ("function", "class", "scope")
 _COMMENT_TYPES = frozenset({"comment", "line_comment", "block_comment"})
+_LONE_CR = re.compile(rb"\r(?!\n)")
+_BOM = b"\xef\xbb\xbf"
 
 
 @dataclass(frozen=True)
@@ -62,6 +65,8 @@ def parse_source(path: str, source: bytes, spec: LanguageSpec) -> ParseResult:
     """Extract the units of one file's bytes (``path`` is stored, not read)."""
     import tree_sitter
 
+    if spec.cr_newlines and b"\r" in source:
+        source = _LONE_CR.sub(b"\n", source)  # same length: byte offsets still hold
     tree = _parser(spec).parse(source)
     root = tree.root_node
     definitions = _collect_definitions(tree_sitter.QueryCursor(_query(spec)), root, source)
@@ -133,6 +138,8 @@ def _build_unit(
         kind = "function"
 
     line_start = source.rfind(b"\n", 0, node.start_byte) + 1
+    if line_start == 0 and source.startswith(_BOM):
+        line_start = len(_BOM)  # the byte-order mark is no part of the code
     end_byte = _content_end(node)
     code = source[line_start:end_byte].decode("utf-8", "replace")
     doc, doc_bytes = spec.doc_rule(node, source)

@@ -14,14 +14,13 @@ for a reason is counted under that reason.
 from __future__ import annotations
 
 import os
+import re
 import stat
 from collections import Counter
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from fnmatch import fnmatch
 from pathlib import Path
-
-import pathspec
 
 from codeseek.config import Settings
 from codeseek.languages import LanguageSpec, spec_for_path
@@ -94,57 +93,217 @@ class SkipFile(Exception):
     """Raised by :func:`read_source` when a file must be left out; args[0] is the reason."""
 
 
+class IgnorePattern:
+    """One line of an ignore file, matched the way git matches it (gitignore(5)).
+
+    A pattern without a ``/`` (a trailing one aside) matches the last path
+    component at any depth; one with a ``/`` matches the whole path relative to
+    its file's folder. A trailing ``/`` matches folders only. ``*``, ``?`` and
+    ``[...]`` never match ``/``; ``**`` does, between slashes.
+    """
+
+    __slots__ = ("_regex", "negated", "dir_only", "basename_only")
+
+    def __init__(self, regex: re.Pattern[str] | None, negated: bool, dir_only: bool,
+                 basename_only: bool) -> None:
+        self._regex = regex
+        self.negated = negated
+        self.dir_only = dir_only
+        self.basename_only = basename_only
+
+    @classmethod
+    def parse(cls, line: str) -> IgnorePattern | None:
+        """The pattern of one ignore-file line, or None for blanks and comments."""
+        if line.startswith("#"):
+            return None
+        text = _trim_trailing_spaces(line)
+        negated = text.startswith("!")
+        if negated:
+            text = text[1:]
+        dir_only = text.endswith("/")
+        text = text.rstrip("/") if dir_only else text
+        if not text:
+            return None
+        basename_only = "/" not in text
+        text = text.lstrip("/")
+        return cls(_wildmatch_regex(text), negated, dir_only, basename_only)
+
+    def matches(self, rel_path: str, is_dir: bool) -> bool:
+        """Whether this pattern matches a path relative to its file's folder."""
+        if self._regex is None or (self.dir_only and not is_dir):
+            return False
+        target = rel_path.rsplit("/", 1)[-1] if self.basename_only else rel_path
+        return self._regex.fullmatch(target) is not None
+
+
+class IgnoreFile:
+    """The patterns of one ignore file; the last matching line decides."""
+
+    def __init__(self, lines: list[str]) -> None:
+        if lines and lines[0].startswith("\ufeff"):
+            lines = [lines[0][1:], *lines[1:]]  # git skips a UTF-8 byte-order mark
+        parsed = (IgnorePattern.parse(line) for line in lines)
+        self.patterns = tuple(p for p in parsed if p is not None)
+
+    def decide(self, rel_path: str, is_dir: bool) -> bool | None:
+        """True (ignored), False (re-included by ``!``) or None (no line matches)."""
+        for pattern in reversed(self.patterns):
+            if pattern.matches(rel_path, is_dir):
+                return not pattern.negated
+        return None
+
+
+def _trim_trailing_spaces(line: str) -> str:
+    """Drop trailing spaces unless escaped with a backslash, as git does."""
+    last_space: int | None = None
+    index = 0
+    while index < len(line):
+        char = line[index]
+        if char == " ":
+            if last_space is None:
+                last_space = index
+        else:
+            if char == "\\":
+                index += 1
+            last_space = None
+        index += 1
+    return line if last_space is None else line[:last_space]
+
+
+_POSIX_CLASSES = {
+    "alnum": "a-zA-Z0-9", "alpha": "a-zA-Z", "blank": " \\t", "cntrl": "\\x00-\\x1f\\x7f",
+    "digit": "0-9", "graph": "!-~", "lower": "a-z", "print": " -~",
+    "punct": re.escape("!\"#$%&'()*+,-./:;<=>?@[\\]^_`{|}~"), "space": " \\t\\n\\r\\f\\v",
+    "upper": "A-Z", "xdigit": "0-9A-Fa-f",
+}
+
+
+def _wildmatch_regex(pattern: str) -> re.Pattern[str] | None:
+    """A regex equivalent to git's wildmatch with WM_PATHNAME, or None (never matches)."""
+    out: list[str] = []
+    index = 0
+    while index < len(pattern):
+        char = pattern[index]
+        if char == "*":
+            piece, index = _stars(pattern, index)
+        elif char == "?":
+            piece, index = "[^/]", index + 1
+        elif char == "[":
+            bracket = _bracket(pattern, index)
+            if bracket is None:
+                return None  # git gives up on an unclosed or unknown bracket
+            piece, index = bracket
+        elif char == "\\":
+            if index + 1 == len(pattern):
+                return None  # git: a trailing backslash matches nothing
+            piece, index = re.escape(pattern[index + 1]), index + 2
+        else:
+            piece, index = re.escape(char), index + 1
+        out.append(piece)
+    try:
+        return re.compile("".join(out), re.DOTALL)
+    except re.error:
+        return None
+
+
+def _stars(pattern: str, index: int) -> tuple[str, int]:
+    """The regex of a run of ``*`` starting at ``index``, and the index after it."""
+    end = index
+    while end < len(pattern) and pattern[end] == "*":
+        end += 1
+    after_slash = index == 0 or pattern[index - 1] == "/"
+    before_slash = end == len(pattern) or pattern[end] == "/"
+    if end - index >= 2 and after_slash and before_slash:
+        if end == len(pattern):
+            return ".*", end  # trailing "**": everything inside
+        return "(?:.*/)?", end + 1  # "**/": zero or more folders
+    return "[^/]*", end
+
+
+def _bracket(pattern: str, index: int) -> tuple[str, int] | None:
+    """The regex of a ``[...]`` starting at ``index`` (never matching ``/``)."""
+    pos = index + 1
+    negated = pos < len(pattern) and pattern[pos] in "!^"
+    pos += negated
+    items: list[str] = []
+    first = True
+    while pos < len(pattern) and (pattern[pos] != "]" or first):
+        first = False
+        if pattern.startswith("[:", pos):
+            close = pattern.find(":]", pos + 2)
+            if close == -1 or pattern[pos + 2 : close] not in _POSIX_CLASSES:
+                return None
+            items.append(_POSIX_CLASSES[pattern[pos + 2 : close]])
+            pos = close + 2
+            continue
+        if pattern[pos] == "\\" and pos + 1 < len(pattern):
+            pos += 1
+        low = pattern[pos]
+        pos += 1
+        if pos + 1 < len(pattern) and pattern[pos] == "-" and pattern[pos + 1] != "]":
+            high = pattern[pos + 1]
+            if high == "\\" and pos + 2 < len(pattern):
+                pos += 1
+                high = pattern[pos + 1]
+            items.append(f"{re.escape(low)}-{re.escape(high)}")
+            pos += 2
+        else:
+            items.append(re.escape(low))
+    if pos >= len(pattern):
+        return None
+    body = "".join(items)
+    return (f"[^/{body}]" if negated else f"(?!/)[{body}]"), pos + 1
+
+
 class IgnoreRules:
     """git's ignore rules plus codeseek's own, for one repository."""
 
     def __init__(self, root: Path, extra_patterns: tuple[str, ...] = ()) -> None:
         self.root = root
-        self._extra = pathspec.GitIgnoreSpec.from_lines(extra_patterns)
-        self._info_exclude = _load_spec(root / ".git" / "info" / "exclude")
-        self._specs: dict[str, pathspec.GitIgnoreSpec | None] = {}
+        self._extra = IgnoreFile(list(extra_patterns))
+        self._info_exclude = _load_ignore_file(root / ".git" / "info" / "exclude")
+        self._files: dict[str, IgnoreFile | None] = {}
 
-    def spec_of(self, dir_rel: str) -> pathspec.GitIgnoreSpec | None:
+    def spec_of(self, dir_rel: str) -> IgnoreFile | None:
         """The parsed .gitignore of one folder (``""`` is the root), cached."""
-        if dir_rel not in self._specs:
+        if dir_rel not in self._files:
             folder = self.root / dir_rel if dir_rel else self.root
-            self._specs[dir_rel] = _load_spec(folder / ".gitignore")
-        return self._specs[dir_rel]
+            self._files[dir_rel] = _load_ignore_file(folder / ".gitignore")
+        return self._files[dir_rel]
 
     def forget(self, dir_rel: str) -> None:
         """Drop a cached .gitignore (it changed on disk)."""
-        self._specs.pop(dir_rel, None)
+        self._files.pop(dir_rel, None)
 
     def is_ignored(self, rel_path: str, is_dir: bool) -> bool:
         """Whether git (plus the exclude setting) ignores ``rel_path``.
 
         Only this path's own rules are checked; the caller does not descend into
-        ignored folders, which is how git treats them.
+        ignored folders, which is how git treats them. The exclude setting is
+        checked first; then each folder's .gitignore, deepest first (the first
+        file with a matching line decides); then ``.git/info/exclude``.
         """
-        suffix = "/" if is_dir else ""
-        if self._extra.match_file(rel_path + suffix):
+        if self._extra.decide(rel_path, is_dir):
             return True
         parts = rel_path.split("/")
         for depth in range(len(parts) - 1, -1, -1):
-            dir_rel = "/".join(parts[:depth])
-            spec = self.spec_of(dir_rel)
-            if spec is None:
+            ignore_file = self.spec_of("/".join(parts[:depth]))
+            if ignore_file is None:
                 continue
-            result = spec.check_file("/".join(parts[depth:]) + suffix)
-            if result.include is not None:
-                return bool(result.include)
+            decision = ignore_file.decide("/".join(parts[depth:]), is_dir)
+            if decision is not None:
+                return decision
         if self._info_exclude is not None:
-            result = self._info_exclude.check_file(rel_path + suffix)
-            if result.include is not None:
-                return bool(result.include)
+            return bool(self._info_exclude.decide(rel_path, is_dir))
         return False
 
 
-def _load_spec(path: Path) -> pathspec.GitIgnoreSpec | None:
+def _load_ignore_file(path: Path) -> IgnoreFile | None:
     try:
         lines = path.read_text(encoding="utf-8", errors="replace").splitlines()
     except (FileNotFoundError, NotADirectoryError, IsADirectoryError, PermissionError):
         return None
-    return pathspec.GitIgnoreSpec.from_lines(lines)
+    return IgnoreFile(lines)
 
 
 def folder_reason(name: str, settings: Settings) -> str | None:
@@ -167,16 +326,49 @@ def name_reason(name: str) -> str | None:
     return None
 
 
-def scan_repository(settings: Settings, rules: IgnoreRules | None = None) -> ScanResult:
-    """Walk the repository and decide, for every file, to parse it or why not."""
+def scan_repository(
+    settings: Settings, rules: IgnoreRules | None = None, start: str = ""
+) -> ScanResult:
+    """Walk the repository and decide, for every file, to parse it or why not.
+
+    With ``start`` (a folder relative to the root, ``/``-separated) only that
+    folder is walked, and the result holds exactly the files under it that a
+    walk of the whole repository would hold: nothing when the folder or one
+    above it is never entered.
+    """
     rules = rules or IgnoreRules(settings.repo, settings.exclude)
     result = ScanResult()
     index_dir = os.path.realpath(settings.index_dir)
-    for rel_path, entry in _walk(settings.repo, "", rules, settings, result, index_dir):
+    start = start.strip("/")
+    if start and not _can_enter(settings, rules, start, result, index_dir):
+        return result
+    for rel_path, entry in _walk(settings.repo, start, rules, settings, result, index_dir):
         source = check_file(settings, rel_path, entry.path, result)
         if source is not None:
             result.files.append(source)
     return result
+
+
+def _can_enter(
+    settings: Settings, rules: IgnoreRules, folder: str, result: ScanResult, index_dir: str
+) -> bool:
+    """Whether a whole walk enters ``folder`` and every folder above it (refusals counted)."""
+    parts = folder.split("/")
+    for depth in range(1, len(parts) + 1):
+        rel = "/".join(parts[:depth])
+        path = settings.repo / rel
+        if path.is_symlink():
+            result.skip(rel, REASON_SYMLINK)
+            return False
+        reason = folder_reason(parts[depth - 1], settings)
+        if reason is None and os.path.realpath(path) == index_dir:
+            return False
+        if reason is None and rules.is_ignored(rel, is_dir=True):
+            reason = REASON_IGNORED
+        if reason is not None:
+            result.skip(rel + "/", reason)
+            return False
+    return True
 
 
 def check_file(

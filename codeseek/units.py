@@ -12,10 +12,12 @@ from __future__ import annotations
 import hashlib
 import re
 from dataclasses import dataclass
+from functools import cached_property, lru_cache
 
 KINDS = ("function", "method", "class")
 
 _CAMEL = re.compile(r"[A-Z]+(?=[A-Z][a-z])|[A-Z]?[a-z]+|[A-Z]+|\d+")
+_NON_WORD = re.compile(r"[^A-Za-z0-9]+")
 _IDENT = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
 _TAG_LINE = re.compile(r"^\s*(@\w+|:(param|type|return|returns|rtype|raises)\b)")
 _SECTION = re.compile(
@@ -93,7 +95,7 @@ class CodeUnit:
         parts.append(self.code_without_doc)
         return "\n".join(parts)
 
-    @property
+    @cached_property
     def content_hash(self) -> str:
         """Hash of what is embedded: equal hashes share one stored vector."""
         return hashlib.sha256(self.embed_text().encode("utf-8", "surrogatepass")).hexdigest()[
@@ -113,9 +115,15 @@ class CodeUnit:
 def split_identifier(identifier: str) -> list[str]:
     """Split ``pushBatch_withBackoff`` into ``['push', 'batch', 'with', 'backoff']``."""
     words: list[str] = []
-    for part in re.split(r"[^A-Za-z0-9]+", identifier):
-        words.extend(w.lower() for w in _CAMEL.findall(part))
+    for part in _NON_WORD.split(identifier):
+        if part:
+            words.extend(_split_part(part))
     return words
+
+
+@lru_cache(maxsize=200_000)
+def _split_part(part: str) -> tuple[str, ...]:
+    return tuple(w.lower() for w in _CAMEL.findall(part))
 
 
 def split_words(text: str) -> str:

@@ -48,6 +48,8 @@ class LanguageSpec:
         separator: joins a qualified name.
         receiver_rule: a qualifier taken from the definition itself (Go receivers).
         method_types: node types that are always methods.
+        cr_newlines: a lone carriage return ends a line (as in Python); the
+            engine reads it as a line feed, which tree-sitter expects.
     """
 
     name: str
@@ -62,6 +64,7 @@ class LanguageSpec:
     separator: str = "."
     receiver_rule: ReceiverRule | None = None
     method_types: frozenset[str] = field(default_factory=frozenset)
+    cr_newlines: bool = False
 
     def language(self) -> tree_sitter.Language:
         """The tree-sitter language, loaded from the grammar wheel."""

@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import ast
 import inspect
+import warnings
 from typing import TYPE_CHECKING
 
 from codeseek.languages import LanguageSpec
@@ -25,19 +26,29 @@ def python_docstring(node: tree_sitter.Node, source: bytes) -> tuple[str, tuple[
     if body is None:
         return "", None
     first = next((c for c in body.named_children if c.type != "comment"), None)
-    if first is None or first.type != "expression_statement" or first.named_child_count != 1:
-        return "", None
+    if first is None or first.type != "expression_statement" or first.child_count != 1:
+        return "", None  # not one expression alone ("doc", is a tuple)
     literal = first.named_children[0]
+    while literal.type == "parenthesized_expression" and literal.named_child_count == 1:
+        literal = literal.named_children[0]  # ("doc") is a docstring too
     if literal.type not in ("string", "concatenated_string"):
         return "", None
-    text = source[literal.start_byte : literal.end_byte].decode("utf-8", "replace")
-    try:
-        value = ast.literal_eval(text)
-    except (ValueError, SyntaxError, MemoryError, RecursionError):
-        return "", None  # an f-string or a broken literal is no docstring
-    if not isinstance(value, str):
+    value = _string_value(source[literal.start_byte : literal.end_byte])
+    if value is None:
         return "", None
     return inspect.cleandoc(value), (first.start_byte, first.end_byte)
+
+
+def _string_value(literal: bytes) -> str | None:
+    """The value of a string literal, or None for f-strings, bytes and broken literals."""
+    text = literal.decode("utf-8", "replace")
+    try:
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")  # invalid escapes warn; the value stands
+            value = ast.literal_eval(f"(\n{text}\n)")  # parts may span lines
+    except (ValueError, TypeError, SyntaxError, MemoryError, RecursionError):
+        return None
+    return value if isinstance(value, str) else None
 
 
 SPECS = (
@@ -50,5 +61,6 @@ SPECS = (
         doc_rule=python_docstring,
         class_scopes=frozenset({"class_definition"}),
         wrapper_types=frozenset({"decorated_definition"}),
+        cr_newlines=True,
     ),
 )
