@@ -22,8 +22,15 @@ from codeseek.errors import (
     ModelMismatch,
     RepositoryNotFound,
 )
-from codeseek.indexer import ProgressCallback, UpdateSummary, load_vectors, save_vectors
-from codeseek.indexer import update_index as _update_index
+from codeseek.indexer import (
+    ProgressCallback,
+    Updater,
+    UpdateSummary,
+    load_vectors,
+    save_vectors,
+)
+from codeseek.locks import ReadWriteLock
+from codeseek.scan import ScanResult, SourceFile
 from codeseek.search import Filters, Searcher, SearchHit
 from codeseek.store import DB_NAME, Store
 from codeseek.vectors import HNSW_NAME, VectorIndex
@@ -63,6 +70,7 @@ class Index:
         self._embedder = embedder
         self._vectors: VectorIndex | None = None
         self._searcher: Searcher | None = None
+        self.lock = ReadWriteLock()  # searches read, updates write
 
     # -- lifecycle -------------------------------------------------------------------
 
@@ -86,14 +94,36 @@ class Index:
     # -- writing ---------------------------------------------------------------------
 
     def update(self, progress: ProgressCallback | None = None) -> UpdateSummary:
-        """Bring the index up to date with the files on disk."""
+        """Bring the index up to date with the files on disk, and save the vector index."""
         with self._writer_lock():
-            vectors = self._vectors_for(self.embedder.model_id, self.embedder.dim)
-            summary = _update_index(self.store, self.embedder, vectors, self.settings,
-                                    progress)
-            self._vectors = vectors
-            self._searcher = None
+            summary = self._updater(progress).full()
+            if progress:
+                progress("save", 0, 1)
+            self.save()
+            if progress:
+                progress("save", 1, 1)
             return summary
+
+    def update_files(self, files: list[SourceFile], gone: list[str],
+                     scan: ScanResult | None = None) -> UpdateSummary:
+        """Apply changed files and removed paths; the vector file is saved later by save()."""
+        with self._writer_lock():
+            return self._updater(None).paths(files, gone, scan)
+
+    def save(self) -> None:
+        """Save the vector index atomically if it holds changes not yet on disk."""
+        if self._vectors is None:
+            return
+        with self.lock.read():
+            if self.store.manifest().get("hnsw_generation") != str(self.store.generation()):
+                save_vectors(self.store, self._vectors, self.settings)
+
+    def _updater(self, progress: ProgressCallback | None) -> Updater:
+        vectors = self._vectors_for(self.embedder.model_id, self.embedder.dim)
+        if self._searcher is not None and self._searcher.vectors is not vectors:
+            self._searcher = None
+        return Updater(self.store, self.embedder, vectors, self.settings, progress,
+                       self.lock.write)
 
     @contextmanager
     def _writer_lock(self) -> Iterator[None]:
@@ -121,7 +151,8 @@ class Index:
             return self._vectors
         manifest = self.store.manifest()
         if manifest.get("model_id") != model_id:
-            return VectorIndex(dim)  # a new model: every vector is made anew
+            self._vectors = VectorIndex(dim)  # a new model: every vector is made anew
+            return self._vectors
         vectors = load_vectors(self.store, model_id, dim, self.settings)
         if vectors.rebuilt and os.access(self.settings.index_dir, os.W_OK):
             with suppress(IndexWriteError):  # searching still works from memory
@@ -146,7 +177,8 @@ class Index:
                     "run `codeseek index` with this model to re-embed"
                 )
             vectors = self._vectors_for(embedder.model_id, embedder.dim)
-            self._searcher = Searcher(self.store, vectors, embedder, embedder.model_id)
+            self._searcher = Searcher(self.store, vectors, embedder, embedder.model_id,
+                                      self.lock)
         return self._searcher
 
     def search(self, query: str, k: int = 10, *, languages: Sequence[str] = (),

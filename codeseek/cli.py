@@ -22,6 +22,7 @@ from codeseek.errors import CodeseekError, InvalidQuery, RepositoryNotFound
 
 if TYPE_CHECKING:
     from codeseek.api import Index
+    from codeseek.daemon import DaemonClient
     from codeseek.indexer import UpdateSummary
     from codeseek.search import SearchHit
 
@@ -101,6 +102,18 @@ def build_parser() -> argparse.ArgumentParser:
     _common_index_options(status, model=False)
     status.add_argument("--json", action="store_true", help="one JSON object")
 
+    watch = commands.add_parser("watch", help="index, then keep the index fresh and answer "
+                                              "queries (runs in the foreground)",
+                                description="Index the repository, then watch it: every saved "
+                                            "change is indexed within a second, and searches "
+                                            "are answered by this warm process through a "
+                                            "socket in the index folder. Stop with Ctrl-C.")
+    watch.add_argument("path", nargs="?", default=".", metavar="PATH",
+                       help="repository root (default: the current folder)")
+    _common_index_options(watch)
+    watch.add_argument("--poll", action="store_true",
+                       help="watch by polling instead of inotify (network file systems)")
+
     outline = commands.add_parser("outline", help="list the units extracted from a file or tree",
                                   description="List the units codeseek extracts from a file or "
                                               "a folder, without an index or a model.")
@@ -121,14 +134,31 @@ def find_repo_root(start: Path) -> Path:
     return start
 
 
-def _open(repo: str | None, args: argparse.Namespace, *, create: bool) -> Index:
-    from codeseek.api import open_index
-
+def _root(repo: str | None) -> Path:
     root = Path(repo) if repo else find_repo_root(Path.cwd())
     if not root.is_dir():
         raise RepositoryNotFound(f"{root}: no such folder")
-    return open_index(root, index_dir=args.index_dir, model=getattr(args, "model", None),
+    return root
+
+
+def _open(repo: str | None, args: argparse.Namespace, *, create: bool) -> Index:
+    from codeseek.api import open_index
+
+    return open_index(_root(repo), index_dir=args.index_dir,
+                      model=getattr(args, "model", None),
                       backend=getattr(args, "backend", None), create=create)
+
+
+def _daemon_client(repo: str | None, args: argparse.Namespace) -> DaemonClient | None:
+    """A client of the daemon serving this index, if one runs and fits the options."""
+    from codeseek.config import load_settings
+    from codeseek.daemon import DaemonClient
+
+    if getattr(args, "model", None) or getattr(args, "backend", None):
+        return None  # an explicit model or backend is answered in this process
+    settings = load_settings(_root(repo), index_dir=args.index_dir)
+    client = DaemonClient(settings.index_dir)
+    return client if client.socket_path.exists() else None
 
 
 # -- index -------------------------------------------------------------------------
@@ -211,14 +241,25 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         raise InvalidQuery("give a QUERY or --batch FILE")
     if args.batch is not None and args.query is not None:
         raise InvalidQuery("give a QUERY or --batch FILE, not both")
-    with _open(args.repo, args, create=False) as index:
-        options = {"languages": args.lang, "paths": args.path, "kinds": args.kind}
-        if args.batch is not None:
-            queries = _read_batch(args.batch)
-            for hits in index.search_many(queries, args.k, **options) if queries else []:
-                _print_json(hits, out)
-            return EXIT_OK
-        hits = index.search(args.query, args.k, **options)
+    from codeseek.daemon import DaemonUnavailable
+
+    queries = _read_batch(args.batch) if args.batch is not None else [args.query]
+    options = {"languages": args.lang, "paths": args.path, "kinds": args.kind}
+    results: list[list[SearchHit]] | None = None
+    client = _daemon_client(args.repo, args)
+    if client is not None and queries:
+        try:
+            results = client.search_many(queries, args.k, **options)
+        except DaemonUnavailable:
+            results = None  # a stale socket: answer in this process
+    if results is None:
+        with _open(args.repo, args, create=False) as index:
+            results = index.search_many(queries, args.k, **options) if queries else []
+    if args.batch is not None:
+        for hits in results:
+            _print_json(hits, out)
+        return EXIT_OK
+    hits = results[0]
     if args.json:
         _print_json(hits, out)
     else:
@@ -261,10 +302,21 @@ def _clip(text: str, width: int) -> str:
 
 
 def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    from codeseek.daemon import DaemonUnavailable
+
     with _open(args.path, args, create=False) as index:
         status = index.status()
+    daemon: dict[str, Any] | None = None
+    client = _daemon_client(args.path, args)
+    if client is not None:
+        try:
+            daemon = client.status()["daemon"]
+        except DaemonUnavailable:
+            daemon = None
     if args.json:
-        out.write(json.dumps(status.to_json(), ensure_ascii=False) + "\n")
+        record = status.to_json()
+        record["daemon"] = daemon
+        out.write(json.dumps(record, ensure_ascii=False) + "\n")
         return EXIT_OK
     updated = (time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(status.updated_at))
                if status.updated_at else "never")
@@ -281,6 +333,17 @@ def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if status.files_with_syntax_errors:
         print(f"warnings     {status.files_with_syntax_errors} files with syntax errors",
               file=out)
+    if daemon is None:
+        print("daemon       not running (searches load the index in their own process)",
+              file=out)
+    else:
+        last = (time.strftime("%H:%M:%S", time.localtime(daemon["last_update"]))
+                if daemon["last_update"] else "none yet")
+        print(f"daemon       pid {daemon['pid']}, {daemon['state']}, watching by "
+              f"{daemon['watcher']}, {daemon['pending']} changes pending, last update {last}",
+              file=out)
+        if daemon["last_error"]:
+            print(f"             last error: {daemon['last_error']}", file=out)
     if status.skipped:
         print("left out", file=out)
         for reason, count in sorted(status.skipped.items(), key=lambda kv: -kv[1]):
@@ -309,8 +372,19 @@ def cmd_outline(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     return EXIT_OK
 
 
+def cmd_watch(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    from codeseek.daemon import run_foreground
+
+    def log(message: str) -> None:
+        print(message, file=err, flush=True)
+
+    with _open(args.path, args, create=True) as index:
+        run_foreground(index, log, poll=args.poll)
+    return EXIT_OK
+
+
 COMMANDS = {"index": cmd_index, "search": cmd_search, "status": cmd_status,
-            "outline": cmd_outline}
+            "watch": cmd_watch, "outline": cmd_outline}
 
 
 def main(argv: Sequence[str] | None = None, out: TextIO | None = None,

@@ -20,6 +20,7 @@ import json
 import os
 import tempfile
 from collections.abc import Callable, Sequence
+from functools import lru_cache
 from pathlib import Path
 from typing import Any, Protocol, runtime_checkable
 
@@ -74,14 +75,17 @@ class FakeEmbedder:
         out = np.zeros((len(texts), self.dim), dtype=np.float32)
         for row, text in enumerate(texts):
             for word in split_identifier(text):
-                stem = _crude_stem(word)
-                digest = hashlib.blake2b(stem.encode(), digest_size=8).digest()
-                bucket = int.from_bytes(digest[:4], "little") % self.dim
-                sign = 1.0 if digest[4] & 1 else -1.0
+                bucket, sign = _bucket(word, self.dim)
                 out[row, bucket] += sign
         if progress:
             progress(len(texts))
         return _normalise(out)
+
+
+@lru_cache(maxsize=65536)
+def _bucket(word: str, dim: int) -> tuple[int, float]:
+    digest = hashlib.blake2b(_crude_stem(word).encode(), digest_size=8).digest()
+    return int.from_bytes(digest[:4], "little") % dim, (1.0 if digest[4] & 1 else -1.0)
 
 
 def _crude_stem(word: str) -> str:
@@ -222,7 +226,9 @@ class TorchEmbedder:
             self._model = SentenceTransformer(str(folder), device="cpu")
         except Exception as exc:  # a broken folder surfaces as many error types
             raise ModelUnavailable(f"model folder {folder} cannot be loaded: {exc}") from exc
-        self.dim = int(self._model.get_sentence_embedding_dimension() or 0)
+        dimension = (getattr(self._model, "get_embedding_dimension", None)  # newer name
+                     or self._model.get_sentence_embedding_dimension)
+        self.dim = int(dimension() or 0)
         self.model_id = f"{_model_name(folder)}@{fingerprint}"
         self.batch_size = batch_size
 

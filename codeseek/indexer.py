@@ -1,44 +1,52 @@
-"""Full and incremental indexing: scan, parse, store, embed, then the HNSW cache.
+"""Full and incremental indexing: scan, parse, embed, store, then the HNSW cache.
 
-Units are written first (one transaction per batch of files), then every
-content hash that lacks a vector for the current model is embedded and
-stored (one transaction per batch), then the vector index is brought in line
-with the store and saved. Each stage can be interrupted: the next run sees
-the files already stored by their hash and the vectors already made by their
-content hash, and picks up where the last one stopped. A unit whose content
-did not change is never embedded again, wherever it moved.
+The order makes every stage resumable and every commit consistent:
+
+1. the files that may have changed (size or mtime differ) are read and hashed;
+   those whose content changed are parsed, in memory;
+2. every unit text whose content hash has no vector for the current model is
+   embedded, in chunks, and the vectors are committed (nothing refers to them
+   yet, so a crash here only leaves a useful cache);
+3. the units are committed, one transaction per batch of files, under the
+   index's write lock, and the in-memory HNSW index follows each commit.
+
+A unit whose content did not change is never embedded again, wherever it
+moved. An interrupted run leaves the store consistent; the next run sees the
+files already stored by their hash and the vectors already made by their
+content hash, and picks up where the last one stopped.
 """
 
 from __future__ import annotations
 
 import hashlib
 import time
-from collections.abc import Callable
+from collections.abc import Callable, Iterable
+from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass, field
 
 from codeseek.config import Settings
 from codeseek.embed import Embedder
 from codeseek.parse import ParseResult, parse_source
-from codeseek.scan import (
-    ScanResult,
-    SkipFile,
-    SourceFile,
-    read_source,
-    scan_repository,
-)
+from codeseek.scan import ScanResult, SkipFile, SourceFile, read_source, scan_repository
 from codeseek.store import FileRow, Store, missing_vector_units, vector_unit_ids
-from codeseek.vectors import VectorIndex
+from codeseek.units import CodeUnit
+from codeseek.vectors import HNSW_NAME, VectorIndex
 
 ProgressCallback = Callable[[str, int, int], None]
-"""Called as ``progress(stage, done, total)``; stages: scan, parse, embed, save."""
+"""Called as ``progress(stage, done, total)``; stages: scan, parse, embed, write, save."""
+
+WriteLock = Callable[[], AbstractContextManager[object]]
+"""Returns the context manager that excludes searches while a change is applied."""
 
 FILES_PER_TRANSACTION = 200
 UNITS_PER_EMBED_CHUNK = 512
+COMPACT_DELETED_SHARE = 0.3  # rebuild the graph when this share of its slots is dead
+COMPACT_MIN_SIZE = 1000
 
 
 @dataclass(frozen=True)
 class UpdateSummary:
-    """What one ``update`` did.
+    """What one update did.
 
     Attributes:
         files: files in the index afterwards.
@@ -67,11 +75,21 @@ class UpdateSummary:
     seconds: float = 0.0
 
 
+@dataclass(frozen=True)
+class FileChange:
+    """One file to write: its scan record, content hash and parse (None: unchanged)."""
+
+    source: SourceFile
+    sha256: str
+    result: ParseResult | None
+
+
 @dataclass
 class _Tally:
     added: int = 0
     changed: int = 0
     removed: int = 0
+    embedded: int = 0
     files_parsed: int = 0
     files_removed: int = 0
     syntax_warnings: list[str] = field(default_factory=list)
@@ -81,159 +99,211 @@ def _no_progress(stage: str, done: int, total: int) -> None:
     return None
 
 
-def update_index(
-    store: Store,
-    embedder: Embedder,
-    vectors: VectorIndex,
-    settings: Settings,
-    progress: ProgressCallback | None = None,
-) -> UpdateSummary:
-    """Bring the index up to date with the repository on disk."""
-    report = progress or _no_progress
-    started = time.perf_counter()
-    _adopt_model(store, embedder)
-    report("scan", 0, 0)
-    scan = scan_repository(settings)
-    tally = _Tally()
-    _store_files(store, settings, scan, tally, report)
-    embedded = embed_missing(store, embedder, report)
-    sync_vectors(store, embedder, vectors)
-    report("save", 0, 1)
-    save_vectors(store, vectors, settings)
-    report("save", 1, 1)
-    counts = store.counts()
-    return UpdateSummary(
-        files=counts["files"], units=counts["units"], added=tally.added,
-        changed=tally.changed, removed=tally.removed, embedded=embedded,
-        files_parsed=tally.files_parsed, files_removed=tally.files_removed,
-        skipped=dict(scan.skipped), syntax_warnings=tuple(tally.syntax_warnings),
-        seconds=time.perf_counter() - started,
-    )
+def _no_lock() -> AbstractContextManager[object]:
+    return nullcontext()
 
 
-def _adopt_model(store: Store, embedder: Embedder) -> None:
-    manifest = store.manifest()
-    if manifest.get("model_id") == embedder.model_id:
-        return
-    with store.transaction():
-        store.drop_other_models(embedder.model_id)
-        store.set_manifest(model_id=embedder.model_id, dim=str(embedder.dim))
-        _bump(store)
+class Updater:
+    """Applies changes of the repository to the store and the vector index."""
+
+    def __init__(self, store: Store, embedder: Embedder, vectors: VectorIndex,
+                 settings: Settings, progress: ProgressCallback | None = None,
+                 write_lock: WriteLock | None = None) -> None:
+        self.store = store
+        self.embedder = embedder
+        self.vectors = vectors
+        self.settings = settings
+        self.report = progress or _no_progress
+        self.write_lock = write_lock or _no_lock
+        self.tally = _Tally()
+
+    # -- entry points ----------------------------------------------------------------
+
+    def full(self) -> UpdateSummary:
+        """Bring the whole index up to date with the repository on disk."""
+        started = time.perf_counter()
+        self.adopt_model()
+        self.report("scan", 0, 0)
+        scan = scan_repository(self.settings)
+        known = self.store.file_rows()
+        present = {f.path for f in scan.files}
+        todo = [f for f in scan.files if may_have_changed(f, known.get(f.path))]
+        changes = self.read_and_parse(todo, known, scan)
+        present -= {path for path, _ in scan.skipped_paths}
+        gone = [row for path, row in known.items() if path not in present]
+        self.apply(changes, gone, known, skipped=scan.skipped_paths)
+        return self.summary(scan.skipped, started)
+
+    def paths(self, files: list[SourceFile], gone_paths: Iterable[str],
+              scan: ScanResult | None = None) -> UpdateSummary:
+        """Apply a known set of changed files and removed paths (the watcher's path)."""
+        started = time.perf_counter()
+        self.adopt_model()
+        scan = scan or ScanResult()
+        known = self.store.file_rows()
+        todo = [f for f in files if may_have_changed(f, known.get(f.path))]
+        changes = self.read_and_parse(todo, known, scan)
+        unreadable = {path for path, _ in scan.skipped_paths}
+        gone_set = set(gone_paths) | unreadable
+        gone = [known[p] for p in sorted(gone_set) if p in known]
+        self.apply(changes, gone, known, skipped=None)
+        return self.summary(scan.skipped, started)
+
+    # -- stages ----------------------------------------------------------------------
+
+    def adopt_model(self) -> None:
+        """Record the embedder's model; a new model drops the old vectors."""
+        if self.store.manifest().get("model_id") == self.embedder.model_id:
+            return
+        with self.write_lock(), self.store.transaction():
+            self.store.drop_other_models(self.embedder.model_id)
+            self.store.set_manifest(model_id=self.embedder.model_id, dim=str(self.embedder.dim))
+            bump_generation(self.store)
+
+    def read_and_parse(self, todo: list[SourceFile], known: dict[str, FileRow],
+                       scan: ScanResult) -> list[FileChange]:
+        """Read, hash and (when the content changed) parse each file."""
+        changes: list[FileChange] = []
+        for done, source in enumerate(todo, 1):
+            try:
+                data = read_source(source, self.settings.max_file_bytes)
+            except SkipFile as skip:
+                scan.skip(source.path, str(skip.args[0]))
+                continue
+            digest = hashlib.sha256(data).hexdigest()
+            row = known.get(source.path)
+            if row is not None and row.sha256 == digest:
+                changes.append(FileChange(source, digest, None))
+            else:
+                result = parse_source(source.path, data, source.spec)
+                self.tally.files_parsed += 1
+                if result.has_errors:
+                    self.tally.syntax_warnings.append(source.path)
+                changes.append(FileChange(source, digest, result))
+            self.report("parse", done, len(todo))
+        return changes
+
+    def embed_new(self, units: list[CodeUnit]) -> None:
+        """Embed and commit the vectors these units lack (deduplicated by content)."""
+        have = self.store.known_hashes(self.embedder.model_id)
+        wanted: dict[str, CodeUnit] = {}
+        for unit in units:
+            digest = unit.content_hash
+            if digest not in have and digest not in wanted:
+                wanted[digest] = unit
+        self._embed(list(wanted.items()))
+
+    def _embed(self, items: list[tuple[str, CodeUnit]]) -> None:
+        total = len(items)
+        done = 0
+        self.report("embed", 0, total)
+        for start in range(0, total, UNITS_PER_EMBED_CHUNK):
+            chunk = items[start : start + UNITS_PER_EMBED_CHUNK]
+
+            def step(n: int) -> None:
+                nonlocal done
+                done += n
+                self.report("embed", done, total)
+
+            matrix = self.embedder.encode([unit.embed_text() for _, unit in chunk],
+                                          progress=step)
+            done = start + len(chunk)
+            with self.write_lock(), self.store.transaction():
+                self.store.put_vectors(self.embedder.model_id,
+                                       {digest: matrix[i] for i, (digest, _) in enumerate(chunk)})
+            self.tally.embedded += len(chunk)
+        self.report("embed", total, total)
+
+    def apply(self, changes: list[FileChange], gone: list[FileRow], known: dict[str, FileRow],
+              skipped: list[tuple[str, str]] | None) -> None:
+        """Embed what is new, then commit files and units in batches; HNSW follows."""
+        self.embed_new([u for c in changes if c.result for u in c.result.units])
+        batches = [changes[i : i + FILES_PER_TRANSACTION]
+                   for i in range(0, len(changes), FILES_PER_TRANSACTION)] or [[]]
+        for number, batch in enumerate(batches):
+            last = number == len(batches) - 1
+            with self.write_lock():
+                with self.store.transaction():
+                    for change in batch:
+                        self._write_file(change, known.get(change.source.path))
+                    if last:
+                        for row in gone:
+                            self.tally.removed += len(self.store.delete_file(row.id))
+                            self.tally.files_removed += 1
+                        if skipped is not None:
+                            self.store.replace_skipped(skipped)
+                    bump_generation(self.store)
+                self.sync_vectors()
+            self.report("write", number + 1, len(batches))
+        self.backfill()
+
+    def backfill(self) -> None:
+        """Embed units that still lack a vector (after a model change or a crash)."""
+        missing = missing_vector_units(self.store, self.embedder.model_id)
+        if missing:
+            self._embed([(s.content_hash, s.unit) for s in missing])
+            with self.write_lock():
+                bump_generation(self.store)
+                self.sync_vectors()
+
+    def _write_file(self, change: FileChange, row: FileRow | None) -> None:
+        source = change.source
+        if change.result is None and row is not None:
+            self.store.touch_file(row.id, source.size, source.mtime_ns)
+            return
+        assert change.result is not None
+        file_id = self.store.upsert_file(source.path, source.spec.name, source.size,
+                                         source.mtime_ns, change.sha256, change.result.has_errors)
+        self._diff_units(file_id, change.result)
+
+    def _diff_units(self, file_id: int, result: ParseResult) -> None:
+        old = self.store.unit_keys_of_file(file_id)
+        new = {unit.uid: unit for unit in result.units}
+        stale = [row_id for uid, (row_id, digest) in old.items()
+                 if uid not in new or new[uid].content_hash != digest]
+        self.store.delete_units(stale)
+        for uid, unit in new.items():
+            digest = unit.content_hash
+            previous = old.get(uid)
+            if previous is not None and previous[1] == digest:
+                self.store.update_unit_position(previous[0], unit)
+                continue
+            self.store.insert_unit(file_id, unit, digest)
+            if previous is None:
+                self.tally.added += 1
+            else:
+                self.tally.changed += 1
+        self.tally.removed += sum(1 for uid in old if uid not in new)
+
+    def sync_vectors(self) -> None:
+        """Make the in-memory HNSW hold exactly the store's vectors (call under the lock)."""
+        sync_vectors(self.store, self.embedder, self.vectors)
+
+    def summary(self, skipped: dict[str, int], started: float) -> UpdateSummary:
+        """The summary of this update."""
+        counts = self.store.counts()
+        return UpdateSummary(
+            files=counts["files"], units=counts["units"], added=self.tally.added,
+            changed=self.tally.changed, removed=self.tally.removed,
+            embedded=self.tally.embedded, files_parsed=self.tally.files_parsed,
+            files_removed=self.tally.files_removed, skipped=dict(skipped),
+            syntax_warnings=tuple(self.tally.syntax_warnings),
+            seconds=time.perf_counter() - started,
+        )
 
 
-def _bump(store: Store) -> None:
-    store.set_manifest(generation=str(store.generation() + 1), updated_at=str(time.time()))
-
-
-def _store_files(store: Store, settings: Settings, scan: ScanResult, tally: _Tally,
-                 report: ProgressCallback) -> None:
-    known = store.file_rows()
-    present = {f.path for f in scan.files}
-    todo = [f for f in scan.files if _may_have_changed(f, known.get(f.path))]
-    batch: list[tuple[SourceFile, str, ParseResult] | tuple[SourceFile, str, None]] = []
-    for done, source in enumerate(todo, 1):
-        try:
-            data = read_source(source, settings.max_file_bytes)
-        except SkipFile as skip:
-            scan.skip(source.path, str(skip.args[0]))
-            present.discard(source.path)
-            continue
-        digest = hashlib.sha256(data).hexdigest()
-        row = known.get(source.path)
-        if row is not None and row.sha256 == digest:
-            batch.append((source, digest, None))  # touched, not changed
-        else:
-            result = parse_source(source.path, data, source.spec)
-            tally.files_parsed += 1
-            if result.has_errors:
-                tally.syntax_warnings.append(source.path)
-            batch.append((source, digest, result))
-        if len(batch) >= FILES_PER_TRANSACTION:
-            _write_batch(store, batch, known, tally)
-            batch = []
-        report("parse", done, len(todo))
-    gone = [row for path, row in known.items() if path not in present]
-    with store.transaction():
-        if batch:
-            _write_file_rows(store, batch, known, tally)
-        for row in gone:
-            tally.removed += len(store.delete_file(row.id))
-            tally.files_removed += 1
-        store.replace_skipped(scan.skipped_paths)
-        _bump(store)
-
-
-def _may_have_changed(source: SourceFile, row: FileRow | None) -> bool:
+def may_have_changed(source: SourceFile, row: FileRow | None) -> bool:
+    """Whether a file's size or mtime differ from what the store recorded."""
     return row is None or row.size != source.size or row.mtime_ns != source.mtime_ns
 
 
-def _write_batch(store: Store, batch: list, known: dict[str, FileRow],
-                 tally: _Tally) -> None:
-    with store.transaction():
-        _write_file_rows(store, batch, known, tally)
-        _bump(store)
-
-
-def _write_file_rows(store: Store, batch: list, known: dict[str, FileRow],
-                     tally: _Tally) -> None:
-    for source, digest, result in batch:
-        row = known.get(source.path)
-        if result is None and row is not None:
-            store.touch_file(row.id, source.size, source.mtime_ns)
-            continue
-        file_id = store.upsert_file(source.path, source.spec.name, source.size,
-                                    source.mtime_ns, digest, result.has_errors)
-        _diff_units(store, file_id, result, tally)
-
-
-def _diff_units(store: Store, file_id: int, result: ParseResult, tally: _Tally) -> None:
-    old = store.unit_keys_of_file(file_id)
-    new = {unit.uid: unit for unit in result.units}
-    stale = [row_id for uid, (row_id, digest) in old.items()
-             if uid not in new or new[uid].content_hash != digest]
-    store.delete_units(stale)
-    for uid, unit in new.items():
-        digest = unit.content_hash
-        previous = old.get(uid)
-        if previous is not None and previous[1] == digest:
-            store.update_unit_position(previous[0], unit)
-            continue
-        store.insert_unit(file_id, unit, digest)
-        if previous is None:
-            tally.added += 1
-        else:
-            tally.changed += 1
-    tally.removed += sum(1 for uid in old if uid not in new)
-
-
-def embed_missing(store: Store, embedder: Embedder, report: ProgressCallback) -> int:
-    """Embed every content hash that has no vector for the model; returns how many."""
-    missing = missing_vector_units(store, embedder.model_id)
-    total = len(missing)
-    done = 0
-    report("embed", 0, total)
-    for start in range(0, total, UNITS_PER_EMBED_CHUNK):
-        chunk = missing[start : start + UNITS_PER_EMBED_CHUNK]
-        texts = [stored.unit.embed_text() for stored in chunk]
-
-        def step(n: int) -> None:
-            nonlocal done
-            done += n
-            report("embed", done, total)
-
-        matrix = embedder.encode(texts, progress=step)
-        done = start + len(chunk)
-        with store.transaction():
-            store.put_vectors(embedder.model_id, {
-                stored.content_hash: matrix[i] for i, stored in enumerate(chunk)
-            })
-            _bump(store)
-        report("embed", done, total)
-    return total
+def bump_generation(store: Store) -> None:
+    """Count one more committed change (inside the caller's transaction)."""
+    store.set_manifest(generation=str(store.generation() + 1), updated_at=str(time.time()))
 
 
 def sync_vectors(store: Store, embedder: Embedder, vectors: VectorIndex) -> None:
-    """Make the in-memory HNSW hold exactly the store's vectors for this model."""
+    """Make the HNSW index hold exactly the store's vectors for this model."""
     expected = vector_unit_ids(store, embedder.model_id)
     current = vectors.labels
     vectors.remove(sorted(current - expected))
@@ -241,12 +311,12 @@ def sync_vectors(store: Store, embedder: Embedder, vectors: VectorIndex) -> None
     if fresh:
         labels, matrix = store.unit_vectors(embedder.model_id, embedder.dim, fresh)
         vectors.add(labels, matrix)
+    if len(vectors) >= COMPACT_MIN_SIZE and vectors.deleted_share() > COMPACT_DELETED_SHARE:
+        vectors.compact(*store.unit_vectors(embedder.model_id, embedder.dim))
 
 
 def save_vectors(store: Store, vectors: VectorIndex, settings: Settings) -> None:
     """Save the HNSW file atomically, then record it in the manifest."""
-    from codeseek.vectors import HNSW_NAME
-
     generation = store.generation()
     vectors.save(settings.index_dir / HNSW_NAME)
     with store.transaction():
@@ -255,8 +325,6 @@ def save_vectors(store: Store, vectors: VectorIndex, settings: Settings) -> None
 
 def load_vectors(store: Store, model_id: str, dim: int, settings: Settings) -> VectorIndex:
     """The saved HNSW when it matches the store, else one rebuilt from the store."""
-    from codeseek.vectors import HNSW_NAME
-
     manifest = store.manifest()
     expected = vector_unit_ids(store, model_id)
     loaded = None
@@ -264,6 +332,11 @@ def load_vectors(store: Store, model_id: str, dim: int, settings: Settings) -> V
         loaded = VectorIndex.load(settings.index_dir / HNSW_NAME, dim, expected)
     if loaded is not None:
         return loaded
+    return rebuild_vectors(store, model_id, dim)
+
+
+def rebuild_vectors(store: Store, model_id: str, dim: int) -> VectorIndex:
+    """A fresh HNSW index from the store's vectors."""
     labels, matrix = store.unit_vectors(model_id, dim)
     rebuilt = VectorIndex.build(dim, labels, matrix)
     rebuilt.rebuilt = True

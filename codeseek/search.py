@@ -18,6 +18,7 @@ import pathspec
 from codeseek.embed import Embedder
 from codeseek.errors import InvalidQuery
 from codeseek.languages import spec_by_name
+from codeseek.locks import ReadWriteLock
 from codeseek.store import Store, StoredUnit
 from codeseek.units import KINDS, CodeUnit, split_identifier
 from codeseek.vectors import VectorIndex, exact_search
@@ -128,11 +129,12 @@ class Searcher:
     """Answers queries over one store, its vector index and its embedder."""
 
     def __init__(self, store: Store, vectors: VectorIndex, embedder: Embedder,
-                 model_id: str) -> None:
+                 model_id: str, lock: ReadWriteLock | None = None) -> None:
         self.store = store
         self.vectors = vectors
         self.embedder = embedder
         self.model_id = model_id
+        self.lock = lock or ReadWriteLock()
 
     def search(self, query: str, k: int = 10, filters: Filters | None = None) -> list[SearchHit]:
         """The k best units for one query."""
@@ -149,8 +151,9 @@ class Searcher:
             if not query.strip():
                 raise InvalidQuery("the query is empty; type what you are looking for")
         matrix = self.embedder.encode(list(queries))
-        pool = self._filtered_pool(filters)
-        return [self._answer(q, matrix[i], k, filters, pool) for i, q in enumerate(queries)]
+        with self.lock.read():  # one committed state for the whole answer
+            pool = self._filtered_pool(filters)
+            return [self._answer(q, matrix[i], k, filters, pool) for i, q in enumerate(queries)]
 
     def _filtered_pool(self, filters: Filters) -> set[int] | None:
         if not filters.active:

@@ -88,6 +88,18 @@ class VectorIndex:
         index.rebuilt = False
         return index
 
+    def deleted_share(self) -> float:
+        """The share of slots that hold deleted vectors."""
+        total = int(self._index.element_count)
+        return 0.0 if total == 0 else (total - len(self._labels)) / total
+
+    def compact(self, labels: np.ndarray, vectors: np.ndarray) -> None:
+        """Replace the graph by a fresh one holding only these vectors."""
+        fresh = VectorIndex.build(self.dim, labels, vectors)
+        with self._lock:
+            self._index = fresh._index
+            self._labels = fresh._labels
+
     def __len__(self) -> int:
         return len(self._labels)
 

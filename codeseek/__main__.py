@@ -1,0 +1,5 @@
+"""``python -m codeseek``: the command line."""
+
+from codeseek.cli import run
+
+run()

@@ -1,0 +1,345 @@
+"""The background service: index, watch, and answer queries on a local socket.
+
+``codeseek watch`` runs a :class:`Daemon` in the foreground. It holds
+``daemon.lock`` in the index folder for its whole life (a second daemon on the
+same index is refused), listens on ``daemon.sock`` (mode 0600; a connection
+from another user is refused; a socket left by a crashed daemon is replaced),
+indexes the repository, then keeps it fresh with a :class:`~codeseek.watch.Watcher`.
+The model is loaded once; queries are answered while indexing goes on.
+
+The protocol is JSON Lines: one request object per line, one response per
+line. Every message carries ``"v": PROTOCOL_VERSION``. Requests:
+
+* ``{"v": 1, "op": "search", "queries": [...], "k": 10, "languages": [],
+  "paths": [], "kinds": []}`` -> ``{"v": 1, "ok": true, "results": [[hit, ...], ...]}``
+* ``{"v": 1, "op": "status"}`` -> ``{"v": 1, "ok": true, "index": {...}, "daemon": {...}}``
+* ``{"v": 1, "op": "shutdown"}`` -> ``{"v": 1, "ok": true}``
+
+An error is ``{"v": 1, "ok": false, "error": "...", "kind": "InvalidQuery"}``.
+A request line over :data:`MAX_REQUEST_BYTES` is refused and the connection closed.
+The daemon only ever returns what the index holds; it reads no file on request.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import fcntl
+import json
+import os
+import signal
+import socket
+import socketserver
+import struct
+import threading
+import time
+from collections.abc import Callable, Sequence
+from contextlib import suppress
+from pathlib import Path
+from typing import Any
+
+from codeseek import errors
+from codeseek.api import Index
+from codeseek.errors import CodeseekError, IndexLocked
+from codeseek.search import SearchHit
+from codeseek.watch import RECONCILE_SECONDS, Watcher
+
+PROTOCOL_VERSION = 1
+SOCKET_NAME = "daemon.sock"
+LOCK_NAME = "daemon.lock"
+MAX_REQUEST_BYTES = 64 * 1024
+MAX_QUERIES = 1000
+MAX_K = 1000
+CLIENT_TIMEOUT = 30.0
+
+Log = Callable[[str], None]
+
+
+class DaemonUnavailable(Exception):
+    """No daemon answers on this index's socket (the caller works without it)."""
+
+
+# -- requests ------------------------------------------------------------------------
+
+
+def _error(message: str, kind: str = "ProtocolError") -> dict[str, Any]:
+    return {"v": PROTOCOL_VERSION, "ok": False, "error": message, "kind": kind}
+
+
+def _string_list(request: dict[str, Any], key: str) -> list[str]:
+    value = request.get(key, [])
+    if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
+        raise ValueError(f"'{key}' must be a list of strings")
+    return value
+
+
+class Daemon:
+    """Index + watcher + socket server for one repository."""
+
+    def __init__(self, index: Index, *, log: Log | None = None, poll: bool = False,
+                 reconcile_seconds: float = RECONCILE_SECONDS,
+                 debounce: float | None = None) -> None:
+        self.index = index
+        self.log = log or (lambda message: None)
+        folder = index.settings.index_dir
+        self.socket_path = folder / SOCKET_NAME
+        self.lock_path = folder / LOCK_NAME
+        kwargs: dict[str, Any] = {"log": self.log, "poll": poll,
+                                  "reconcile_seconds": reconcile_seconds}
+        if debounce is not None:
+            kwargs["debounce"] = debounce
+        self.watcher = Watcher(index, **kwargs)
+        self.state = "starting"
+        self.started_at = time.time()
+        self.queries_served = 0
+        self._lock_handle: Any = None
+        self._server: socketserver.UnixStreamServer | None = None
+        self._server_thread: threading.Thread | None = None
+        self._stopped = threading.Event()
+
+    # -- lifecycle -------------------------------------------------------------------
+
+    def start(self) -> None:
+        """Take the lock, listen, index, then watch. Returns once watching."""
+        self._take_lock()
+        self._listen()
+        self.state = "indexing"
+        self.log(f"codeseek: indexing {self.index.settings.repo}")
+        summary = self.index.update()
+        self.log(f"codeseek: {summary.files} files, {summary.units} units indexed "
+                 f"({summary.embedded} embedded, {summary.seconds:.1f} s)")
+        self.watcher.start()
+        self.state = "watching"
+        self.log(f"codeseek: watching ({self.watcher.state.mode}); queries on {self.socket_path}")
+
+    def wait(self) -> None:
+        """Block until a shutdown request or stop()."""
+        while not self._stopped.wait(0.5):
+            continue
+
+    def stop(self) -> None:
+        """Stop watching and serving; save; release the socket and the lock."""
+        if self.state == "stopped":
+            return
+        self.state = "stopping"
+        self.watcher.stop()
+        if self._server is not None:
+            self._server.shutdown()
+            self._server.server_close()
+        with suppress(FileNotFoundError):
+            self.socket_path.unlink()
+        if self._lock_handle is not None:
+            self._lock_handle.close()
+            self._lock_handle = None
+        self.state = "stopped"
+        self._stopped.set()
+
+    def _take_lock(self) -> None:
+        handle = open(self.lock_path, "a+")  # noqa: SIM115 - held for the daemon's life
+        try:
+            fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            handle.seek(0)
+            pid = handle.read().strip() or "?"
+            handle.close()
+            raise IndexLocked(
+                f"a codeseek daemon (pid {pid}) already watches the index at "
+                f"{self.index.settings.index_dir}; stop it first or use it as it is"
+            ) from None
+        handle.seek(0)
+        handle.truncate()
+        handle.write(str(os.getpid()))
+        handle.flush()
+        self._lock_handle = handle
+
+    def _listen(self) -> None:
+        # we hold the daemon lock, so a socket file left here is a crashed daemon's
+        with suppress(FileNotFoundError):
+            self.socket_path.unlink()
+        daemon = self
+
+        class Handler(socketserver.StreamRequestHandler):
+            timeout = CLIENT_TIMEOUT
+
+            def handle(self) -> None:
+                daemon._serve_connection(self)
+
+        class Server(socketserver.ThreadingMixIn, socketserver.UnixStreamServer):
+            daemon_threads = True
+            request_queue_size = 128  # many clients may connect at once
+
+        old_umask = os.umask(0o177)
+        try:
+            server = Server(str(self.socket_path), Handler)
+        finally:
+            os.umask(old_umask)
+        os.chmod(self.socket_path, 0o600)
+        self._server = server
+        self._server_thread = threading.Thread(target=server.serve_forever,
+                                               name="codeseek-socket", daemon=True)
+        self._server_thread.start()
+
+    # -- serving ---------------------------------------------------------------------
+
+    def _serve_connection(self, handler: socketserver.StreamRequestHandler) -> None:
+        if not _same_user(handler.request):
+            _send(handler, _error("refused: the daemon serves only its own user", "Refused"))
+            return
+        while True:
+            try:
+                line = handler.rfile.readline(MAX_REQUEST_BYTES + 1)
+            except (OSError, ValueError):
+                return
+            if not line:
+                return
+            if len(line) > MAX_REQUEST_BYTES:
+                _send(handler, _error(f"request too large (over {MAX_REQUEST_BYTES} bytes)"))
+                return
+            response = self.handle_line(line)
+            if not _send(handler, response):
+                return
+            if response.get("op") == "shutdown":
+                threading.Thread(target=self.stop, daemon=True).start()
+                return
+
+    def handle_line(self, line: bytes) -> dict[str, Any]:
+        """The response to one request line (never raises)."""
+        try:
+            request = json.loads(line.decode("utf-8"))
+        except (UnicodeDecodeError, ValueError):
+            return _error("malformed request: not a JSON object on one line")
+        if not isinstance(request, dict):
+            return _error("malformed request: not a JSON object on one line")
+        if request.get("v") != PROTOCOL_VERSION:
+            return _error(f"unsupported protocol version {request.get('v')!r}; "
+                          f"this daemon speaks {PROTOCOL_VERSION}")
+        op = request.get("op")
+        try:
+            if op == "search":
+                return self._search(request)
+            if op == "status":
+                return {"v": PROTOCOL_VERSION, "ok": True, "index": self.index.status().to_json(),
+                        "daemon": self.daemon_status()}
+            if op == "shutdown":
+                return {"v": PROTOCOL_VERSION, "ok": True, "op": "shutdown"}
+        except ValueError as exc:
+            return _error(f"malformed request: {exc}")
+        except CodeseekError as exc:
+            return _error(str(exc), type(exc).__name__)
+        return _error(f"unknown op {op!r}; use search, status or shutdown")
+
+    def _search(self, request: dict[str, Any]) -> dict[str, Any]:
+        queries = _string_list(request, "queries")
+        if not queries or len(queries) > MAX_QUERIES:
+            raise ValueError(f"'queries' must hold 1 to {MAX_QUERIES} strings")
+        k = request.get("k", 10)
+        if not isinstance(k, int) or isinstance(k, bool) or not 1 <= k <= MAX_K:
+            raise ValueError(f"'k' must be a whole number from 1 to {MAX_K}")
+        results = self.index.search_many(
+            queries, k, languages=_string_list(request, "languages"),
+            paths=_string_list(request, "paths"), kinds=_string_list(request, "kinds"))
+        self.queries_served += len(queries)
+        return {"v": PROTOCOL_VERSION, "ok": True,
+                "results": [[dataclasses.asdict(hit) for hit in hits] for hits in results]}
+
+    def daemon_status(self) -> dict[str, Any]:
+        """What the daemon is doing."""
+        watch = self.watcher.state
+        return {
+            "pid": os.getpid(), "state": self.state, "started_at": self.started_at,
+            "watcher": watch.mode, "pending": len(self.watcher.queue),
+            "last_update": watch.last_update, "last_change": watch.last_summary,
+            "last_error": watch.last_error, "queries_served": self.queries_served,
+            "units_embedded": watch.embedded, "batches": watch.batches,
+        }
+
+
+def _same_user(sock: socket.socket) -> bool:
+    try:
+        raw = sock.getsockopt(socket.SOL_SOCKET, socket.SO_PEERCRED, struct.calcsize("3i"))
+    except OSError:
+        return False
+    _pid, uid, _gid = struct.unpack("3i", raw)
+    return uid == os.getuid()
+
+
+def _send(handler: socketserver.StreamRequestHandler, message: dict[str, Any]) -> bool:
+    try:
+        handler.wfile.write(json.dumps(message).encode("utf-8") + b"\n")
+        handler.wfile.flush()
+    except OSError:
+        return False
+    return True
+
+
+def run_foreground(index: Index, log: Log, *, poll: bool = False) -> None:
+    """``codeseek watch``: run until Ctrl-C, SIGTERM or a shutdown request."""
+    daemon = Daemon(index, log=log, poll=poll)
+
+    def on_signal(signum: int, frame: object) -> None:
+        threading.Thread(target=daemon.stop, daemon=True).start()
+
+    previous = {sig: signal.signal(sig, on_signal) for sig in (signal.SIGTERM, signal.SIGINT)}
+    try:
+        daemon.start()
+        daemon.wait()
+    finally:
+        daemon.stop()
+        for sig, handler in previous.items():
+            signal.signal(sig, handler)
+        log("codeseek: stopped")
+
+
+# -- the client ------------------------------------------------------------------------
+
+
+class DaemonClient:
+    """Talks to a running daemon; every call raises DaemonUnavailable if none answers."""
+
+    def __init__(self, index_dir: Path, timeout: float = CLIENT_TIMEOUT) -> None:
+        self.socket_path = index_dir / SOCKET_NAME
+        self.timeout = timeout
+
+    def request(self, message: dict[str, Any]) -> dict[str, Any]:
+        """Send one request and return the response (errors re-raised as CodeseekError)."""
+        if not self.socket_path.exists():
+            raise DaemonUnavailable(str(self.socket_path))
+        sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+        sock.settimeout(self.timeout)
+        try:
+            sock.connect(str(self.socket_path))
+            sock.sendall(json.dumps({"v": PROTOCOL_VERSION, **message}).encode() + b"\n")
+            data = sock.makefile("rb").readline()
+        except OSError as exc:
+            raise DaemonUnavailable(f"{self.socket_path}: {exc}") from exc
+        finally:
+            sock.close()
+        if not data:
+            raise DaemonUnavailable(f"{self.socket_path}: no answer")
+        response: dict[str, Any] = json.loads(data)
+        if not response.get("ok"):
+            error_type = getattr(errors, str(response.get("kind")), None)
+            if isinstance(error_type, type) and issubclass(error_type, CodeseekError):
+                raise error_type(response.get("error", "daemon error"))
+            raise CodeseekError(f"the daemon refused the request: {response.get('error')}")
+        return response
+
+    def search_many(self, queries: Sequence[str], k: int = 10, *,
+                    languages: Sequence[str] = (), paths: Sequence[str] = (),
+                    kinds: Sequence[str] = ()) -> list[list[SearchHit]]:
+        """The daemon's answers, as the in-process search would give them."""
+        response = self.request({"op": "search", "queries": list(queries), "k": k,
+                                 "languages": list(languages), "paths": list(paths),
+                                 "kinds": list(kinds)})
+        return [[SearchHit(**hit) for hit in hits] for hits in response["results"]]
+
+    def search(self, query: str, k: int = 10, **filters: Sequence[str]) -> list[SearchHit]:
+        """One query's answer."""
+        return self.search_many([query], k, **filters)[0]
+
+    def status(self) -> dict[str, Any]:
+        """The daemon's status response."""
+        return self.request({"op": "status"})
+
+    def shutdown(self) -> None:
+        """Ask the daemon to stop."""
+        self.request({"op": "shutdown"})

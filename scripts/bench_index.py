@@ -1,0 +1,145 @@
+"""Indexing and query benchmark: prints its figures; asserts nothing.
+
+Usage: .venv/bin/python scripts/bench_index.py [PATH] [--torch-sample N] [--queries N]
+
+Without PATH it indexes a copy of this machine's Python standard library
+(test folders left out). It prints, from one run on one machine:
+  * the full index: files, units, seconds, units/s;
+  * the raw encode throughput of the default (ONNX) backend on the same unit
+    texts, same batch size, and of the torch reference on a sample, with the
+    ratios pipeline / raw ONNX and ONNX / torch;
+  * a second index of the unchanged tree (seconds, units embedded: should be 0);
+  * warm query latency p50/p95 in one process;
+  * a cold `codeseek search` CLI call (a new process, no daemon).
+"""
+
+from __future__ import annotations
+
+import argparse
+import shutil
+import statistics
+import subprocess
+import sys
+import sysconfig
+import tempfile
+import time
+from pathlib import Path
+
+PROJECT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(PROJECT))
+
+from codeseek import open_index  # noqa: E402
+from codeseek.config import load_settings  # noqa: E402
+from codeseek.embed import load_embedder  # noqa: E402
+from codeseek.parse import parse_source  # noqa: E402
+from codeseek.scan import SkipFile, read_source, scan_repository  # noqa: E402
+
+SKIP = shutil.ignore_patterns("test", "tests", "idle_test", "site-packages", "__pycache__")
+
+
+def copy_stdlib(target: Path) -> Path:
+    """A copy of the standard library without its test folders."""
+    shutil.copytree(sysconfig.get_paths()["stdlib"], target, ignore=SKIP, symlinks=True)
+    return target
+
+
+def percentile(values: list[float], share: float) -> float:
+    ordered = sorted(values)
+    return ordered[min(len(ordered) - 1, int(round(share * (len(ordered) - 1))))]
+
+
+def parse_throughput(repo: Path) -> None:
+    settings = load_settings(repo)
+    per_language: dict[str, list[float]] = {}
+    for source in scan_repository(settings).files:
+        try:
+            data = read_source(source, settings.max_file_bytes)
+        except SkipFile:
+            continue
+        start = time.perf_counter()
+        units = parse_source(source.path, data, source.spec).units
+        elapsed = time.perf_counter() - start
+        stats = per_language.setdefault(source.spec.name, [0.0, 0.0, 0.0])
+        stats[0] += len(data)
+        stats[1] += len(units)
+        stats[2] += elapsed
+    for language, (size, units, seconds) in sorted(per_language.items()):
+        print(f"parse {language:<10} {size / 1e6 / seconds:6.1f} MB/s "
+              f"{units / seconds:9.0f} units/s ({units:.0f} units, {size / 1e6:.1f} MB)")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__,
+                                     formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("path", nargs="?", help="repository to index (default: a stdlib copy)")
+    parser.add_argument("--torch-sample", type=int, default=2000,
+                        help="unit texts encoded by the torch reference (default 2000)")
+    parser.add_argument("--queries", type=int, default=200)
+    args = parser.parse_args()
+
+    with tempfile.TemporaryDirectory() as scratch:
+        repo = Path(args.path).resolve() if args.path else copy_stdlib(Path(scratch) / "stdlib")
+        index_dir = Path(scratch) / "index"
+        print(f"repository: {repo}")
+        parse_throughput(repo)
+
+        index = open_index(repo, index_dir=index_dir, create=True)
+        embedder = index.embedder  # load (and export once) before the clock starts
+        embedder.encode(["warm up"])
+        start = time.perf_counter()
+        summary = index.update()
+        full = time.perf_counter() - start
+        print(f"full index: {summary.files} files, {summary.units} units, "
+              f"{summary.embedded} embedded, {full:.1f} s, "
+              f"{summary.embedded / full:.1f} units/s")
+
+        texts = [s.unit.embed_text() for s in index.store.iter_units()]
+        start = time.perf_counter()
+        embedder.encode(texts)
+        raw = time.perf_counter() - start
+        raw_rate = len(texts) / raw
+        print(f"raw ONNX encode of the same {len(texts)} texts: {raw:.1f} s, "
+              f"{raw_rate:.1f} units/s; pipeline / raw = {summary.embedded / full / raw_rate:.2f}")
+
+        sample = texts[: args.torch_sample]
+        torch_embedder = load_embedder(index.settings.with_changes(backend="torch"))
+        torch_embedder.encode(["warm up"])
+        start = time.perf_counter()
+        torch_embedder.encode(sample)
+        torch_rate = len(sample) / (time.perf_counter() - start)
+        start = time.perf_counter()
+        embedder.encode(sample)
+        onnx_rate = len(sample) / (time.perf_counter() - start)
+        print(f"on {len(sample)} texts, same run: torch {torch_rate:.1f} units/s, "
+              f"ONNX {onnx_rate:.1f} units/s, ONNX / torch = {onnx_rate / torch_rate:.2f}")
+
+        start = time.perf_counter()
+        again = index.update()
+        print(f"unchanged re-index: {time.perf_counter() - start:.2f} s, "
+              f"{again.embedded} units embedded, {again.files_parsed} files parsed")
+
+        docs = [s.unit.doc_summary for s in index.store.iter_units() if s.unit.doc_summary]
+        queries = docs[:: max(1, len(docs) // args.queries)][: args.queries]
+        index.search(queries[0], 10)
+        latencies = []
+        for query in queries:
+            start = time.perf_counter()
+            index.search(query, 10)
+            latencies.append((time.perf_counter() - start) * 1000)
+        print(f"warm query latency over {len(latencies)} queries: "
+              f"p50 {percentile(latencies, 0.5):.1f} ms, p95 {percentile(latencies, 0.95):.1f} ms")
+        index.close()
+
+        cli = [str(PROJECT / ".venv" / "bin" / "codeseek"), "search", "read a config file",
+               "--repo", str(repo), "--index-dir", str(index_dir), "-k", "5"]
+        walls = []
+        for _ in range(3):
+            start = time.perf_counter()
+            subprocess.run(cli, check=True, capture_output=True)
+            walls.append(time.perf_counter() - start)
+        print(f"cold CLI search (new process, no daemon): best {min(walls):.2f} s, "
+              f"median {statistics.median(walls):.2f} s")
+
+
+if __name__ == "__main__":
+    main()

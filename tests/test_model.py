@@ -1,0 +1,101 @@
+"""Tests with the real packaged model (marker ``model``; seconds, not milliseconds)."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import sysconfig
+from collections.abc import Iterator
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from codeseek import open_index
+from codeseek.api import Index
+from codeseek.config import load_settings
+from codeseek.embed import OnnxEmbedder, TorchEmbedder, load_embedder
+from codeseek.languages import spec_for_path
+from codeseek.parse import parse_source
+
+pytestmark = pytest.mark.model
+
+DATA = Path(__file__).resolve().parent / "data"
+SAMPLE_REPO = Path(__file__).resolve().parent.parent / "sample_repo"
+STDLIB = Path(sysconfig.get_paths()["stdlib"])
+
+
+@pytest.fixture(scope="module")
+def sample_index(tmp_path_factory: pytest.TempPathFactory) -> Iterator[Index]:
+    repo = tmp_path_factory.mktemp("model") / "repo"
+    shutil.copytree(SAMPLE_REPO, repo)
+    index = open_index(repo, create=True)
+    index.update()
+    yield index
+    index.close()
+
+
+def stdlib_texts(limit: int) -> list[str]:
+    texts: list[str] = []
+    for name in ("textwrap.py", "json/decoder.py", "argparse.py", "shutil.py", "csv.py"):
+        data = (STDLIB / name).read_bytes()
+        spec = spec_for_path(name)
+        assert spec is not None
+        texts.extend(u.embed_text() for u in parse_source(name, data, spec).units)
+    return texts[:limit]
+
+
+def test_onnx_matches_the_torch_reference(tmp_path: Path) -> None:
+    settings = load_settings(tmp_path)
+    onnx = load_embedder(settings)
+    torch_ref = load_embedder(settings.with_changes(backend="torch"))
+    assert isinstance(onnx, OnnxEmbedder) and isinstance(torch_ref, TorchEmbedder)
+    assert onnx.model_id == torch_ref.model_id and onnx.dim == torch_ref.dim == 384
+    # real functions of the standard library, long ones truncated at 256 word pieces
+    texts = stdlib_texts(200)
+    assert len(texts) == 200
+    a, b = onnx.encode(texts), torch_ref.encode(texts)
+    # reference: sentence-transformers' own encode on torch
+    cosines = (a * b).sum(axis=1)
+    assert cosines.min() >= 0.999
+    assert np.allclose(np.linalg.norm(a, axis=1), 1.0, atol=1e-4)
+
+
+def test_sample_queries_find_their_function_in_the_top_3(sample_index: Index) -> None:
+    cases = json.loads((DATA / "sample_queries.json").read_text(encoding="utf-8"))
+    misses = []
+    for case in cases:
+        hits = sample_index.search(case["query"], 3)
+        if (case["path"], case["qualname"]) not in {(h.path, h.qualname) for h in hits}:
+            misses.append((case["query"], case["qualname"], [h.qualname for h in hits]))
+    assert not misses
+
+
+def test_batch_ranking_equals_one_by_one(sample_index: Index) -> None:
+    cases = json.loads((DATA / "sample_queries.json").read_text(encoding="utf-8"))
+    queries = [c["query"] for c in cases]
+    batched = sample_index.search_many(queries, 5)
+    for query, hits in zip(queries, batched, strict=True):
+        single = sample_index.search(query, 5)
+        assert [(h.path, h.qualname) for h in hits] == [(h.path, h.qualname) for h in single]
+        assert [h.score for h in hits] == pytest.approx([h.score for h in single], abs=1e-6)
+
+
+def test_ignored_code_is_never_found(sample_index: Index) -> None:
+    for hit in sample_index.search("retry uploading telemetry with a growing delay", 50):
+        assert not hit.path.startswith("build/")
+
+
+def test_hnsw_recall_on_real_vectors(sample_index: Index) -> None:
+    from codeseek.vectors import exact_search
+
+    searcher = sample_index.searcher()
+    labels, matrix = sample_index.store.unit_vectors(searcher.model_id, searcher.vectors.dim)
+    cases = json.loads((DATA / "sample_queries.json").read_text(encoding="utf-8"))
+    queries = sample_index.embedder.encode([c["query"] for c in cases])
+    agree = 0
+    for query in queries:
+        ann = {label for label, _ in searcher.vectors.search(query, 10)}
+        # reference: numpy brute-force cosine search
+        agree += len(ann & {label for label, _ in exact_search(query, labels, matrix, 10)})
+    assert agree / (10 * len(queries)) >= 0.99
