@@ -1,9 +1,17 @@
-"""Units of a file or a tree, straight from the parser: no index, no model."""
+"""Units of a file or a tree, straight from the parser: no index, no model.
+
+Paths are shown the way the caller named them: a file as given, the files of a
+folder as that folder joined with their path inside it (``sample_repo/go`` ->
+``sample_repo/go/dockd/packet.go``), so every line can be opened as printed.
+A folder is read with the same rules as an index (ignore files, skipped
+kinds of files); a file that is left out, including one whose parse runs past
+the time budget, is reported to ``on_skip`` with its reason.
+"""
 
 from __future__ import annotations
 
-from collections.abc import Iterator
-from pathlib import Path
+from collections.abc import Callable, Iterator
+from pathlib import Path, PurePosixPath
 
 from codeseek.config import load_settings
 from codeseek.errors import RepositoryNotFound, UnsupportedLanguage
@@ -12,31 +20,55 @@ from codeseek.parse import parse_source
 from codeseek.scan import SkipFile, content_reason, read_source, scan_repository
 from codeseek.units import CodeUnit
 
+SkipCallback = Callable[[str, str], None]
+"""Called as ``on_skip(path, reason)`` for each file of a folder that is left out."""
 
-def outline_path(path: Path) -> Iterator[CodeUnit]:
+
+def outline_path(path: Path, on_skip: SkipCallback | None = None) -> Iterator[CodeUnit]:
     """The units of one file, or of every indexable file under a folder."""
     if path.is_file():
-        spec = spec_for_path(path.name)
-        if spec is None:
-            raise UnsupportedLanguage(
-                f"{path}: no supported language for this file; codeseek reads "
-                f"{', '.join(language_names())}"
-            )
-        try:
-            data = path.read_bytes()
-        except OSError as exc:
-            raise RepositoryNotFound(f"{path}: cannot read: {exc.strerror}") from exc
-        reason = content_reason(data, len(data))
-        if reason is not None:
-            raise UnsupportedLanguage(f"{path}: left out: {reason}")
-        yield from parse_source(path.as_posix(), data, spec).units
+        yield from _outline_file(path)
         return
     if not path.is_dir():
         raise RepositoryNotFound(f"{path}: no such file or folder")
     settings = load_settings(path)
-    for source in scan_repository(settings).files:
+    scan = scan_repository(settings)
+    for skipped_path, reason in scan.skipped_paths:
+        if on_skip is not None:
+            on_skip(_shown(path, skipped_path), reason)
+    for source in scan.files:
+        shown = _shown(path, source.path)
         try:
             data = read_source(source, settings.max_file_bytes)
-        except SkipFile:
+            units = parse_source(shown, data, source.spec).units
+        except SkipFile as skip:
+            if on_skip is not None:
+                on_skip(shown, str(skip.args[0]))
             continue
-        yield from parse_source(source.path, data, source.spec).units
+        yield from units
+
+
+def _outline_file(path: Path) -> Iterator[CodeUnit]:
+    spec = spec_for_path(path.name)
+    if spec is None:
+        raise UnsupportedLanguage(
+            f"{path}: no supported language for this file; codeseek reads "
+            f"{', '.join(language_names())}"
+        )
+    try:
+        data = path.read_bytes()
+    except OSError as exc:
+        raise RepositoryNotFound(f"{path}: cannot read: {exc.strerror}") from exc
+    reason = content_reason(data, len(data))
+    if reason is not None:
+        raise UnsupportedLanguage(f"{path}: left out: {reason}")
+    try:
+        units = parse_source(path.as_posix(), data, spec).units
+    except SkipFile as skip:
+        raise UnsupportedLanguage(f"{path}: left out: {skip.args[0]}") from None
+    yield from units
+
+
+def _shown(folder: Path, rel_path: str) -> str:
+    """A path inside ``folder`` as the caller would write it (no leading ``./``)."""
+    return str(PurePosixPath(folder.as_posix()) / rel_path).removeprefix("./")

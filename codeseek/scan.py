@@ -54,6 +54,7 @@ REASON_SYMLINK = "symbolic link (not followed)"
 REASON_VANISHED = "vanished during scan"
 REASON_UNREADABLE = "unreadable"
 REASON_OTHER = "no supported language"
+REASON_PARSE_BUDGET = "parsing took longer than the per-file time budget"
 
 
 @dataclass(frozen=True)

@@ -1,6 +1,7 @@
 """Indexing and query benchmark: prints its figures; asserts nothing.
 
 Usage: .venv/bin/python scripts/bench_index.py [PATH] [--torch-sample N] [--queries N]
+       .venv/bin/python scripts/bench_index.py --corpora [--repeat N]
 
 Without PATH it indexes a copy of this machine's Python standard library
 (test folders left out). It prints, from one run on one machine:
@@ -11,11 +12,18 @@ Without PATH it indexes a copy of this machine's Python standard library
   * a second index of the unchanged tree (seconds, units embedded: should be 0);
   * warm query latency p50/p95 in one process;
   * a cold `codeseek search` CLI call (a new process, no daemon).
+
+With --corpora it prints parse throughput only, per language, on the real
+registry code the language tests use (tests/corpora.py; fetched and cached on
+first use) and on this machine's standard library for Python: the raw
+tree-sitter parse, and the whole extraction (parse, query, names, docs,
+signatures) in MB/s and units/s, best of --repeat passes. No embedding.
 """
 
 from __future__ import annotations
 
 import argparse
+import functools
 import shutil
 import statistics
 import subprocess
@@ -23,6 +31,7 @@ import sys
 import sysconfig
 import tempfile
 import time
+from collections.abc import Callable
 from pathlib import Path
 
 PROJECT = Path(__file__).resolve().parent.parent
@@ -31,7 +40,8 @@ sys.path.insert(0, str(PROJECT))
 from codeseek import open_index  # noqa: E402
 from codeseek.config import load_settings  # noqa: E402
 from codeseek.embed import load_embedder  # noqa: E402
-from codeseek.parse import parse_source  # noqa: E402
+from codeseek.languages import LanguageSpec, spec_by_name  # noqa: E402
+from codeseek.parse import _parser, parse_source  # noqa: E402
 from codeseek.scan import SkipFile, read_source, scan_repository  # noqa: E402
 
 SKIP = shutil.ignore_patterns("test", "tests", "idle_test", "site-packages", "__pycache__")
@@ -68,6 +78,57 @@ def parse_throughput(repo: Path) -> None:
               f"{units / seconds:9.0f} units/s ({units:.0f} units, {size / 1e6:.1f} MB)")
 
 
+def corpus_files() -> list[tuple[str, str, list[Path]]]:
+    """(language, source label, files) for every language: registry corpora and the stdlib."""
+    sys.path.insert(0, str(PROJECT / "tests"))
+    from corpora import CORPORA, files  # the test corpora: fetched and cached on first use
+
+    stdlib = sorted(Path(sysconfig.get_paths()["stdlib"]).glob("*.py"))
+    found = [("python", f"this Python's standard library ({len(stdlib)} top-level modules)",
+              stdlib)]
+    found += [(lang, corpus.label, files(corpus)) for lang, corpus in sorted(CORPORA.items())]
+    return found
+
+
+def raw_parses(spec: LanguageSpec, blobs: list[tuple[str, bytes]]) -> None:
+    """tree-sitter alone: one parse per file."""
+    parser = _parser(spec)
+    for _, data in blobs:
+        parser.parse(data)
+
+
+def extractions(spec: LanguageSpec, blobs: list[tuple[str, bytes]]) -> None:
+    """codeseek's whole extraction: parse, query, names, docs, signatures."""
+    for name, data in blobs:
+        parse_source(name, data, spec)
+
+
+def best_time(run: Callable[[], None], repeat: int) -> float:
+    """The fastest of ``repeat`` timed calls of ``run`` (after one warm-up call)."""
+    run()
+    times = []
+    for _ in range(repeat):
+        start = time.perf_counter()
+        run()
+        times.append(time.perf_counter() - start)
+    return min(times)
+
+
+def corpus_throughput(repeat: int) -> None:
+    print(f"parse throughput per language, best of {repeat} passes, one process, no embedding")
+    print(f"{'language':<11}{'tree-sitter':>13}{'extraction':>12}{'units/s':>10}"
+          f"{'units':>7}{'MB':>7}  source")
+    for language, label, paths in corpus_files():
+        spec: LanguageSpec = spec_by_name(language)
+        blobs = [(p.name, p.read_bytes()) for p in paths]
+        size = sum(len(data) for _, data in blobs)
+        units = sum(len(parse_source(name, data, spec).units) for name, data in blobs)
+        raw = best_time(functools.partial(raw_parses, spec, blobs), repeat)
+        full = best_time(functools.partial(extractions, spec, blobs), repeat)
+        print(f"{language:<11}{size / 1e6 / raw:>9.1f} MB/s{size / 1e6 / full:>7.1f} MB/s"
+              f"{units / full:>10.0f}{units:>7}{size / 1e6:>7.2f}  {label}")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -75,7 +136,13 @@ def main() -> None:
     parser.add_argument("--torch-sample", type=int, default=2000,
                         help="unit texts encoded by the torch reference (default 2000)")
     parser.add_argument("--queries", type=int, default=200)
+    parser.add_argument("--corpora", action="store_true",
+                        help="only parse throughput per language on the real test corpora")
+    parser.add_argument("--repeat", type=int, default=5, help="passes for --corpora (best of)")
     args = parser.parse_args()
+    if args.corpora:
+        corpus_throughput(args.repeat)
+        return
 
     with tempfile.TemporaryDirectory() as scratch:
         repo = Path(args.path).resolve() if args.path else copy_stdlib(Path(scratch) / "stdlib")

@@ -4,6 +4,29 @@
 set -euo pipefail
 cd "$(dirname "$0")/.."
 PYTHON="${PYTHON:-python3}"
+# Test tools: git (the reference for ignore rules), Universal Ctags (the
+# reference the language tests check extraction against, tests/test_ctags.py),
+# npm (fetches their npm corpora, tests/corpora.py) and tmux (the terminal test
+# of `codeseek ui`). Installed with apt-get when running as root (as CI does);
+# otherwise say how: those tests skip without them.
+missing=()
+command -v git >/dev/null 2>&1 || missing+=(git)
+command -v tmux >/dev/null 2>&1 || missing+=(tmux)
+ctags_version="$(ctags --version 2>/dev/null || true)"
+[[ "$ctags_version" == *"Universal Ctags"* ]] || missing+=(universal-ctags)
+command -v npm >/dev/null 2>&1 || missing+=(npm)
+if [ "${#missing[@]}" -gt 0 ]; then
+    if [ "$(id -u)" = 0 ] && command -v apt-get >/dev/null 2>&1; then
+        echo "setup: installing ${missing[*]}" >&2
+        export DEBIAN_FRONTEND=noninteractive
+        apt-get install -y -qq --no-install-recommends "${missing[@]}" >/dev/null \
+            || { apt-get update -qq \
+                 && apt-get install -y -qq --no-install-recommends "${missing[@]}" >/dev/null; }
+    else
+        echo "setup: ${missing[*]} not installed; the language tests that need them will skip." >&2
+        echo "setup: install with: sudo apt-get install ${missing[*]}" >&2
+    fi
+fi
 if [ ! -x .venv/bin/python ]; then
     echo "setup: creating .venv" >&2
     "$PYTHON" -m venv .venv

@@ -23,8 +23,36 @@ if TYPE_CHECKING:
 DocRule = Callable[["tree_sitter.Node", bytes], "tuple[str, tuple[int, int] | None]"]
 """(definition node, source) -> (cleaned doc, byte span of an in-body doc or None)."""
 
-ReceiverRule = Callable[["tree_sitter.Node", bytes], "str | None"]
-"""(definition node, source) -> a qualifier that is not an enclosing node (Go receivers)."""
+
+@dataclass(frozen=True)
+class Naming:
+    """How one captured definition is named, when its query capture alone cannot say.
+
+    Attributes:
+        name: the unit's own name (``release``, ``operator()``, ``default``).
+        qualifier: qualifiers written in the definition itself, outermost first:
+            a Go receiver ``(*Ledger)``, the ``Dock`` of a C++ ``Dock::release``,
+            the ``res`` of a JavaScript ``res.send = function``.
+        member_separator: joins the scope to the name instead of the spec's
+            separator (Ruby: ``#`` for instance methods, ``.`` for singleton ones).
+        is_method: forces the kind (True: method, False: function); None lets
+            the enclosing scope decide.
+    """
+
+    name: str
+    qualifier: tuple[str, ...] = ()
+    member_separator: str | None = None
+    is_method: bool | None = None
+
+
+NameRule = Callable[["tree_sitter.Node", "tree_sitter.Node | None", bytes], "Naming | None"]
+"""(definition node, its @name node or None, source) -> its naming, or None: not a unit."""
+
+StartRule = Callable[["tree_sitter.Node"], "tree_sitter.Node"]
+"""(definition node) -> the node where the unit's own code starts (after annotations)."""
+
+Prepare = Callable[[bytes], bytes]
+"""source -> the bytes tree-sitter reads: same length, same line breaks (offsets hold)."""
 
 
 @dataclass(frozen=True)
@@ -38,16 +66,26 @@ class LanguageSpec:
         grammar_function: the function in it that returns the language pointer.
         query_file: the ``.scm`` file in ``queries/`` that captures units as
             ``@function`` or ``@class`` (or ``@scope``: a container such as a
-            Rust ``impl`` block that qualifies names without being a unit),
-            each with a ``@name``.
+            Rust ``impl`` block or a C++ namespace that qualifies names without
+            being a unit; or ``@inline``: a container, such as a Java anonymous
+            class body, whose definitions stay inside their parent), each with
+            a ``@name`` unless ``name_rule`` names it.
         doc_rule: finds the doc of a definition node.
         body_field: the field that holds the body (the signature ends there).
-        class_scopes: node types whose functions are methods.
+        class_scopes: ``@scope`` node types whose functions are methods (a Rust
+            ``impl`` block); functions directly in an ``@class`` always are.
         wrapper_types: parent node types that belong to the definition
-            (decorators, ``export``): the signature and doc search start there.
+            (decorators, ``export``, ``template<...>``): the signature and doc
+            search start there.
         separator: joins a qualified name.
-        receiver_rule: a qualifier taken from the definition itself (Go receivers).
-        method_types: node types that are always methods.
+        name_rule: names a definition when the ``@name`` capture is not enough
+            (receivers, qualified declarators, trait impls).
+        start_rule: where the unit's code starts, when not at its node (Java
+            annotations, like Python decorators, are shown in the signature
+            but the unit starts at the declaration itself).
+        prepare: rewrites what tree-sitter reads without moving a byte (C/C++:
+            macro annotations the grammar cannot know are blanked); names,
+            docs and code are still read from the file's own bytes.
         cr_newlines: a lone carriage return ends a line (as in Python); the
             engine reads it as a line feed, which tree-sitter expects.
     """
@@ -62,8 +100,9 @@ class LanguageSpec:
     class_scopes: frozenset[str] = field(default_factory=frozenset)
     wrapper_types: frozenset[str] = field(default_factory=frozenset)
     separator: str = "."
-    receiver_rule: ReceiverRule | None = None
-    method_types: frozenset[str] = field(default_factory=frozenset)
+    name_rule: NameRule | None = None
+    start_rule: StartRule | None = None
+    prepare: Prepare | None = None
     cr_newlines: bool = False
 
     def language(self) -> tree_sitter.Language:
@@ -82,10 +121,17 @@ def _load_language(module_name: str, function_name: str) -> tree_sitter.Language
     import tree_sitter
 
     module = importlib.import_module(module_name)
-    return tree_sitter.Language(getattr(module, function_name)())
+    try:
+        return tree_sitter.Language(getattr(module, function_name)())
+    except ValueError as exc:  # the grammar's ABI is outside what this tree-sitter reads
+        raise UnsupportedLanguage(
+            f"the {module_name} grammar does not fit tree-sitter "
+            f"(reads ABI {tree_sitter.MIN_COMPATIBLE_LANGUAGE_VERSION}-"
+            f"{tree_sitter.LANGUAGE_VERSION}): {exc}; run scripts/setup.sh to reinstall"
+        ) from exc
 
 
-_SPEC_MODULES = ("python", "javascript", "typescript", "go", "rust")
+_SPEC_MODULES = ("python", "javascript", "typescript", "go", "rust", "java", "c", "cpp", "ruby")
 
 
 @cache

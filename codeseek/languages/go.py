@@ -1,25 +1,43 @@
 """Go: functions, methods (qualified by receiver: ``(*Ledger).Post``,
-``Ledger.Total``) and named struct and interface types.
+``Ledger.Total``, type parameters dropped), named struct and interface types,
+and the methods an interface declares (``Reader.Read``).
 
-Doc rule (Go doc comment convention): the ``//`` lines directly above the
-declaration, with no blank line between. Function literals are not units.
+Doc rule (Go doc comment convention): the ``//`` lines (or a ``/* */`` block)
+directly above the declaration, with no blank line between; directives such
+as ``//go:noinline`` are not doc text. A type in a ``type ( ... )`` group takes
+the comment above its own line, else the group's. A run of ``//`` lines that is
+mostly commented-out code is not a doc.
+
+Nesting: function literals (``func() { ... }`` values, goroutine bodies) are
+anonymous and stay inside their parent, even when assigned to a variable.
 """
 
 from __future__ import annotations
 
 from typing import TYPE_CHECKING
 
-from codeseek.languages import LanguageSpec
+from codeseek.languages import LanguageSpec, Naming
 from codeseek.languages.comments import leading_doc_rule
 
 if TYPE_CHECKING:
     import tree_sitter
 
 
-def go_receiver(node: tree_sitter.Node, source: bytes) -> str | None:
-    """``(*Ledger)`` or ``Ledger`` for a method declaration, else None."""
-    if node.type != "method_declaration":
+def go_naming(
+    node: tree_sitter.Node, name_node: tree_sitter.Node | None, source: bytes
+) -> Naming | None:
+    """The name, and for a method its receiver as qualifier."""
+    if name_node is None:
         return None
+    name = source[name_node.start_byte : name_node.end_byte].decode("utf-8", "replace")
+    if node.type != "method_declaration":
+        return Naming(name)
+    receiver = _receiver(node, source)
+    return Naming(name, (receiver,) if receiver else (), is_method=True)
+
+
+def _receiver(node: tree_sitter.Node, source: bytes) -> str | None:
+    """``(*Ledger)`` or ``Ledger`` for a method declaration."""
     receiver = node.child_by_field_name("receiver")
     if receiver is None:
         return None
@@ -28,7 +46,7 @@ def go_receiver(node: tree_sitter.Node, source: bytes) -> str | None:
         if rtype is None:
             continue
         text = source[rtype.start_byte : rtype.end_byte].decode("utf-8", "replace")
-        text = text.split("[", 1)[0]  # drop type parameters
+        text = "".join(text.split()).split("[", 1)[0]  # drop type parameters
         return f"({text})" if text.startswith("*") else text
     return None
 
@@ -41,11 +59,11 @@ SPECS = (
         grammar_function="language",
         query_file="go.scm",
         doc_rule=leading_doc_rule(
-            accept=lambda text: text.startswith("//"),
+            accept=lambda text: text.startswith(("//", "/*")),
+            plain=lambda text: text.startswith("//"),
             wrapper_types=frozenset({"type_declaration"}),
         ),
         wrapper_types=frozenset({"type_declaration"}),
-        receiver_rule=go_receiver,
-        method_types=frozenset({"method_declaration"}),
+        name_rule=go_naming,
     ),
 )
