@@ -1,0 +1,194 @@
+"""What the panels show, as rich renderables built from search hits: no widgets here.
+
+Every function is pure (apart from :class:`SourceCache` reading files), so the
+look of a hit, the reader's header, the lines that matched and the index line
+can be tested without running the app.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import time
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING
+
+from rich.console import Group, RenderableType
+from rich.syntax import Syntax
+from rich.text import Text
+from textual.content import Content
+
+from codeseek.search import STOPWORDS, SearchHit
+from codeseek.units import split_identifier
+
+if TYPE_CHECKING:
+    from codeseek.api import IndexStatus
+
+BAR_CELLS = 5
+PREVIEW_MAX_LINES = 400
+CODE_THEME = "gruvbox-dark"
+_WORD = re.compile(r"[A-Za-z0-9_]+")
+_SCOPE_SPLIT = re.compile(r"\.|::")
+
+
+# -- the hit list ----------------------------------------------------------------------
+
+
+def score_bar(fraction: float, cells: int = BAR_CELLS) -> str:
+    """A bar of filled and empty cells, readable without colour."""
+    fraction = max(0.0, min(1.0, fraction))
+    filled = round(fraction * cells)
+    if fraction > 0 and filled == 0:
+        filled = 1
+    return "▰" * filled + "▱" * (cells - filled)
+
+
+def score_cells(hit: SearchHit) -> str:
+    """The hit's meaning match as a bar (its cosine), or ``words`` for a keyword-only match."""
+    if hit.similarity is None:
+        return "words"
+    return score_bar(hit.similarity)
+
+
+def first_doc_line(hit: SearchHit) -> str:
+    """The doc's first sentence (or what fits of it)."""
+    return hit.doc_summary.split(". ")[0].strip()
+
+
+def hit_prompt(hit: SearchHit) -> Content:
+    """Two lines for one hit: bar, name, kind and language; then place and first doc line."""
+    doc = first_doc_line(hit)
+    return Content.assemble(
+        (score_cells(hit), "$cs-bar"), " ",
+        (hit.qualname, "$cs-name bold"),
+        (f"  {hit.kind} · {hit.language}", "$cs-meta"), "\n",
+        "  ", (f"{hit.path}:{hit.start_line}", "$cs-place"),
+        (f"  {doc}" if doc else "", "$cs-doc italic"),
+    )
+
+
+# -- the reader ------------------------------------------------------------------------
+
+
+def scope_chain(hit: SearchHit) -> list[str]:
+    """Where the unit sits: folders, the file, then the enclosing classes and functions."""
+    folders = [part for part in hit.path.split("/") if part]
+    scopes = [part for part in _SCOPE_SPLIT.split(hit.qualname) if part][:-1]
+    return folders + scopes
+
+
+def reader_header(hit: SearchHit) -> Content:
+    """The reader's header: name, kind, place, scope chain and doc."""
+    return Content.assemble(
+        (hit.qualname, "$cs-name bold"), (f"  {hit.kind} · {hit.language}", "$cs-meta"), "\n",
+        (f"{hit.path}:{hit.start_line}-{hit.end_line}", "$cs-place"), "\n",
+        ("in ", "$cs-meta"), (" › ".join(scope_chain(hit)), "$cs-scope"),
+        ("\n" + hit.doc_summary if hit.doc_summary else "", "$cs-doc italic"),
+    )
+
+
+def _stem(word: str) -> str:
+    return word[:5] if len(word) > 5 else word
+
+
+def _words(text: str) -> set[str]:
+    words: set[str] = set()
+    for token in _WORD.findall(text):
+        words.add(token.lower())
+        words.update(split_identifier(token))
+    return {_stem(w) for w in words if len(w) > 1 and w not in STOPWORDS}
+
+
+def matching_lines(code: str, first_line: int, query: str) -> set[int]:
+    """Line numbers of ``code`` (numbered from ``first_line``) sharing a word with the query."""
+    wanted = _words(query)
+    if not wanted:
+        return set()
+    return {first_line + offset for offset, line in enumerate(code.splitlines())
+            if _words(line) & wanted}
+
+
+@dataclass(frozen=True)
+class UnitSource:
+    """The code the reader shows for a hit."""
+
+    code: str
+    first_line: int
+    note: str = ""
+
+
+class SourceCache:
+    """Reads units' code from the repository's files, keeping recently read files."""
+
+    def __init__(self, repo: Path | None, keep: int = 32) -> None:
+        self.repo = repo
+        self.keep = keep
+        self._files: dict[str, tuple[int, list[str]]] = {}
+
+    def _lines(self, path: Path) -> list[str] | None:
+        try:
+            stamp = path.stat().st_mtime_ns
+        except OSError:
+            return None
+        cached = self._files.get(str(path))
+        if cached is not None and cached[0] == stamp:
+            return cached[1]
+        try:
+            lines = path.read_text(encoding="utf-8", errors="replace").splitlines()
+        except OSError:
+            return None
+        if len(self._files) >= self.keep:
+            self._files.pop(next(iter(self._files)))
+        self._files[str(path)] = (stamp, lines)
+        return lines
+
+    def unit(self, hit: SearchHit) -> UnitSource:
+        """The unit's lines from its file; the indexed first lines if the file changed."""
+        lines = self._lines(self.repo / hit.path) if self.repo is not None else None
+        if lines is None or hit.end_line > len(lines) or hit.start_line < 1:
+            return UnitSource(hit.snippet, hit.start_line,
+                              "the file changed or is gone; showing the indexed first lines")
+        end = min(hit.end_line, hit.start_line + PREVIEW_MAX_LINES - 1)
+        note = ""
+        if end < hit.end_line:
+            note = f"{hit.end_line - end} more lines; open it to read on"
+        return UnitSource("\n".join(lines[hit.start_line - 1 : end]), hit.start_line, note)
+
+
+def reader_code(hit: SearchHit, source: UnitSource, query: str) -> RenderableType:
+    """Highlighted code with line numbers; lines sharing a word with the query are marked."""
+    syntax = Syntax(
+        source.code, Syntax.guess_lexer(hit.path, source.code), theme=CODE_THEME,
+        line_numbers=True, start_line=source.first_line,
+        highlight_lines=matching_lines(source.code, source.first_line, query),
+        word_wrap=False, background_color="default",
+    )
+    if not source.note:
+        return syntax
+    return Group(syntax, Text(f"… {source.note}", style="italic"))
+
+
+# -- the index line ------------------------------------------------------------------
+
+
+def when(timestamp: float | None, now: float | None = None) -> str:
+    """A short local time: the clock for today, else the date."""
+    if timestamp is None:
+        return "never"
+    moment = time.localtime(timestamp)
+    today = time.localtime(now if now is not None else time.time())
+    if moment[:3] == today[:3]:
+        return time.strftime("%H:%M", moment)
+    return time.strftime("%Y-%m-%d", moment)
+
+
+def index_summary(status: IndexStatus, service: str) -> str:
+    """The index line when idle: repository, counts, freshness and the service state."""
+    return (f"{repo_label(status.repo)} · {status.units:,} units · {status.files:,} files · "
+            f"updated {when(status.updated_at)} · {service}")
+
+
+def repo_label(repo: str | os.PathLike[str]) -> str:
+    """The repository as shown in the title: its folder name."""
+    return Path(repo).name or str(repo)
