@@ -15,6 +15,7 @@ _EXPORTS = {
     "CodeUnit": "codeseek.units",
     "CodeseekError": "codeseek.errors",
     "Embedder": "codeseek.embed",
+    "EvalReport": "codeseek.evaluate",
     "FakeEmbedder": "codeseek.embed",
     "Filters": "codeseek.search",
     "Index": "codeseek.api",
@@ -28,6 +29,7 @@ __all__ = [
     "CodeUnit",
     "CodeseekError",
     "Embedder",
+    "EvalReport",
     "FakeEmbedder",
     "Filters",
     "Index",
@@ -42,6 +44,7 @@ if TYPE_CHECKING:
     from codeseek.api import Index, IndexStatus, open_index
     from codeseek.embed import Embedder, FakeEmbedder
     from codeseek.errors import CodeseekError
+    from codeseek.evaluate import EvalReport
     from codeseek.indexer import UpdateSummary
     from codeseek.search import Filters, SearchHit
     from codeseek.units import CodeUnit

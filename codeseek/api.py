@@ -12,13 +12,17 @@ from collections.abc import Iterator, Sequence
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
+from codeseek.adapter import QueryAdapter, load_adapter, remove_adapter, save_adapter
 from codeseek.config import Settings, load_settings
 from codeseek.embed import Embedder, load_embedder
 from codeseek.errors import (
+    IndexCorrupt,
     IndexLocked,
     IndexNotFound,
     IndexWriteError,
+    InvalidSplit,
     ModelMismatch,
     RepositoryNotFound,
 )
@@ -31,9 +35,13 @@ from codeseek.indexer import (
 )
 from codeseek.locks import ReadWriteLock
 from codeseek.scan import ScanResult, SourceFile
-from codeseek.search import Filters, Searcher, SearchHit
-from codeseek.store import DB_NAME, Store
+from codeseek.search import Filters, Fusion, Searcher, SearchHit, similar_units
+from codeseek.store import DB_NAME, Store, unlink_all
 from codeseek.vectors import HNSW_NAME, VectorIndex
+
+if TYPE_CHECKING:
+    from codeseek.evaluate import EvalReport, Progress, Split, VectorCache
+    from codeseek.tune import TuneReport
 
 LOCK_NAME = "writer.lock"
 
@@ -177,8 +185,9 @@ class Index:
                     "run `codeseek index` with this model to re-embed"
                 )
             vectors = self._vectors_for(embedder.model_id, embedder.dim)
+            adapter = load_adapter(self.settings.index_dir, embedder.model_id)
             self._searcher = Searcher(self.store, vectors, embedder, embedder.model_id,
-                                      self.lock)
+                                      self.lock, adapter=adapter, fusion=_fusion_of(adapter))
         return self._searcher
 
     def search(self, query: str, k: int = 10, *, languages: Sequence[str] = (),
@@ -193,6 +202,96 @@ class Index:
         """The k best units for each of several queries."""
         filters = Filters(tuple(languages), tuple(paths), tuple(kinds))
         return self.searcher().search_many(queries, k, filters)
+
+    # -- recall checks and tuning ------------------------------------------------------
+
+    def evaluate(self, *, holdout: float | None = None, seed: int | None = None,
+                 by_file: bool | None = None, progress: Progress | None = None) -> EvalReport:
+        """Recall checks on held-out docstrings (:mod:`codeseek.evaluate`).
+
+        The split defaults to the one the index's query adapter was trained
+        with, if it has one (a different split would test on training pairs).
+        """
+        from codeseek.evaluate import evaluate_units
+
+        searcher = self.searcher()
+        split = self._split(holdout, seed, by_file, searcher.adapter)
+        units = [stored.unit for stored in self.store.iter_units()]
+        return evaluate_units(units, searcher.embedder, repository=str(self.settings.repo),
+                              split=split, fusion=searcher.fusion, adapter=searcher.adapter,
+                              cache=self._eval_cache(), progress=progress)
+
+    def tune(self, *, holdout: float | None = None, seed: int | None = None,
+             by_file: bool | None = None, batch_size: int | None = None,
+             progress: Progress | None = None) -> TuneReport:
+        """Train a query adapter on the training split; keep it if it raises held-out MRR."""
+        from codeseek.evaluate import Split
+        from codeseek.tune import TrainSettings, tune_units
+
+        searcher = self.searcher()
+        defaults = Split()
+        split = Split(defaults.holdout if holdout is None else holdout,
+                      defaults.seed if seed is None else seed,
+                      defaults.by_file if by_file is None else by_file)
+        split.validate()
+        settings = TrainSettings() if batch_size is None else TrainSettings(batch_size=batch_size)
+        units = [stored.unit for stored in self.store.iter_units()]
+        with self._writer_lock():
+            adapter, report = tune_units(units, searcher.embedder,
+                                         repository=str(self.settings.repo), split=split,
+                                         settings=settings, cache=self._eval_cache(),
+                                         progress=progress)
+            if report.kept:
+                save_adapter(self.settings.index_dir, adapter)
+            else:
+                remove_adapter(self.settings.index_dir)
+        self._searcher = None  # the next search loads the adapter (or goes without)
+        return report
+
+    def remove_adapter(self) -> bool:
+        """Delete the index's query adapter; whether there was one."""
+        with self._writer_lock():
+            removed = remove_adapter(self.settings.index_dir)
+        self._searcher = None
+        return removed
+
+    def _split(self, holdout: float | None, seed: int | None, by_file: bool | None,
+               adapter: QueryAdapter | None) -> Split:
+        from codeseek.evaluate import Split
+
+        trained = _trained_split(adapter)
+        base = trained or Split()
+        split = Split(base.holdout if holdout is None else holdout,
+                      base.seed if seed is None else seed,
+                      base.by_file if by_file is None else by_file)
+        split.validate()
+        if trained is not None and split != trained:
+            raise InvalidSplit(
+                f"the query adapter of this index was trained with {trained.describe()}; "
+                "check with that split (its held-out docstrings were not trained on), "
+                "run `codeseek tune` with this one, or `codeseek tune --remove`")
+        return split
+
+    def _eval_cache(self) -> VectorCache:
+        """The recall checks' vector cache, seeded with the stored vectors of undocumented
+        units (their doc-less text is the text that was embedded)."""
+        from codeseek.evaluate import CACHE_NAME, VectorCache
+
+        embedder = self.embedder
+        cache = VectorCache(self.settings.index_dir / CACHE_NAME, embedder.model_id)
+        undocumented = {s.id: s.content_hash for s in self.store.iter_units()
+                        if not s.unit.doc.strip()}
+        labels, matrix = self.store.unit_vectors(embedder.model_id, embedder.dim,
+                                                 sorted(undocumented))
+        for label, vector in zip(labels, matrix, strict=True):
+            cache.add(undocumented[int(label)], vector, borrowed=True)
+        return cache
+
+    def similar(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
+                paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
+        """The k units nearest to one unit's own vector ("more like this")."""
+        filters = Filters(tuple(languages), tuple(paths), tuple(kinds))
+        return similar_units(self.searcher(), unit_id, k, filters)
 
     def status(self) -> IndexStatus:
         """Counts and freshness; never loads the model."""
@@ -215,6 +314,30 @@ class Index:
             updated_at=float(updated) if updated else None,
             bytes_on_disk=size,
         )
+
+
+def _trained_split(adapter: QueryAdapter | None) -> Split | None:
+    """The split an adapter was trained with (None without an adapter)."""
+    from codeseek.evaluate import Split
+
+    if adapter is None:
+        return None
+    try:
+        return Split.from_json(adapter.header["split"])
+    except (KeyError, ValueError, TypeError) as exc:
+        raise IndexCorrupt(f"the query adapter does not record its split ({exc}); "
+                           "run `codeseek tune` again or `codeseek tune --remove`") from exc
+
+
+def _fusion_of(adapter: QueryAdapter | None) -> Fusion | None:
+    """The ranking rule saved with an adapter (None: the default)."""
+    if adapter is None or "fusion" not in adapter.header:
+        return None
+    try:
+        return Fusion.from_json(adapter.header["fusion"])
+    except (ValueError, TypeError, AttributeError) as exc:
+        raise IndexCorrupt(f"the query adapter's fusion settings are malformed ({exc}); "
+                           "run `codeseek tune` again or `codeseek tune --remove`") from exc
 
 
 def open_index(
@@ -242,12 +365,6 @@ def open_index(
 
 def remove_index_files(index_dir: Path) -> None:
     """Delete the store and vector files of an index (for ``--rebuild``)."""
-    for name in (DB_NAME, DB_NAME + "-wal", DB_NAME + "-shm", HNSW_NAME):
-        try:
-            (index_dir / name).unlink()
-        except FileNotFoundError:
-            continue
-        except OSError as exc:
-            raise IndexWriteError(f"{index_dir / name}: cannot remove: {exc}") from exc
+    unlink_all(index_dir, (DB_NAME, DB_NAME + "-wal", DB_NAME + "-shm", HNSW_NAME))
 
 

@@ -18,11 +18,11 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
 from codeseek import __version__
-from codeseek.errors import CodeseekError, InvalidQuery, RepositoryNotFound
+from codeseek.errors import CodeseekError, IndexLocked, InvalidQuery, RepositoryNotFound
 
 if TYPE_CHECKING:
     from codeseek.api import Index
-    from codeseek.daemon import DaemonClient
+    from codeseek.client import DaemonClient
     from codeseek.indexer import UpdateSummary
     from codeseek.search import SearchHit
 
@@ -119,6 +119,15 @@ def build_parser() -> argparse.ArgumentParser:
                                               "a folder, without an index or a model.")
     outline.add_argument("path", metavar="PATH", help="a source file or a folder")
     outline.add_argument("--json", action="store_true", help="one JSON object per unit")
+
+    ui = commands.add_parser("ui", help="search as you type in the terminal and read the hits",
+                             description="Search as you type, read each hit's code, and open "
+                                         "it in your editor ($VISUAL or $EDITOR).")
+    ui.add_argument("path", nargs="?", default=None, metavar="PATH",
+                    help="repository root (default: the current folder's repository)")
+    ui.add_argument("--repo", metavar="PATH", help="repository root (the same as PATH)")
+    _common_index_options(ui)
+    _add_check_parsers(commands)
     return parser
 
 
@@ -149,10 +158,22 @@ def _open(repo: str | None, args: argparse.Namespace, *, create: bool) -> Index:
                       backend=getattr(args, "backend", None), create=create)
 
 
+def _running_daemon_pid(repo: str | None, args: argparse.Namespace) -> int | None:
+    """The pid of a daemon that answers on this index's socket, if one does."""
+    from codeseek.client import DaemonClient, DaemonUnavailable
+    from codeseek.config import load_settings
+
+    client = DaemonClient(load_settings(_root(repo), index_dir=args.index_dir).index_dir)
+    try:
+        return int(client.status()["daemon"]["pid"])
+    except (DaemonUnavailable, CodeseekError, KeyError, TypeError, ValueError):
+        return None
+
+
 def _daemon_client(repo: str | None, args: argparse.Namespace) -> DaemonClient | None:
     """A client of the daemon serving this index, if one runs and fits the options."""
+    from codeseek.client import DaemonClient
     from codeseek.config import load_settings
-    from codeseek.daemon import DaemonClient
 
     if getattr(args, "model", None) or getattr(args, "backend", None):
         return None  # an explicit model or backend is answered in this process
@@ -168,8 +189,16 @@ def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     from codeseek.api import remove_index_files
     from codeseek.config import load_settings
 
+    daemon_pid = _running_daemon_pid(args.path, args)
+    if daemon_pid is not None:
+        if args.rebuild:
+            raise IndexLocked(f"a codeseek daemon (pid {daemon_pid}) watches this index; "
+                              "stop it before rebuilding")
+        print(f"a codeseek daemon (pid {daemon_pid}) keeps this index up to date; "
+              "nothing to do", file=out)
+        return EXIT_OK
     if args.rebuild:
-        settings = load_settings(args.path, index_dir=args.index_dir)
+        settings = load_settings(_root(args.path), index_dir=args.index_dir)
         remove_index_files(settings.index_dir)
     with _open(args.path, args, create=True) as index:
         if args.quiet or not err.isatty():
@@ -241,7 +270,7 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         raise InvalidQuery("give a QUERY or --batch FILE")
     if args.batch is not None and args.query is not None:
         raise InvalidQuery("give a QUERY or --batch FILE, not both")
-    from codeseek.daemon import DaemonUnavailable
+    from codeseek.client import DaemonUnavailable
 
     queries = _read_batch(args.batch) if args.batch is not None else [args.query]
     options = {"languages": args.lang, "paths": args.path, "kinds": args.kind}
@@ -302,7 +331,7 @@ def _clip(text: str, width: int) -> str:
 
 
 def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
-    from codeseek.daemon import DaemonUnavailable
+    from codeseek.client import DaemonUnavailable
 
     with _open(args.path, args, create=False) as index:
         status = index.status()
@@ -383,8 +412,143 @@ def cmd_watch(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     return EXIT_OK
 
 
+# -- ui ----------------------------------------------------------------------------
+
+
+def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    from codeseek.errors import IndexNotFound
+
+    if args.path and args.repo and Path(args.path).resolve() != Path(args.repo).resolve():
+        raise InvalidQuery("name the repository once: PATH or --repo, not both")
+    if not (sys.stdin.isatty() and sys.stdout.isatty()):
+        print("error: codeseek ui needs a terminal; in scripts use `codeseek search --json`",
+              file=err)
+        return EXIT_ERROR
+    from codeseek.client import DaemonUnavailable
+    from codeseek.tui.app import CodeseekApp
+    from codeseek.tui.backend import DaemonSearcher, LocalIndexer, SearchBackend
+
+    chosen = args.repo or args.path
+    root = Path(chosen) if chosen else find_repo_root(Path.cwd())
+    if not root.is_dir():
+        raise RepositoryNotFound(f"{root}: no such folder")
+    searcher: SearchBackend | None = None
+    builder: LocalIndexer | None = None
+    client = _daemon_client(str(root), args)
+    if client is not None:
+        try:
+            client.status()
+            searcher = DaemonSearcher(client)  # a running daemon answers, warm and fresh
+        except DaemonUnavailable:
+            searcher = None
+    if searcher is None:
+        builder = LocalIndexer(root, index_dir=args.index_dir, model=args.model,
+                               backend=args.backend)
+        try:
+            searcher = builder.open_searcher()
+        except IndexNotFound:
+            searcher = None
+    app = CodeseekApp(searcher, repo=root.resolve(), builder=builder)
+    try:
+        app.run()
+    finally:
+        app.close_searcher()
+    for place in app.locations:
+        print(place, file=out)
+    return EXIT_ERROR if app.return_code else EXIT_OK
+
+
+# -- eval and tune -----------------------------------------------------------------
+
+
+def _add_check_parsers(commands: Any) -> None:
+    """The parsers of ``eval`` and ``tune``."""
+    evaluate = commands.add_parser(
+        "eval", help="measure how well search finds this repository's held-out docstrings",
+        description="Recall checks: hold out a share of the documented units, search for each "
+                    "by its doc summary among code with the docs removed, and report recall@1, "
+                    "@5, @10 and MRR for keyword, dense, HNSW and served search.")
+    _repo_arguments(evaluate)
+    _split_arguments(evaluate)
+    evaluate.add_argument("--json", action="store_true", help="one JSON document")
+    evaluate.add_argument("--html", metavar="FILE",
+                          help="also write a small self-contained HTML report to FILE")
+    _common_index_options(evaluate)
+    tune = commands.add_parser(
+        "tune", help="adapt search to this repository with a query adapter",
+        description="Train a query-side adapter on the training share of the repository's "
+                    "docstrings (in-batch negatives); keep it only if it raises the held-out "
+                    "MRR of served search.")
+    _repo_arguments(tune)
+    _split_arguments(tune)
+    tune.add_argument("--batch-size", type=int, metavar="N",
+                      help="pairs per training batch (default: 256)")
+    tune.add_argument("--remove", action="store_true",
+                      help="delete the adapter; search goes back to the plain model")
+    tune.add_argument("--json", action="store_true", help="one JSON document")
+    _common_index_options(tune)
+
+
+def _repo_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("path", nargs="?", default=None, metavar="PATH",
+                        help="repository root (default: the current folder's repository)")
+    parser.add_argument("--repo", metavar="PATH", help="repository root (the same as PATH)")
+
+
+def _split_arguments(parser: argparse.ArgumentParser) -> None:
+    parser.add_argument("--holdout", type=float, metavar="SHARE",
+                        help="share of the documented units held out (default: 0.2, or the "
+                             "adapter's)")
+    parser.add_argument("--seed", type=int, metavar="N",
+                        help="changes which units are held out (default: 0, or the adapter's)")
+    parser.add_argument("--by-file", action="store_true", default=None,
+                        help="hold out whole files, so no held-out unit shares a file with a "
+                             "training unit")
+
+
+def _one_repo(args: argparse.Namespace) -> str | None:
+    if args.path and args.repo and Path(args.path).resolve() != Path(args.repo).resolve():
+        raise InvalidQuery("name the repository once: PATH or --repo, not both")
+    chosen: str | None = args.repo or args.path
+    return chosen
+
+
+def cmd_eval(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    from codeseek.evaluate import check_report_path, write_html
+
+    if args.html:
+        check_report_path(Path(args.html))
+    with _open(_one_repo(args), args, create=False) as index:
+        report = index.evaluate(holdout=args.holdout, seed=args.seed, by_file=args.by_file,
+                                progress=_LineProgress(err))
+    if args.html:
+        write_html(report, Path(args.html))
+    if args.json:
+        out.write(json.dumps(report.to_json(), ensure_ascii=False) + "\n")
+    else:
+        print(report.to_text(), file=out)
+    return EXIT_OK
+
+
+def cmd_tune(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    with _open(_one_repo(args), args, create=False) as index:
+        if args.remove:
+            removed = index.remove_adapter()
+            print("removed the query adapter; search uses the plain model" if removed
+                  else "there is no query adapter to remove", file=out)
+            return EXIT_OK
+        report = index.tune(holdout=args.holdout, seed=args.seed, by_file=args.by_file,
+                            batch_size=args.batch_size, progress=_LineProgress(err))
+    if args.json:
+        out.write(json.dumps(report.to_json(), ensure_ascii=False) + "\n")
+    else:
+        print(report.to_text(), file=out)
+    return EXIT_OK
+
+
 COMMANDS = {"index": cmd_index, "search": cmd_search, "status": cmd_status,
-            "watch": cmd_watch, "outline": cmd_outline}
+            "watch": cmd_watch, "outline": cmd_outline, "ui": cmd_ui,
+            "eval": cmd_eval, "tune": cmd_tune}
 
 
 def main(argv: Sequence[str] | None = None, out: TextIO | None = None,

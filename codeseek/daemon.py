@@ -12,6 +12,8 @@ line. Every message carries ``"v": PROTOCOL_VERSION``. Requests:
 
 * ``{"v": 1, "op": "search", "queries": [...], "k": 10, "languages": [],
   "paths": [], "kinds": []}`` -> ``{"v": 1, "ok": true, "results": [[hit, ...], ...]}``
+* ``{"v": 1, "op": "similar", "unit_id": 42, "k": 10, ...filters}`` -> the units
+  nearest to that unit's own vector, as ``results``
 * ``{"v": 1, "op": "status"}`` -> ``{"v": 1, "ok": true, "index": {...}, "daemon": {...}}``
 * ``{"v": 1, "op": "shutdown"}`` -> ``{"v": 1, "ok": true}``
 
@@ -32,30 +34,25 @@ import socketserver
 import struct
 import threading
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable
 from contextlib import suppress
-from pathlib import Path
 from typing import Any
 
-from codeseek import errors
 from codeseek.api import Index
+from codeseek.client import (
+    CLIENT_TIMEOUT,
+    PROTOCOL_VERSION,
+    SOCKET_NAME,
+)
 from codeseek.errors import CodeseekError, IndexLocked
-from codeseek.search import SearchHit
 from codeseek.watch import RECONCILE_SECONDS, Watcher
 
-PROTOCOL_VERSION = 1
-SOCKET_NAME = "daemon.sock"
 LOCK_NAME = "daemon.lock"
 MAX_REQUEST_BYTES = 64 * 1024
 MAX_QUERIES = 1000
 MAX_K = 1000
-CLIENT_TIMEOUT = 30.0
 
 Log = Callable[[str], None]
-
-
-class DaemonUnavailable(Exception):
-    """No daemon answers on this index's socket (the caller works without it)."""
 
 
 # -- requests ------------------------------------------------------------------------
@@ -70,6 +67,13 @@ def _string_list(request: dict[str, Any], key: str) -> list[str]:
     if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
         raise ValueError(f"'{key}' must be a list of strings")
     return value
+
+
+def _k_of(request: dict[str, Any]) -> int:
+    k = request.get("k", 10)
+    if not isinstance(k, int) or isinstance(k, bool) or not 1 <= k <= MAX_K:
+        raise ValueError(f"'k' must be a whole number from 1 to {MAX_K}")
+    return k
 
 
 class Daemon:
@@ -216,6 +220,8 @@ class Daemon:
         try:
             if op == "search":
                 return self._search(request)
+            if op == "similar":
+                return self._similar(request)
             if op == "status":
                 return {"v": PROTOCOL_VERSION, "ok": True, "index": self.index.status().to_json(),
                         "daemon": self.daemon_status()}
@@ -225,21 +231,30 @@ class Daemon:
             return _error(f"malformed request: {exc}")
         except CodeseekError as exc:
             return _error(str(exc), type(exc).__name__)
-        return _error(f"unknown op {op!r}; use search, status or shutdown")
+        return _error(f"unknown op {op!r}; use search, similar, status or shutdown")
 
     def _search(self, request: dict[str, Any]) -> dict[str, Any]:
         queries = _string_list(request, "queries")
         if not queries or len(queries) > MAX_QUERIES:
             raise ValueError(f"'queries' must hold 1 to {MAX_QUERIES} strings")
-        k = request.get("k", 10)
-        if not isinstance(k, int) or isinstance(k, bool) or not 1 <= k <= MAX_K:
-            raise ValueError(f"'k' must be a whole number from 1 to {MAX_K}")
+        k = _k_of(request)
         results = self.index.search_many(
             queries, k, languages=_string_list(request, "languages"),
             paths=_string_list(request, "paths"), kinds=_string_list(request, "kinds"))
         self.queries_served += len(queries)
         return {"v": PROTOCOL_VERSION, "ok": True,
                 "results": [[dataclasses.asdict(hit) for hit in hits] for hits in results]}
+
+    def _similar(self, request: dict[str, Any]) -> dict[str, Any]:
+        unit_id = request.get("unit_id")
+        if not isinstance(unit_id, int) or isinstance(unit_id, bool):
+            raise ValueError("'unit_id' must be a whole number")
+        k = _k_of(request)
+        hits = self.index.similar(
+            unit_id, k, languages=_string_list(request, "languages"),
+            paths=_string_list(request, "paths"), kinds=_string_list(request, "kinds"))
+        return {"v": PROTOCOL_VERSION, "ok": True,
+                "results": [[dataclasses.asdict(hit) for hit in hits]]}
 
     def daemon_status(self) -> dict[str, Any]:
         """What the daemon is doing."""
@@ -287,59 +302,3 @@ def run_foreground(index: Index, log: Log, *, poll: bool = False) -> None:
         for sig, handler in previous.items():
             signal.signal(sig, handler)
         log("codeseek: stopped")
-
-
-# -- the client ------------------------------------------------------------------------
-
-
-class DaemonClient:
-    """Talks to a running daemon; every call raises DaemonUnavailable if none answers."""
-
-    def __init__(self, index_dir: Path, timeout: float = CLIENT_TIMEOUT) -> None:
-        self.socket_path = index_dir / SOCKET_NAME
-        self.timeout = timeout
-
-    def request(self, message: dict[str, Any]) -> dict[str, Any]:
-        """Send one request and return the response (errors re-raised as CodeseekError)."""
-        if not self.socket_path.exists():
-            raise DaemonUnavailable(str(self.socket_path))
-        sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
-        sock.settimeout(self.timeout)
-        try:
-            sock.connect(str(self.socket_path))
-            sock.sendall(json.dumps({"v": PROTOCOL_VERSION, **message}).encode() + b"\n")
-            data = sock.makefile("rb").readline()
-        except OSError as exc:
-            raise DaemonUnavailable(f"{self.socket_path}: {exc}") from exc
-        finally:
-            sock.close()
-        if not data:
-            raise DaemonUnavailable(f"{self.socket_path}: no answer")
-        response: dict[str, Any] = json.loads(data)
-        if not response.get("ok"):
-            error_type = getattr(errors, str(response.get("kind")), None)
-            if isinstance(error_type, type) and issubclass(error_type, CodeseekError):
-                raise error_type(response.get("error", "daemon error"))
-            raise CodeseekError(f"the daemon refused the request: {response.get('error')}")
-        return response
-
-    def search_many(self, queries: Sequence[str], k: int = 10, *,
-                    languages: Sequence[str] = (), paths: Sequence[str] = (),
-                    kinds: Sequence[str] = ()) -> list[list[SearchHit]]:
-        """The daemon's answers, as the in-process search would give them."""
-        response = self.request({"op": "search", "queries": list(queries), "k": k,
-                                 "languages": list(languages), "paths": list(paths),
-                                 "kinds": list(kinds)})
-        return [[SearchHit(**hit) for hit in hits] for hits in response["results"]]
-
-    def search(self, query: str, k: int = 10, **filters: Sequence[str]) -> list[SearchHit]:
-        """One query's answer."""
-        return self.search_many([query], k, **filters)[0]
-
-    def status(self) -> dict[str, Any]:
-        """The daemon's status response."""
-        return self.request({"op": "status"})
-
-    def shutdown(self) -> None:
-        """Ask the daemon to stop."""
-        self.request({"op": "shutdown"})

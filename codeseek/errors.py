@@ -18,7 +18,12 @@ where they are raised, with ``raise ... from exc``.
     ├── ModelUnavailable         the embedding model folder is missing or broken
     ├── ModelMismatch            the index was built with another model
     ├── UnsupportedLanguage      a language name codeseek does not know
-    └── InvalidQuery             an empty query or a bad filter
+    ├── InvalidQuery             an empty query or a bad filter
+    ├── InvalidSplit             a held-out share outside (0, 1], or a split other than
+    │                            the one the index's query adapter was trained on
+    ├── TooFewExamples           too few documented units (or too small a batch) to check
+    │                            or tune on
+    └── ReportWriteError         the recall checks' HTML report could not be written
 """
 
 from __future__ import annotations
@@ -70,3 +75,15 @@ class UnsupportedLanguage(CodeseekError):
 
 class InvalidQuery(CodeseekError):
     """The query or one of its filters cannot be used."""
+
+
+class InvalidSplit(CodeseekError):
+    """A held-out share that cannot be used, or one the adapter was not trained with."""
+
+
+class TooFewExamples(CodeseekError):
+    """The repository has too few documented units for recall checks or tuning."""
+
+
+class ReportWriteError(CodeseekError):
+    """The HTML report of the recall checks could not be written."""

@@ -4,11 +4,12 @@ The order makes every stage resumable and every commit consistent:
 
 1. the files that may have changed (size or mtime differ) are read and hashed;
    those whose content changed are parsed, in memory;
-2. every unit text whose content hash has no vector for the current model is
-   embedded, in chunks, and the vectors are committed (nothing refers to them
-   yet, so a crash here only leaves a useful cache);
-3. the units are committed, one transaction per batch of files, under the
-   index's write lock, and the in-memory HNSW index follows each commit.
+2. then, batch by batch of files: every unit text of the batch whose content
+   hash has no vector for the current model is embedded and the vectors are
+   committed (nothing refers to them yet, so a crash here only leaves a useful
+   cache); then the batch's units are committed in one transaction under the
+   index's write lock, and the in-memory HNSW index follows. Each batch is
+   searchable once committed.
 
 A unit whose content did not change is never embedded again, wherever it
 moved. An interrupted run leaves the store consistent; the next run sees the
@@ -33,13 +34,14 @@ from codeseek.units import CodeUnit
 from codeseek.vectors import HNSW_NAME, VectorIndex
 
 ProgressCallback = Callable[[str, int, int], None]
-"""Called as ``progress(stage, done, total)``; stages: scan, parse, embed, write, save."""
+"""Called as ``progress(stage, done, total)``; stages: scan, parse, embed, save."""
 
 WriteLock = Callable[[], AbstractContextManager[object]]
 """Returns the context manager that excludes searches while a change is applied."""
 
 FILES_PER_TRANSACTION = 200
 UNITS_PER_EMBED_CHUNK = 512
+UNITS_PER_BATCH = 2048
 COMPACT_DELETED_SHARE = 0.3  # rebuild the graph when this share of its slots is dead
 COMPACT_MIN_SIZE = 1000
 
@@ -116,6 +118,8 @@ class Updater:
         self.report = progress or _no_progress
         self.write_lock = write_lock or _no_lock
         self.tally = _Tally()
+        self._embed_done = 0
+        self._embed_total = 0
 
     # -- entry points ----------------------------------------------------------------
 
@@ -175,7 +179,11 @@ class Updater:
             if row is not None and row.sha256 == digest:
                 changes.append(FileChange(source, digest, None))
             else:
-                result = parse_source(source.path, data, source.spec)
+                try:
+                    result = parse_source(source.path, data, source.spec)
+                except SkipFile as skip:  # e.g. over the parse time budget
+                    scan.skip(source.path, str(skip.args[0]))
+                    continue
                 self.tally.files_parsed += 1
                 if result.has_errors:
                     self.tally.syntax_warnings.append(source.path)
@@ -185,43 +193,54 @@ class Updater:
 
     def embed_new(self, units: list[CodeUnit]) -> None:
         """Embed and commit the vectors these units lack (deduplicated by content)."""
+        self._embed(list(self._wanted(units).items()))
+
+    def _wanted(self, units: list[CodeUnit]) -> dict[str, CodeUnit]:
         have = self.store.known_hashes(self.embedder.model_id)
         wanted: dict[str, CodeUnit] = {}
         for unit in units:
             digest = unit.content_hash
             if digest not in have and digest not in wanted:
                 wanted[digest] = unit
-        self._embed(list(wanted.items()))
+        return wanted
 
     def _embed(self, items: list[tuple[str, CodeUnit]]) -> None:
-        total = len(items)
-        done = 0
-        self.report("embed", 0, total)
-        for start in range(0, total, UNITS_PER_EMBED_CHUNK):
+        # similar lengths in each chunk keep the padding (wasted work) small
+        texts = {digest: unit.embed_text() for digest, unit in items}
+        items = sorted(items, key=lambda item: len(texts[item[0]]))
+        self._embed_total = max(self._embed_total, self._embed_done + len(items))
+        for start in range(0, len(items), UNITS_PER_EMBED_CHUNK):
             chunk = items[start : start + UNITS_PER_EMBED_CHUNK]
+            base = self._embed_done
 
             def step(n: int) -> None:
-                nonlocal done
-                done += n
-                self.report("embed", done, total)
+                self._embed_done += n
+                self.report("embed", self._embed_done, self._embed_total)
 
-            matrix = self.embedder.encode([unit.embed_text() for _, unit in chunk],
+            matrix = self.embedder.encode([texts[digest] for digest, _ in chunk],
                                           progress=step)
-            done = start + len(chunk)
+            self._embed_done = base + len(chunk)
             with self.write_lock(), self.store.transaction():
                 self.store.put_vectors(self.embedder.model_id,
                                        {digest: matrix[i] for i, (digest, _) in enumerate(chunk)})
             self.tally.embedded += len(chunk)
-        self.report("embed", total, total)
+            self.report("embed", self._embed_done, self._embed_total)
 
     def apply(self, changes: list[FileChange], gone: list[FileRow], known: dict[str, FileRow],
               skipped: list[tuple[str, str]] | None) -> None:
-        """Embed what is new, then commit files and units in batches; HNSW follows."""
-        self.embed_new([u for c in changes if c.result for u in c.result.units])
-        batches = [changes[i : i + FILES_PER_TRANSACTION]
-                   for i in range(0, len(changes), FILES_PER_TRANSACTION)] or [[]]
+        """Per batch of files: embed what is new, then commit; the HNSW index follows.
+
+        Each batch is searchable as soon as it is committed, so a first build of a
+        large repository can be searched while it goes on.
+        """
+        self._embed_done = 0
+        self._embed_total = len(self._wanted(
+            [u for c in changes if c.result for u in c.result.units]))
+        self.report("embed", 0, self._embed_total)
+        batches = _batches(changes)
         for number, batch in enumerate(batches):
             last = number == len(batches) - 1
+            self.embed_new([u for c in batch if c.result for u in c.result.units])
             with self.write_lock():
                 with self.store.transaction():
                     for change in batch:
@@ -234,7 +253,6 @@ class Updater:
                             self.store.replace_skipped(skipped)
                     bump_generation(self.store)
                 self.sync_vectors()
-            self.report("write", number + 1, len(batches))
         self.backfill()
 
     def backfill(self) -> None:
@@ -290,6 +308,22 @@ class Updater:
             syntax_warnings=tuple(self.tally.syntax_warnings),
             seconds=time.perf_counter() - started,
         )
+
+
+def _batches(changes: list[FileChange]) -> list[list[FileChange]]:
+    """Changes cut into batches of at most FILES_PER_TRANSACTION files or
+    UNITS_PER_BATCH parsed units (always at least one batch, maybe empty)."""
+    batches: list[list[FileChange]] = [[]]
+    units = 0
+    for change in changes:
+        count = len(change.result.units) if change.result else 0
+        if batches[-1] and (len(batches[-1]) >= FILES_PER_TRANSACTION
+                            or units + count > UNITS_PER_BATCH):
+            batches.append([])
+            units = 0
+        batches[-1].append(change)
+        units += count
+    return batches
 
 
 def may_have_changed(source: SourceFile, row: FileRow | None) -> bool:

@@ -2,8 +2,12 @@
 
 Dense candidates come from the HNSW index (or, when filters narrow the pool,
 from an exact search over the filtered units' vectors); lexical candidates
-from SQLite FTS5 BM25 over identifier-split text. The two rankings are fused
-by reciprocal rank fusion: score = sum over rankings of 1 / (RRF_K + rank).
+from SQLite FTS5 BM25 over identifier-split text. :func:`fuse` combines the two
+candidate lists (by default weighted reciprocal rank fusion; rules that
+weigh normalised scores are the alternatives); it is the one ranking rule of
+served search, and the recall checks (:mod:`codeseek.evaluate`) call the same
+function. A query-side adapter (:mod:`codeseek.adapter`), when the index holds
+one, maps the query vector before the dense search.
 """
 
 from __future__ import annotations
@@ -15,15 +19,22 @@ from dataclasses import dataclass
 import numpy as np
 import pathspec
 
+from codeseek.adapter import QueryAdapter
 from codeseek.embed import Embedder
 from codeseek.errors import InvalidQuery
+from codeseek.hits import SearchHit
 from codeseek.languages import spec_by_name
 from codeseek.locks import ReadWriteLock
 from codeseek.store import Store, StoredUnit
 from codeseek.units import KINDS, CodeUnit, split_identifier
 from codeseek.vectors import VectorIndex, exact_search
 
-RRF_K = 60  # the constant of the original reciprocal rank fusion paper (from memory)
+# The served fusion: weighted reciprocal rank fusion with a small rank offset. Kind, offset
+# and weight were chosen on the training splits of the recall checks of the standard library
+# and sample_repo (scripts/bench_quality.py); `codeseek tune` chooses the weight per
+# repository. (The original reciprocal rank fusion paper used an offset of 60, from memory.)
+RRF_K = 5
+DENSE_WEIGHT = 0.6
 CANDIDATES = 100
 EXACT_FILTER_LIMIT = 50_000
 SNIPPET_LINES = 8
@@ -57,50 +68,6 @@ class Filters:
         return bool(self.languages or self.paths or self.kinds)
 
 
-@dataclass(frozen=True)
-class SearchHit:
-    """One ranked result.
-
-    Attributes:
-        query: the query text.
-        rank: 1 for the best hit.
-        score: the fused score (higher is better; comparable within one query).
-        similarity: cosine similarity of query and unit (None if not a dense candidate).
-        path, start_line, end_line, language, kind, name, qualname, signature:
-            where the unit is and what it is.
-        doc_summary: the first paragraph of its doc.
-        snippet: the first lines of its code.
-        unit_id: the unit's row id in the index.
-    """
-
-    query: str
-    rank: int
-    score: float
-    similarity: float | None
-    path: str
-    start_line: int
-    end_line: int
-    language: str
-    kind: str
-    name: str
-    qualname: str
-    signature: str
-    doc_summary: str
-    snippet: str
-    unit_id: int
-
-    def to_json(self) -> dict[str, object]:
-        """The JSON Lines record of this hit."""
-        return {
-            "query": self.query, "rank": self.rank, "score": round(self.score, 6),
-            "similarity": None if self.similarity is None else round(self.similarity, 6),
-            "path": self.path, "start_line": self.start_line, "end_line": self.end_line,
-            "language": self.language, "kind": self.kind, "name": self.name,
-            "qualname": self.qualname, "signature": self.signature,
-            "doc_summary": self.doc_summary, "snippet": self.snippet,
-        }
-
-
 def lexical_match(query: str) -> str:
     """An FTS5 MATCH expression: the query's words (identifiers split), OR-ed."""
     words: list[str] = []
@@ -111,13 +78,108 @@ def lexical_match(query: str) -> str:
     return " OR ".join(f'"{w}"' for w in words)
 
 
-def rrf(rankings: Sequence[Sequence[int]], k: int = RRF_K) -> dict[int, float]:
-    """Reciprocal rank fusion of several rankings of ids (best first)."""
+Candidates = Sequence[tuple[int, float]]
+"""(unit id, score) pairs, best first: cosines for the dense side, BM25 for the lexical."""
+
+
+@dataclass(frozen=True)
+class Fusion:
+    """How the dense and lexical candidate lists become one ranking.
+
+    Attributes:
+        kind: ``rrf`` (reciprocal rank fusion: a unit scores ``weight / (rrf_k +
+            rank)`` on each side it appears in), ``zscore`` (each side's scores in
+            standard deviations over its candidates, counted from the worst, then
+            a weighted sum; a unit missing from a side gets 0 there) or
+            ``linear`` (the same with scores scaled to [0, 1]).
+        dense_weight: the dense side's weight in [0, 1]; the lexical side gets
+            ``1 - dense_weight``.
+        rrf_k: the rank offset of ``rrf``.
+    """
+
+    kind: str = "rrf"
+    dense_weight: float = DENSE_WEIGHT
+    rrf_k: float = RRF_K
+
+    def to_json(self) -> dict[str, object]:
+        """A JSON-ready dict."""
+        return {"kind": self.kind, "dense_weight": self.dense_weight, "rrf_k": self.rrf_k}
+
+    @classmethod
+    def from_json(cls, data: dict[str, object]) -> Fusion:
+        """The fusion a :meth:`to_json` dict describes."""
+        kind = str(data.get("kind", "rrf"))
+        if kind not in FUSION_KINDS:
+            raise ValueError(f"unknown fusion kind {kind!r}")
+        weight = data.get("dense_weight", DENSE_WEIGHT)
+        rrf_k = data.get("rrf_k", RRF_K)
+        if not isinstance(weight, int | float) or not isinstance(rrf_k, int | float):
+            raise ValueError("fusion weights must be numbers")
+        return cls(kind, float(weight), float(rrf_k))
+
+
+def _rrf_scores(dense: Candidates, lexical: Candidates, fusion: Fusion) -> dict[int, float]:
     fused: dict[int, float] = {}
-    for ranking in rankings:
-        for rank, item in enumerate(ranking, 1):
-            fused[item] = fused.get(item, 0.0) + 1.0 / (k + rank)
+    for weight, side in ((fusion.dense_weight, dense), (1.0 - fusion.dense_weight, lexical)):
+        for rank, (item, _) in enumerate(side, 1):
+            fused[item] = fused.get(item, 0.0) + weight / (fusion.rrf_k + rank)
     return fused
+
+
+def _unit_scaled(side: Candidates) -> dict[int, float]:
+    """Scores mapped to [0, 1] over one candidate list (best 1, worst 0)."""
+    if not side:
+        return {}
+    scores = [score for _, score in side]
+    low, high = min(scores), max(scores)
+    span = high - low
+    return {item: (score - low) / span if span > 0 else 1.0 for item, score in side}
+
+
+def _standardised(side: Candidates) -> dict[int, float]:
+    """Scores in standard deviations above the candidate list's worst (a flat list: 0)."""
+    if not side:
+        return {}
+    scores = np.array([score for _, score in side], dtype=np.float64)
+    spread = float(scores.std())
+    if spread == 0:
+        return {item: 0.0 for item, _ in side}
+    values = (scores - scores.min()) / spread
+    return {item: float(value) for (item, _), value in zip(side, values, strict=True)}
+
+
+def _weighted_sum(dense: dict[int, float], lexical: dict[int, float],
+                  fusion: Fusion) -> dict[int, float]:
+    fused: dict[int, float] = {}
+    for weight, side in ((fusion.dense_weight, dense), (1.0 - fusion.dense_weight, lexical)):
+        for item, value in side.items():
+            fused[item] = fused.get(item, 0.0) + weight * value
+    return fused
+
+
+def _linear_scores(dense: Candidates, lexical: Candidates, fusion: Fusion) -> dict[int, float]:
+    return _weighted_sum(_unit_scaled(dense), _unit_scaled(lexical), fusion)
+
+
+def _zscore_scores(dense: Candidates, lexical: Candidates, fusion: Fusion) -> dict[int, float]:
+    return _weighted_sum(_standardised(dense), _standardised(lexical), fusion)
+
+
+_FUSERS = {"rrf": _rrf_scores, "linear": _linear_scores, "zscore": _zscore_scores}
+FUSION_KINDS = tuple(_FUSERS)
+DEFAULT_FUSION = Fusion()
+
+
+def fuse(dense: Candidates, lexical: Candidates,
+         fusion: Fusion = DEFAULT_FUSION) -> list[tuple[int, float]]:
+    """The served ranking: (unit id, fused score) of every candidate, best first.
+
+    Ties go to the higher cosine, then to the lower id, so the order is total.
+    """
+    fused = _FUSERS[fusion.kind](dense, lexical, fusion)
+    similarity = dict(dense)
+    order = sorted(fused, key=lambda i: (-fused[i], -similarity.get(i, -2.0), i))
+    return [(item, fused[item]) for item in order]
 
 
 def snippet_of(unit: CodeUnit, lines: int = SNIPPET_LINES) -> str:
@@ -126,15 +188,22 @@ def snippet_of(unit: CodeUnit, lines: int = SNIPPET_LINES) -> str:
 
 
 class Searcher:
-    """Answers queries over one store, its vector index and its embedder."""
+    """Answers queries over one store, its vector index and its embedder.
+
+    ``adapter`` (a query-side linear map made by ``codeseek tune``) is applied
+    to every query vector; ``fusion`` is the ranking rule (:func:`fuse`).
+    """
 
     def __init__(self, store: Store, vectors: VectorIndex, embedder: Embedder,
-                 model_id: str, lock: ReadWriteLock | None = None) -> None:
+                 model_id: str, lock: ReadWriteLock | None = None, *,
+                 adapter: QueryAdapter | None = None, fusion: Fusion | None = None) -> None:
         self.store = store
         self.vectors = vectors
         self.embedder = embedder
         self.model_id = model_id
         self.lock = lock or ReadWriteLock()
+        self.adapter = adapter
+        self.fusion = fusion or DEFAULT_FUSION
 
     def search(self, query: str, k: int = 10, filters: Filters | None = None) -> list[SearchHit]:
         """The k best units for one query."""
@@ -150,10 +219,15 @@ class Searcher:
         for query in queries:
             if not query.strip():
                 raise InvalidQuery("the query is empty; type what you are looking for")
-        matrix = self.embedder.encode(list(queries))
+        matrix = self.query_vectors(queries)
         with self.lock.read():  # one committed state for the whole answer
             pool = self._filtered_pool(filters)
-            return [self._answer(q, matrix[i], k, filters, pool) for i, q in enumerate(queries)]
+            return [self._answer(q, matrix[i], k, pool) for i, q in enumerate(queries)]
+
+    def query_vectors(self, queries: Sequence[str]) -> np.ndarray:
+        """The query vectors dense search uses (the adapter applied, if any)."""
+        matrix = self.embedder.encode(list(queries))
+        return matrix if self.adapter is None else self.adapter.apply(matrix)
 
     def _filtered_pool(self, filters: Filters) -> set[int] | None:
         if not filters.active:
@@ -184,22 +258,24 @@ class Searcher:
             hits = [h for h in hits if h[0] in pool]
         return hits[:n]
 
-    def _answer(self, query: str, vector: np.ndarray, k: int, filters: Filters,
-                pool: set[int] | None) -> list[SearchHit]:
+    def ranked(self, query: str, vector: np.ndarray, k: int,
+               pool: set[int] | None = None) -> tuple[list[tuple[int, float]], dict[int, float]]:
+        """The served ranking's best k (unit id, fused score), and the dense cosines seen."""
         n = max(CANDIDATES, k * 3)
         dense = self.dense(vector, n, pool)
         lexical = self.lexical(query, n, pool)
-        fused = rrf([[i for i, _ in dense], [i for i, _ in lexical]])
-        similarity = dict(dense)
-        ranked = sorted(fused, key=lambda i: (-fused[i], -similarity.get(i, -2.0), i))[:k]
-        units = self.store.units_by_ids(ranked)
+        return fuse(dense, lexical, self.fusion)[:k], dict(dense)
+
+    def _answer(self, query: str, vector: np.ndarray, k: int,
+                pool: set[int] | None) -> list[SearchHit]:
+        ranked, similarity = self.ranked(query, vector, k, pool)
+        units = self.store.units_by_ids([unit_id for unit_id, _ in ranked])
         hits: list[SearchHit] = []
-        for unit_id in ranked:
+        for unit_id, score in ranked:
             stored = units.get(unit_id)
             if stored is None:
                 continue
-            hits.append(_hit(query, len(hits) + 1, fused[unit_id], similarity.get(unit_id),
-                             stored))
+            hits.append(_hit(query, len(hits) + 1, score, similarity.get(unit_id), stored))
         return hits
 
 
@@ -212,3 +288,29 @@ def _hit(query: str, rank: int, score: float, similarity: float | None,
         kind=unit.kind, name=unit.name, qualname=unit.qualname, signature=unit.signature,
         doc_summary=unit.doc_summary, snippet=snippet_of(unit), unit_id=stored.id,
     )
+
+
+def similar_units(searcher: Searcher, unit_id: int, k: int,
+                  filters: Filters | None = None) -> list[SearchHit]:
+    """The k units nearest to one unit's own vector ("more like this"), within filters."""
+    filters = filters or Filters()
+    filters.validate()
+    if k <= 0:
+        raise InvalidQuery(f"-k must be at least 1, not {k}")
+    with searcher.lock.read():
+        own = searcher.store.units_by_ids([unit_id]).get(unit_id)
+        labels, matrix = searcher.store.unit_vectors(searcher.model_id, searcher.vectors.dim,
+                                                     [unit_id])
+        if own is None or len(labels) == 0:
+            raise InvalidQuery("that unit is no longer in the index (its file changed); "
+                               "search again")
+        pool = searcher._filtered_pool(filters)
+        nearest = searcher.dense(matrix[0], max(CANDIDATES, k * 3) + 1, pool)
+        ranked = [(other, cosine) for other, cosine in nearest if other != unit_id][:k]
+        units = searcher.store.units_by_ids([other for other, _ in ranked])
+        label = f"like {own.unit.qualname}"
+        hits: list[SearchHit] = []
+        for other, cosine in ranked:
+            if other in units:
+                hits.append(_hit(label, len(hits) + 1, cosine, cosine, units[other]))
+        return hits

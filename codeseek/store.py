@@ -468,3 +468,14 @@ def missing_vector_units(store: Store, model_id: str) -> list[StoredUnit]:
         (model_id,),
     )
     return [_stored_unit(row) for row in rows]
+
+
+def unlink_all(folder: Path, names: Iterable[str]) -> None:
+    """Delete these files of an index folder (missing ones are fine)."""
+    for name in names:
+        try:
+            (folder / name).unlink()
+        except FileNotFoundError:
+            continue
+        except OSError as exc:
+            raise IndexWriteError(f"{folder / name}: cannot remove: {exc}") from exc

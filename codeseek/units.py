@@ -15,16 +15,19 @@ from dataclasses import dataclass
 from functools import cached_property, lru_cache
 
 KINDS = ("function", "method", "class")
+WORDS_FROM = 800  # characters of code from which the embedded text gives identifier words
 
 _CAMEL = re.compile(r"[A-Z]+(?=[A-Z][a-z])|[A-Z]?[a-z]+|[A-Z]+|\d+")
 _NON_WORD = re.compile(r"[^A-Za-z0-9]+")
 _IDENT = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
-_TAG_LINE = re.compile(r"^\s*(@\w+|:(param|type|return|returns|rtype|raises)\b)")
+_TOKEN = re.compile(r"[^\W\d]\w*")
+_TAG_LINE = re.compile(r"^\s*([@\\]\w+|:(param|type|return|returns|rtype|raises)\b)")
+_SUMMARY_TAG = re.compile(r"^\s*[@\\](brief|short|summary)\b\s*")
 _SECTION = re.compile(
     r"^\s*(Args|Arguments|Parameters|Returns|Return|Raises|Yields|Examples?|Notes?|"
-    r"See Also|Attributes|Keyword Arguments|# Arguments|# Returns|# Errors|# Panics|"
-    r"# Examples)\s*:?\s*$"
+    r"See Also|Attributes|Keyword Arguments|#{1,3} [A-Z][\w ]*)\s*:?\s*$"
 )
+_INLINE_TAG = re.compile(r"\{@(?:link|linkplain|linkcode|code|literal|see)\s+([^{}]*)\}")
 
 
 @dataclass(frozen=True)
@@ -87,12 +90,23 @@ class CodeUnit:
         return summarize_doc(self.doc)
 
     def embed_text(self) -> str:
-        """The text the embedding model reads for this unit."""
+        """The text the embedding model reads for this unit.
+
+        The kind and qualified name (also in words), then the doc, then the
+        code. The model reads 256 word pieces, about :data:`WORDS_FROM`
+        characters of code: longer code is given as the signature and then
+        its identifiers' words, which pack more of it into the window. Chosen
+        on the training splits of the recall checks (``scripts/bench_quality.py``).
+        """
         words = " ".join(split_identifier(self.qualname))
+        code = self.code_without_doc
         parts = [f"{self.kind} {self.qualname} ({words})"]
+        long_code = len(code) >= WORDS_FROM
+        if long_code:
+            parts.append(self.signature)
         if self.doc:
             parts.append(self.doc)
-        parts.append(self.code_without_doc)
+        parts.append(code_words(code) if long_code else code)
         return "\n".join(parts)
 
     @cached_property
@@ -127,25 +141,49 @@ def _split_part(part: str) -> tuple[str, ...]:
 
 
 def split_words(text: str) -> str:
-    """Text with every identifier followed by its split words (when they differ)."""
+    """Text's identifiers, each camelCase one followed by its split words.
+
+    The lexical index's tokenizer already splits ``snake_case`` at the
+    underscores, so only identifiers with a case change need their words added.
+    """
     out: list[str] = []
     for ident in _IDENT.findall(text):
         out.append(ident)
-        pieces = split_identifier(ident)
-        if len(pieces) > 1:
-            out.extend(pieces)
+        if any(len(_split_part(part)) > 1 for part in ident.split("_") if part):
+            out.extend(split_identifier(ident))
+    return " ".join(out)
+
+
+def code_words(text: str) -> str:
+    """Code as the words of its identifiers (and of its comments and strings), in order."""
+    out: list[str] = []
+    for token in _TOKEN.findall(text):
+        if token.isascii():
+            out.extend(split_identifier(token) or [token.lower()])
+        else:
+            out.append(token.lower())
     return " ".join(out)
 
 
 def summarize_doc(doc: str) -> str:
-    """The first paragraph of a doc, stopping at tags and parameter sections."""
+    """The first paragraph of a doc, stopping at tags and parameter sections.
+
+    Tags (``@param``, ``\\param``, ``:returns:``) and section headings (``Args:``,
+    Rust's ``# Arguments``) end the summary; a ``@brief``/``\\brief`` tag gives it;
+    inline tags (``{@link Dock#release}``, ``{@code x}``) keep their text only.
+    """
     lines: list[str] = []
     for line in doc.strip().splitlines():
         if not line.strip():
             if lines:
                 break
             continue
-        if _TAG_LINE.match(line) or _SECTION.match(line):
+        brief = _SUMMARY_TAG.match(line)
+        if brief is not None:
+            if lines:
+                break
+            line = line[brief.end() :]
+        elif _TAG_LINE.match(line) or _SECTION.match(line):
             break
         lines.append(line.strip())
-    return " ".join(lines)
+    return _INLINE_TAG.sub(lambda m: m.group(1).strip(), " ".join(lines))

@@ -9,6 +9,7 @@ import sys
 from pathlib import Path
 
 import pytest
+from sample_files import sample_source_files
 
 from codeseek.cli import main
 
@@ -31,7 +32,7 @@ def test_index_prints_one_summary_line(sample_copy: Path) -> None:
     assert code == 0
     lines = out.strip().splitlines()
     assert len(lines) == 1
-    assert lines[0].startswith("indexed 15 files, ")
+    assert lines[0].startswith(f"indexed {len(sample_source_files())} files, ")
     assert " 0 changed, 0 removed, " in lines[0]
 
 
@@ -103,10 +104,11 @@ def test_status_json(indexed: Path) -> None:
     code, out, _ = run_cli("status", str(indexed), "--json")
     assert code == 0
     status = json.loads(out)
-    assert status["files"] == 15
+    sources = sample_source_files()
+    assert status["files"] == len(sources)
     assert status["vectors_in_sync"] is True
     assert status["skipped"]["ignored by .gitignore or exclude rules"] == 1
-    assert set(status["languages"]) == {"python", "go", "javascript", "rust"}
+    assert set(status["languages"]) == set(sources.values())
 
 
 def test_outline_lists_units_without_an_index(sample_copy: Path) -> None:
@@ -181,7 +183,7 @@ def test_corrupt_store_is_a_clear_error(indexed: Path) -> None:
     assert err.startswith(f"error: {store}: the index store is unreadable (")
     assert err.endswith("rebuild it with `codeseek index --rebuild`\n")
     code, out, _ = run_cli("index", str(indexed), "--backend", "fake", "--rebuild", "-q")
-    assert code == 0 and out.startswith("indexed 15 files")
+    assert code == 0 and out.startswith(f"indexed {len(sample_source_files())} files")
 
 
 # -- the command line as a process ---------------------------------------------------

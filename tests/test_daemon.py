@@ -25,7 +25,8 @@ from hypothesis import strategies as st
 
 from codeseek import FakeEmbedder, open_index
 from codeseek.api import Index
-from codeseek.daemon import MAX_REQUEST_BYTES, SOCKET_NAME, Daemon, DaemonClient
+from codeseek.client import SOCKET_NAME, DaemonClient
+from codeseek.daemon import MAX_REQUEST_BYTES, Daemon
 from codeseek.errors import IndexLocked
 from codeseek.store import Store
 
@@ -178,11 +179,14 @@ def test_socket_is_private(daemon: Daemon) -> None:
     assert stat.S_ISSOCK(mode) and mode & 0o777 == 0o600
 
 
-def test_status_reports_the_daemon(client: DaemonClient) -> None:
+def test_status_reports_the_daemon(daemon: Daemon, client: DaemonClient) -> None:
     status = client.status()
     assert status["daemon"]["state"] == "watching"
     assert status["daemon"]["watcher"] in ("inotify", "polling")
-    assert status["index"]["units"] == 175
+    from codeseek.outline import outline_path
+
+    # the same units the parser lists for the tree, straight from the files
+    assert status["index"]["units"] == len(list(outline_path(daemon.index.settings.repo)))
 
 
 def test_daemon_and_in_process_search_agree(daemon: Daemon, client: DaemonClient,
@@ -224,6 +228,8 @@ def test_oversized_request_is_refused(daemon: Daemon) -> None:
     (b'{"v": 1, "op": "read_file", "path": "/etc/passwd"}\n', "unknown op"),
     (b'{"v": 1, "op": "search", "queries": "x"}\n', "'queries' must be a list"),
     (b'{"v": 1, "op": "search", "queries": ["x"], "k": 0}\n', "'k' must be"),
+    (b'{"v": 1, "op": "similar", "unit_id": "7"}\n', "'unit_id' must be"),
+    (b'{"v": 1, "op": "similar", "unit_id": 999999}\n', "no longer in the index"),
 ])
 def test_bad_requests_get_clear_errors(daemon: Daemon, line: bytes, words: str) -> None:
     response = json.loads(raw_exchange(daemon.index.settings.index_dir / SOCKET_NAME, line))
@@ -451,3 +457,36 @@ def test_vectors_match_after_recovery_to_exact_search(sample_copy: Path) -> None
     best = int(labels[int(np.argmax(matrix @ query))])
     assert searcher.vectors.search(query, 1)[0][0] == best
     index.close()
+
+
+def test_index_command_defers_to_a_running_daemon(daemon: Daemon) -> None:
+    import io
+
+    from codeseek.cli import main
+
+    repo = str(daemon.index.settings.repo)
+    out, err = io.StringIO(), io.StringIO()
+    assert main(["index", repo, "-q"], out=out, err=err) == 0
+    assert out.getvalue() == (f"a codeseek daemon (pid {os.getpid()}) keeps this index up to "
+                              "date; nothing to do\n")
+    out, err = io.StringIO(), io.StringIO()
+    assert main(["index", repo, "--rebuild", "-q"], out=out, err=err) == 1
+    assert err.getvalue() == (f"error: a codeseek daemon (pid {os.getpid()}) watches this "
+                              "index; stop it before rebuilding\n")
+    assert (daemon.index.settings.index_dir / "index.sqlite3").exists()
+
+
+def test_search_and_status_commands_use_the_daemon(daemon: Daemon) -> None:
+    import io
+
+    from codeseek.cli import main
+
+    repo = str(daemon.index.settings.repo)
+    served = daemon.queries_served
+    out, err = io.StringIO(), io.StringIO()
+    assert main(["search", "refund a rider", "--repo", repo, "--json"], out=out, err=err) == 0
+    assert daemon.queries_served == served + 1  # answered by the daemon, not in-process
+    assert json.loads(out.getvalue().splitlines()[0])["rank"] == 1
+    out = io.StringIO()
+    assert main(["status", repo, "--json"], out=out, err=err) == 0
+    assert json.loads(out.getvalue())["daemon"]["state"] == "watching"

@@ -6,6 +6,7 @@ import shutil
 from pathlib import Path
 
 import pytest
+from sample_files import sample_source_files
 
 from codeseek import FakeEmbedder, open_index
 from codeseek.api import Index
@@ -173,4 +174,25 @@ def test_file_vanishing_mid_update_is_counted(sample_copy: Path,
     index = open_index(sample_copy, create=True, embedder=FakeEmbedder())
     summary = index.update()
     assert summary.skipped["vanished during scan"] == 1
-    assert summary.files == 14
+    assert summary.files == len(sample_source_files()) - 1
+
+
+def test_file_over_the_parse_budget_is_counted_not_fatal(sample_copy: Path,
+                                                         monkeypatch: pytest.MonkeyPatch) -> None:
+    from codeseek import indexer
+    from codeseek.parse import ParseBudgetExceeded
+    from codeseek.scan import REASON_PARSE_BUDGET
+
+    real_parse = indexer.parse_source
+
+    def slow_for_one(path, data, spec):  # type: ignore[no-untyped-def]
+        if path == "python/kestrune/uploads.py":
+            raise ParseBudgetExceeded(REASON_PARSE_BUDGET)
+        return real_parse(path, data, spec)
+
+    monkeypatch.setattr(indexer, "parse_source", slow_for_one)
+    index = open_index(sample_copy, create=True, embedder=FakeEmbedder())
+    summary = index.update()
+    assert summary.skipped[REASON_PARSE_BUDGET] == 1
+    assert summary.files == len(sample_source_files()) - 1
+    assert index.status().skipped[REASON_PARSE_BUDGET] == 1

@@ -1,0 +1,113 @@
+"""The query-side adapter: a linear map applied to query vectors before dense search.
+
+``codeseek tune`` (:mod:`codeseek.tune`) learns the map on the repository's own
+(doc summary, code) pairs. Only the query side changes, so the vectors in the
+store and the HNSW index stay valid. The adapter lives in the index folder as
+one ``adapter.npz`` (the matrix, and a JSON header: model, split, fusion and
+the training report); ``adapter.json`` beside it is a readable copy of that
+header. Applying it is one matrix product in numpy: the search path never
+imports torch.
+"""
+
+from __future__ import annotations
+
+import json
+import os
+import tempfile
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from codeseek.errors import IndexCorrupt, IndexWriteError
+from codeseek.store import unlink_all
+
+ADAPTER_NAME = "adapter.npz"
+REPORT_NAME = "adapter.json"
+
+
+@dataclass(frozen=True, eq=False)
+class QueryAdapter:
+    """A linear map of query vectors, rows re-normalised to unit length.
+
+    Attributes:
+        matrix: a (dim, dim) float32 array; a query row ``q`` becomes ``q @ matrix``.
+        model_id: the embedding model the map was learned for.
+        header: what the adapter file records beside the matrix (split,
+            fusion, training report); JSON-ready.
+    """
+
+    matrix: np.ndarray
+    model_id: str
+    header: dict[str, Any] = field(default_factory=dict)
+
+    @classmethod
+    def identity(cls, dim: int, model_id: str) -> QueryAdapter:
+        """The map that changes nothing."""
+        return cls(np.eye(dim, dtype=np.float32), model_id)
+
+    @property
+    def dim(self) -> int:
+        """The vector dimension."""
+        return int(self.matrix.shape[0])
+
+    def apply(self, queries: np.ndarray) -> np.ndarray:
+        """The mapped query rows, each of unit length."""
+        mapped = np.asarray(queries, dtype=np.float32) @ self.matrix
+        norms = np.linalg.norm(mapped, axis=1, keepdims=True)
+        norms[norms == 0] = 1.0
+        return (mapped / norms).astype(np.float32)
+
+    def with_header(self, header: dict[str, Any]) -> QueryAdapter:
+        """The same map with another header."""
+        return QueryAdapter(self.matrix, self.model_id, header)
+
+
+def save_adapter(index_dir: Path, adapter: QueryAdapter) -> None:
+    """Write ``adapter.npz`` atomically, then its readable copy ``adapter.json``."""
+    header = {"model_id": adapter.model_id, "dim": adapter.dim, **adapter.header}
+    text = json.dumps(header, indent=2, sort_keys=True)
+    target = index_dir / ADAPTER_NAME
+    try:
+        fd, tmp = tempfile.mkstemp(dir=index_dir, prefix=".tmp-", suffix=".npz")
+    except OSError as exc:
+        raise IndexWriteError(f"{target}: cannot save the adapter: {exc}") from exc
+    try:
+        with os.fdopen(fd, "wb") as handle:
+            np.savez(handle, matrix=adapter.matrix.astype(np.float32), header=np.array(text))
+            handle.flush()
+            os.fsync(handle.fileno())
+        os.replace(tmp, target)
+        (index_dir / REPORT_NAME).write_text(text + "\n", encoding="utf-8")
+    except OSError as exc:
+        Path(tmp).unlink(missing_ok=True)
+        raise IndexWriteError(f"{target}: cannot save the adapter: {exc}") from exc
+
+
+def load_adapter(index_dir: Path, model_id: str) -> QueryAdapter | None:
+    """The index's adapter for this model; None when there is none (or it is another model's)."""
+    path = index_dir / ADAPTER_NAME
+    if not path.is_file():
+        return None
+    try:
+        with np.load(path, allow_pickle=False) as data:
+            matrix = np.asarray(data["matrix"], dtype=np.float32)
+            header = json.loads(str(data["header"]))
+    except (OSError, ValueError, KeyError) as exc:
+        raise IndexCorrupt(f"{path}: the adapter cannot be read ({exc}); run `codeseek tune` "
+                           "again or remove it with `codeseek tune --remove`") from exc
+    if not isinstance(header, dict) or matrix.ndim != 2 or matrix.shape[0] != matrix.shape[1]:
+        raise IndexCorrupt(f"{path}: the adapter is malformed; run `codeseek tune` again or "
+                           "remove it with `codeseek tune --remove`")
+    if header.get("model_id") != model_id:
+        return None  # made for another model: the plain model serves
+    return QueryAdapter(matrix, model_id, {k: v for k, v in header.items()
+                                           if k not in ("model_id", "dim")})
+
+
+def remove_adapter(index_dir: Path) -> bool:
+    """Delete the adapter files; whether there was an adapter."""
+    existed = (index_dir / ADAPTER_NAME).exists()
+    unlink_all(index_dir, (ADAPTER_NAME, REPORT_NAME))
+    return existed

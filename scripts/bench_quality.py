@@ -1,0 +1,547 @@
+"""Search quality on held-out docstrings: every ranking choice, measured side by side.
+
+Runs the recall checks of ``codeseek eval`` (:mod:`codeseek.evaluate`) on a
+copy of the Python standard library without its test folders (as
+``scripts/bench_index.py`` copies it) and on ``sample_repo/``, and prints, for
+each choice codeseek makes, its figure on the training split (where the choice
+is made) and on the held-out split (what it is worth):
+
+1. the unit text the model embeds (the documents have no doc: see evaluate.py);
+2. the keyword side (fields, identifier splitting, stemming, stopwords);
+3. the fusion of the two (reciprocal rank fusion against scaled scores, weights);
+4. the served ranking, every method under every protocol, as ``codeseek eval`` prints it;
+5. the query adapter of ``codeseek tune`` at batch sizes 32, 256 and 2048.
+
+Prints figures and asserts nothing. Real-model vectors of every text are kept
+in ``--cache`` (default ``/tmp/codeseek-bench-quality``), so a second run
+embeds nothing; the first embeds the standard library about twice (minutes).
+
+Reproduce: ``.venv/bin/python scripts/bench_quality.py``
+"""
+
+from __future__ import annotations
+
+import argparse
+import re
+import shlex
+import shutil
+import sqlite3
+import sys
+import sysconfig
+import tempfile
+import time
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+PROJECT = Path(__file__).resolve().parent.parent
+sys.path.insert(0, str(PROJECT))
+
+from codeseek.adapter import QueryAdapter  # noqa: E402
+from codeseek.config import load_settings  # noqa: E402
+from codeseek.embed import Embedder, load_embedder  # noqa: E402
+from codeseek.errors import TooFewExamples  # noqa: E402
+from codeseek.evaluate import (  # noqa: E402
+    Case,
+    CaseSignals,
+    DocumentIndex,
+    EvalReport,
+    PoolSampler,
+    Prepared,
+    Split,
+    VectorCache,
+    ann_signals,
+    build_report,
+    dense_signals,
+    encode_cached,
+    lexical_signals,
+    mean_reciprocal_rank,
+    protocols_for,
+    recall_at,
+    select_cases,
+    served_ranks,
+    without_doc,
+)
+from codeseek.parse import parse_source  # noqa: E402
+from codeseek.scan import SkipFile, read_source, scan_repository  # noqa: E402
+from codeseek.search import DEFAULT_FUSION, Fusion, lexical_match  # noqa: E402
+from codeseek.tune import TrainSettings, fusion_for, train_adapter, training_data  # noqa: E402
+from codeseek.units import CodeUnit, code_words, split_identifier  # noqa: E402
+
+SMALL = 200  # a corpus with fewer held-out docstrings is also checked with all of them
+SKIP = shutil.ignore_patterns("test", "tests", "idle_test", "site-packages", "__pycache__")
+# published reference points for the 1,000-pool protocol, from memory (via the CodeBERT
+# paper's table of CodeSearchNet results): not measured here
+REFERENCE = ("published, from memory (CodeBERT paper's table, CodeSearchNet Python, pool "
+             "1000): neural bag-of-words MRR 0.58, CodeBERT fine-tuned 0.87")
+
+
+def log(message: str) -> None:
+    print(f"  .. {message}", file=sys.stderr, flush=True)
+
+
+# -- corpora ------------------------------------------------------------------------
+
+
+def copy_stdlib(target: Path) -> Path:
+    """A copy of the standard library without its test folders."""
+    shutil.copytree(sysconfig.get_paths()["stdlib"], target, ignore=SKIP, symlinks=True)
+    return target
+
+
+def parse_repository(repo: Path) -> list[CodeUnit]:
+    """Every unit of a repository, as `codeseek index` would store them."""
+    settings = load_settings(repo)
+    units: list[CodeUnit] = []
+    for source in scan_repository(settings).files:
+        try:
+            data = read_source(source, settings.max_file_bytes)
+        except SkipFile:
+            continue
+        units.extend(parse_source(source.path, data, source.spec).units)
+    return units
+
+
+# -- the choices --------------------------------------------------------------------
+
+_IDENT = re.compile(r"[A-Za-z_][A-Za-z0-9_]*")
+_DEF = re.compile(r"\b(?:def|fn|func|function|class|struct|interface|enum|trait)\s+([A-Za-z_]\w*)")
+
+
+def header(unit: CodeUnit) -> str:
+    return f"{unit.kind} {unit.qualname} ({' '.join(split_identifier(unit.qualname))})"
+
+
+def text_before(unit: CodeUnit) -> str:
+    """The unit text codeseek embedded before these checks: name, then the code as written."""
+    return f"{header(unit)}\n{unit.code}"
+
+
+def text_shipped(unit: CodeUnit) -> str:
+    """What `CodeUnit.embed_text` gives a doc-less unit now."""
+    return unit.embed_text()
+
+
+def text_members(unit: CodeUnit) -> str:
+    """Code words, plus the names a unit defines inside it up front (a class's methods)."""
+    names = list(dict.fromkeys(m.group(1) for m in _DEF.finditer(unit.code)
+                               if m.group(1) != unit.name))
+    if not names:
+        return text_words(unit)
+    members = "defines " + ", ".join(" ".join(split_identifier(n)) for n in names)
+    return "\n".join([header(unit), unit.signature, members, code_words(unit.code)])
+
+
+def text_words(unit: CodeUnit) -> str:
+    """Name, signature, then the code as its identifiers' words, whatever its length."""
+    return "\n".join([header(unit), unit.signature, code_words(unit.code)])
+
+
+def text_words_beyond(limit: int) -> Callable[[CodeUnit], str]:
+    """Name and code as written below ``limit`` characters of code; words from there on."""
+    def text(unit: CodeUnit) -> str:
+        return text_before(unit) if len(unit.code) < limit else text_words(unit)
+    return text
+
+
+REPRESENTATIONS: dict[str, Callable[[CodeUnit], str]] = {
+    "name + code (before)": text_before,
+    "name + signature + code words": text_words,
+    "... + defined names up front": text_members,
+    "name + code, words from 400 chars": text_words_beyond(400),
+    "name + code, words from 800 chars": text_words_beyond(800),
+    "name + code, words from 1600 chars": text_words_beyond(1600),
+    "shipped (CodeUnit.embed_text)": text_shipped,
+}
+
+
+def fields_shipped(unit: CodeUnit) -> list[str]:
+    fields = unit.lexical_fields()
+    return [fields["names"], fields["signature"], fields["doc"], fields["code"]]
+
+
+def _split_every(text: str) -> str:
+    out: list[str] = []
+    for ident in _IDENT.findall(text):
+        out.append(ident)
+        pieces = split_identifier(ident)
+        if len(pieces) > 1:
+            out.extend(pieces)
+    return " ".join(out)
+
+
+def fields_before(unit: CodeUnit) -> list[str]:
+    """Every identifier followed by its pieces (snake_case too, which the tokenizer splits)."""
+    return [" ".join(split_identifier(unit.qualname)), _split_every(unit.signature), "",
+            _split_every(unit.code)]
+
+
+def fields_unsplit(unit: CodeUnit) -> list[str]:
+    return [unit.qualname, unit.signature, "", unit.code]
+
+
+def match_with_stopwords(query: str) -> str:
+    words: list[str] = []
+    for token in re.findall(r"[A-Za-z0-9_]+", query):
+        for word in [token.lower(), *split_identifier(token)]:
+            if word not in words and len(word) > 1:
+                words.append(word)
+    return " OR ".join(f'"{w}"' for w in words)
+
+
+@dataclass(frozen=True)
+class KeywordVariant:
+    """One way to build and query the BM25 side."""
+
+    fields: Callable[[CodeUnit], list[str]]
+    tokenizer: str = "porter unicode61"
+    weights: tuple[float, ...] = (4.0, 2.0, 2.0, 1.0)
+    match: Callable[[str], str] = lexical_match
+
+
+KEYWORDS: dict[str, KeywordVariant] = {
+    "camelCase words added, stemmed, names 4x (shipped)": KeywordVariant(fields_shipped),
+    "every identifier's words added (before)": KeywordVariant(fields_before),
+    "no stemming": KeywordVariant(fields_shipped, tokenizer="unicode61"),
+    "identifiers not split": KeywordVariant(fields_unsplit),
+    "no name field": KeywordVariant(fields_shipped, weights=(0.0, 2.0, 2.0, 1.0)),
+    "all fields weighted 1": KeywordVariant(fields_shipped, weights=(1.0, 1.0, 1.0, 1.0)),
+    "stopwords kept in the query": KeywordVariant(fields_shipped, match=match_with_stopwords),
+}
+
+
+class KeywordIndex:
+    """An FTS5 table of doc-less units built one variant's way (the shipped one is the
+    index's own table and query: checked against DocumentIndex in the run)."""
+
+    def __init__(self, units: Sequence[CodeUnit], variant: KeywordVariant) -> None:
+        self.variant = variant
+        self.size = len(units)
+        self.db = sqlite3.connect(":memory:")
+        self.db.execute("CREATE VIRTUAL TABLE t USING fts5(names, signature, doc, code, "
+                        f"tokenize = '{variant.tokenizer}')")
+        self.db.executemany("INSERT INTO t (rowid, names, signature, doc, code) "
+                            "VALUES (?, ?, ?, ?, ?)",
+                            [(i + 1, *variant.fields(u)) for i, u in enumerate(units)])
+        self.weights = ", ".join(str(w) for w in variant.weights)
+
+    def __len__(self) -> int:
+        return self.size
+
+    def lexical_scored(self, query: str) -> tuple[np.ndarray, np.ndarray]:
+        match = self.variant.match(query)
+        if not match:
+            return np.zeros(0, dtype=np.int64), np.zeros(0)
+        rows = self.db.execute(f"SELECT rowid, bm25(t, {self.weights}) AS s FROM t "
+                               "WHERE t MATCH ? ORDER BY s", (match,)).fetchall()
+        return (np.array([r[0] - 1 for r in rows], dtype=np.int64),
+                np.array([-r[1] for r in rows]))
+
+
+FUSIONS: dict[str, Fusion] = {
+    "reciprocal rank fusion, k 60 (before)": Fusion("rrf", 0.5, 60),
+    **{f"weighted RRF, k {k}, dense {w}": Fusion("rrf", w, k)
+       for k in (5, 20) for w in (0.5, 0.6, 0.7)},
+    **{f"scaled to [0, 1], dense {w / 10:g}": Fusion("linear", w / 10) for w in range(5, 10)},
+    **{f"standardised, dense {w / 10:g}": Fusion("zscore", w / 10) for w in range(5, 10)},
+}
+
+
+# -- measuring ----------------------------------------------------------------------
+
+
+@dataclass
+class Bench:
+    """One corpus: its units, pairs, documents and vectors."""
+
+    name: str
+    units: list[CodeUnit]
+    embedder: Embedder
+    cache: VectorCache
+    split: Split
+    train_sample: int
+
+    def __post_init__(self) -> None:
+        self.selection = select_cases(self.units, self.split)
+        self.test = self.selection.held_out
+        unique = [c for c in self.selection.training if c.unique]
+        rng = np.random.default_rng(self.split.seed)
+        take = min(self.train_sample, len(unique))
+        self.train = [unique[i] for i in sorted(rng.choice(len(unique), take, replace=False))]
+        self.bare = [without_doc(u) for u in self.units]
+        self.queries = self.encode([c.query for c in self.selection.cases], "queries")
+        self.memo: dict[tuple[str, str], dict] = {}
+        self.pools: list[object] = []
+
+    def encode(self, texts: list[str], label: str) -> dict[str, np.ndarray]:
+        vectors = encode_cached(self.embedder, texts, self.cache,
+                                lambda _s, done, total: log(f"{self.name}: embed {label} "
+                                                            f"{done}/{total}"))
+        self.cache.save()
+        return dict(zip(texts, vectors, strict=True))
+
+    def texts(self, representation: str) -> list[str]:
+        return [REPRESENTATIONS[representation](u) for u in self.bare]
+
+    def docs(self, representation: str) -> DocumentIndex:
+        texts = self.texts(representation)
+        vectors = self.encode(texts, representation)
+        return DocumentIndex(self.units, np.stack([vectors[t] for t in texts]),
+                             self.embedder.model_id)
+
+    def qmatrix(self, cases: Sequence[Case], adapter: QueryAdapter | None = None) -> np.ndarray:
+        matrix = np.stack([self.queries[c.query] for c in cases])
+        return matrix if adapter is None else adapter.apply(matrix)
+
+    def sampler(self, docs: DocumentIndex) -> PoolSampler:
+        return PoolSampler(docs, self.split.seed)
+
+
+Table = dict[str, tuple[dict, dict]]
+"""choice -> (training signals by pool, held-out signals by pool)."""
+
+
+def mrr_cells(signals: dict, pools: Sequence[object]) -> str:
+    return "  ".join(f"{mean_reciprocal_rank(signals[p].ranks):.4f}" if p in signals else "   -  "
+                     for p in pools)
+
+
+def print_table(bench: Bench, title: str, table: Table, recall: bool = False) -> None:
+    extra = f" (then held-out R@10 at pool {bench.pools[0]})" if recall else ""
+    print(f"\n[{bench.name}] {title} (train | held-out), pools "
+          + ", ".join(str(p) for p in bench.pools) + extra)
+    for name, (train, test) in table.items():
+        tail = f"   {recall_at(test[bench.pools[0]].ranks, 10):.3f}" if recall else ""
+        print(f"  {name:<52} {mrr_cells(train, bench.pools)} | {mrr_cells(test, bench.pools)}"
+              f"{tail}")
+
+
+def choose_across(tables: dict[str, Table], benches: Sequence[Bench]) -> str:
+    """The choice with the best mean, over corpora, of its training MRR at the first pool."""
+    names = list(next(iter(tables.values())))
+    means = {name: float(np.mean([mean_reciprocal_rank(tables[b.name][name][0][b.pools[0]].ranks)
+                                  for b in benches]))
+             for name in names}
+    best = max(names, key=lambda name: means[name])
+    print("\nmean training MRR over the corpora (first pool of each): "
+          + "; ".join(f"{name}: {means[name]:.4f}" for name in names))
+    print(f"chosen: {best}")
+    return best
+
+
+def representation_table(bench: Bench) -> Table:
+    table: Table = {}
+    for name in REPRESENTATIONS:
+        docs = bench.docs(name)
+        sampler = bench.sampler(docs)
+        row = tuple(dense_signals(cases, bench.qmatrix(cases), docs, sampler,
+                                  protocols_for(cases, sampler))
+                    for cases in (bench.train, bench.test))
+        bench.pools = list(row[1])
+        table[name] = (row[0], row[1])
+    print_table(bench, "1. unit text for the model: dense MRR, exact search", table)
+    return table
+
+
+def keyword_signals(bench: Bench, variant: str, which: str, docs: DocumentIndex) -> dict:
+    if (variant, which) not in bench.memo:
+        cases = bench.train if which == "train" else bench.test
+        scorer = KeywordIndex(bench.bare, KEYWORDS[variant])
+        sampler = bench.sampler(docs)
+        log(f"{bench.name}: keyword search, {variant}, {len(cases)} queries")
+        bench.memo[(variant, which)] = lexical_signals(cases, scorer, sampler,
+                                                       protocols_for(cases, sampler))
+    return bench.memo[(variant, which)]
+
+
+def keyword_table(bench: Bench, docs: DocumentIndex) -> Table:
+    table: Table = {name: (keyword_signals(bench, name, "train", docs),
+                           keyword_signals(bench, name, "test", docs)) for name in KEYWORDS}
+    print_table(bench, "2. keyword side: BM25 MRR", table)
+    shipped = next(iter(KEYWORDS))
+    sampler = bench.sampler(docs)
+    own = lexical_signals(bench.test, docs, sampler, protocols_for(bench.test, sampler))
+    agree = all(np.array_equal(own[p].ranks, table[shipped][1][p].ranks) for p in own)
+    print(f"  the index's own FTS5 table and query give the shipped variant's ranks: {agree}")
+    return table
+
+
+def full_signals(bench: Bench, cases: Sequence[Case], docs: DocumentIndex, lexical: dict,
+                 adapter: QueryAdapter | None = None) -> CaseSignals:
+    sampler = bench.sampler(docs)
+    queries = bench.qmatrix(cases, adapter)
+    dense = dense_signals(cases, queries, docs, sampler, protocols_for(cases, sampler))
+    return CaseSignals(tuple(cases), lexical, dense, ann_signals(cases, queries, docs))
+
+
+@dataclass
+class Served:
+    """A corpus's documents and signals under the chosen text and keyword side."""
+
+    docs: DocumentIndex
+    lexical: dict
+    train: CaseSignals
+    test: CaseSignals
+
+
+def served_signals(bench: Bench, representation: str, keyword: str) -> Served:
+    docs = bench.docs(representation)
+    train_lexical = keyword_signals(bench, keyword, "train", docs)
+    test_lexical = keyword_signals(bench, keyword, "test", docs)
+    return Served(docs, test_lexical, full_signals(bench, bench.train, docs, train_lexical),
+                  full_signals(bench, bench.test, docs, test_lexical))
+
+
+@dataclass(frozen=True, eq=False)
+class Ranked:
+    """The served ranks of some cases under one protocol."""
+
+    ranks: np.ndarray
+
+
+def fusion_ranks(signals: CaseSignals, fusion: Fusion) -> dict:
+    return {p: Ranked(served_ranks(signals.cases, *signals.served_for(p), fusion))
+            for p in signals.lexical}
+
+
+def fusion_table(bench: Bench, served: Served) -> Table:
+    table: Table = {name: (fusion_ranks(served.train, fusion), fusion_ranks(served.test, fusion))
+                    for name, fusion in FUSIONS.items()}
+    print_table(bench, "3. fusion: served MRR", table, recall=True)
+    return table
+
+
+def section_served(bench: Bench, served: Served) -> None:
+    report = build_report(repository=bench.name, model=bench.embedder.model_id,
+                          split=bench.split, selection=bench.selection, signals=served.test,
+                          corpus=len(served.docs), fusion=DEFAULT_FUSION, adapter=False)
+    print(f"\n[{bench.name}] 4. the served ranking, as `codeseek eval` prints it\n")
+    print("\n".join("  " + line for line in report.to_text().splitlines()))
+    print(f"  served at least as good as the best single method at every pool: "
+          f"{served_holds(report)}")
+
+
+def served_holds(report: EvalReport) -> bool:
+    """Whether served MRR >= the best of lexical and dense under every protocol."""
+    verdicts = []
+    for pool in report.pools:
+        served = report.result("served", pool)
+        singles = [report.result(m, pool) for m in ("lexical", "dense")]
+        verdicts.append(served is not None and served.mrr >= max(
+            r.mrr for r in singles if r is not None))
+    return all(verdicts)
+
+
+def section_everything(bench: Bench, served: Served) -> None:
+    """A small corpus again with every documented unit held out (more queries, no training)."""
+    everything = Split(1.0, bench.split.seed)
+    selection = select_cases(bench.units, everything)
+    cases = selection.held_out
+    sampler = bench.sampler(served.docs)
+    lexical = lexical_signals(cases, served.docs, sampler, protocols_for(cases, sampler))
+    signals = full_signals(bench, cases, served.docs, lexical)
+    report = build_report(repository=bench.name, model=bench.embedder.model_id,
+                          split=everything, selection=selection, signals=signals,
+                          corpus=len(served.docs), fusion=DEFAULT_FUSION, adapter=False)
+    print(f"\n[{bench.name}] 4b. every documented unit held out ({len(cases)} docstrings)")
+    for result in report.results:
+        print(f"  {result.method:<10} {result.pool_size:>6}  MRR {result.mrr:.4f}  "
+              f"R@10 {result.metrics['recall@10']:.3f}")
+    print(f"  served at least as good as the best single method at every pool: "
+          f"{served_holds(report)}")
+
+
+def section_adapter(bench: Bench, served: Served) -> None:
+    docs = served.docs
+    prepared = Prepared(tuple(bench.units), docs, bench.selection, bench.sampler(docs),
+                        bench.queries)
+    pools = list(served.test.lexical)
+    print(f"\n[{bench.name}] 5. query adapter (codeseek tune): held-out MRR, pools "
+          + ", ".join(str(p) for p in pools))
+    plain = fusion_ranks(served.test, DEFAULT_FUSION)
+    print(f"  {'no adapter':<14} dense {mrr_cells(served.test.dense, pools)} | served "
+          f"{mrr_cells(plain, pools)}   R@10 {recall_at(plain[pools[0]].ranks, 10):.3f}")
+    try:
+        data = training_data(prepared, bench.split)
+    except TooFewExamples as exc:
+        print(f"  not trained: {exc}")
+        return
+    for size in (32, 256, 2048):
+        matrix, run = train_adapter(data, TrainSettings(batch_size=size))
+        adapter = QueryAdapter(matrix, bench.embedder.model_id)
+        fusion = fusion_for(prepared, bench.split, adapter) or DEFAULT_FUSION
+        tuned = full_signals(bench, bench.test, docs, served.lexical, adapter)
+        ranks = fusion_ranks(tuned, fusion)
+        print(f"  {'batch ' + str(size):<14} dense {mrr_cells(tuned.dense, pools)} | served "
+              f"{mrr_cells(ranks, pools)}   R@10 {recall_at(ranks[pools[0]].ranks, 10):.3f}; "
+              f"dense weight {fusion.dense_weight:g}; {run.pairs} pairs, {run.epochs} epochs "
+              f"(best {run.best_epoch}), {run.seconds:.1f} s")
+
+
+def shipped_is(bench: Bench, representation: str) -> bool:
+    return bench.texts(representation) == bench.texts("shipped (CodeUnit.embed_text)")
+
+
+def main() -> None:
+    parser = argparse.ArgumentParser(description=__doc__,
+                                     formatter_class=argparse.RawDescriptionHelpFormatter)
+    parser.add_argument("--cache", default="/tmp/codeseek-bench-quality",
+                        help="folder of the vector cache (default /tmp/codeseek-bench-quality)")
+    parser.add_argument("--train-sample", type=int, default=1500,
+                        help="training pairs used to choose the keyword side and the fusion")
+    parser.add_argument("--corpus", choices=("both", "stdlib", "sample"), default="both")
+    args = parser.parse_args()
+    print("command: .venv/bin/python scripts/bench_quality.py "
+          + " ".join(shlex.quote(a) for a in sys.argv[1:]))
+    print(f"python {sys.version.split()[0]}, standard library at "
+          f"{sysconfig.get_paths()['stdlib']}")
+    print(REFERENCE)
+    cache_dir = Path(args.cache)
+    cache_dir.mkdir(parents=True, exist_ok=True)
+    started = time.perf_counter()
+    with tempfile.TemporaryDirectory() as scratch:
+        embedder = load_embedder(load_settings(scratch))
+        print(f"model {embedder.model_id}")
+        cache = VectorCache(cache_dir / "vectors.npz", embedder.model_id, prune=False)
+        corpora = []
+        if args.corpus in ("both", "stdlib"):
+            corpora.append(("python standard library", copy_stdlib(Path(scratch) / "stdlib")))
+        if args.corpus in ("both", "sample"):
+            corpora.append(("sample_repo", PROJECT / "sample_repo"))
+        benches = [Bench(name, parse_repository(repo), embedder, cache, Split(),
+                         args.train_sample) for name, repo in corpora]
+        run(benches)
+    print(f"\n{time.perf_counter() - started:.0f} s")
+
+
+def run(benches: Sequence[Bench]) -> None:
+    for bench in benches:
+        print(f"\n=== {bench.name}: {len(bench.units)} units, {len(bench.test)} held-out "
+              f"docstrings, {len(bench.selection.training)} training pairs ({len(bench.train)} "
+              f"of the unique ones used to choose); split: {bench.split.describe()}")
+    print("\nEvery choice is made on the training pairs (mean over the corpora of the MRR at "
+          "each one's first pool); the held-out figures say what it is worth.")
+    tables = {b.name: representation_table(b) for b in benches}
+    representation = choose_across(tables, benches)
+    print("the shipped CodeUnit.embed_text is this choice: "
+          f"{all(shipped_is(b, representation) for b in benches)}")
+    documents = {b.name: b.docs(representation) for b in benches}
+    tables = {b.name: keyword_table(b, documents[b.name]) for b in benches}
+    keyword = choose_across(tables, benches)
+    print(f"the shipped lexical fields are this choice: {keyword == next(iter(KEYWORDS))}")
+    served = {b.name: served_signals(b, representation, keyword) for b in benches}
+    tables = {b.name: fusion_table(b, served[b.name]) for b in benches}
+    fusion = FUSIONS[choose_across(tables, benches)]
+    print(f"the served default {DEFAULT_FUSION} is this choice: {fusion == DEFAULT_FUSION}")
+    for bench in benches:
+        section_served(bench, served[bench.name])
+        if len(bench.test) < SMALL:
+            section_everything(bench, served[bench.name])
+    for bench in benches:
+        section_adapter(bench, served[bench.name])
+
+
+if __name__ == "__main__":
+    main()
