@@ -357,8 +357,18 @@ class Store:
         return [row[0] for row in rows]
 
     def paths_of(self, row_ids: Sequence[int]) -> dict[int, str]:
-        """The file path of each unit id."""
-        return {k: v.unit.path for k, v in self.units_by_ids(row_ids).items()}
+        """The file path of each unit id (ids and paths only: no unit text is read)."""
+        found: dict[int, str] = {}
+        ids = list(row_ids)
+        for start in range(0, len(ids), 500):
+            chunk = ids[start : start + 500]
+            rows = self._query(
+                "SELECT u.id, f.path FROM units u JOIN files f ON f.id=u.file_id "
+                f"WHERE u.id IN ({','.join('?' * len(chunk))})",
+                chunk,
+            )
+            found.update((int(row_id), path) for row_id, path in rows)
+        return found
 
     # -- vectors -------------------------------------------------------------------
 
