@@ -106,6 +106,37 @@ def load_adapter(index_dir: Path, model_id: str) -> QueryAdapter | None:
                                            if k not in ("model_id", "dim")})
 
 
+def adapter_summary(index_dir: Path) -> dict[str, Any] | None:
+    """What ``status`` says of the index's adapter (None without one); reads only the
+    readable header copy, never the matrix.
+
+    Keys: ``model_id``, ``saved_at`` (seconds since the epoch), ``held_out`` and
+    ``served_mrr_before``/``served_mrr_after`` (the held-out check that kept it),
+    ``batch_size``, ``pairs``; those the header lacks are None.
+    """
+    path = index_dir / ADAPTER_NAME
+    try:
+        saved_at = path.stat().st_mtime
+    except OSError:
+        return None
+    try:
+        header = json.loads((index_dir / REPORT_NAME).read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        header = {}
+    header = header if isinstance(header, dict) else {}
+    report = _mapping(header.get("report"))
+    training = _mapping(report.get("training"))
+    return {"model_id": header.get("model_id"), "saved_at": saved_at,
+            "held_out": report.get("held_out"),
+            "served_mrr_before": report.get("served_mrr_before"),
+            "served_mrr_after": report.get("served_mrr_after"),
+            "batch_size": training.get("batch_size"), "pairs": training.get("pairs")}
+
+
+def _mapping(value: object) -> dict[str, Any]:
+    return value if isinstance(value, dict) else {}
+
+
 def remove_adapter(index_dir: Path) -> bool:
     """Delete the adapter files; whether there was an adapter."""
     existed = (index_dir / ADAPTER_NAME).exists()

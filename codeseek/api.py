@@ -14,7 +14,14 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from codeseek.adapter import QueryAdapter, load_adapter, remove_adapter, save_adapter
+from codeseek.adapter import (
+    ADAPTER_NAME,
+    QueryAdapter,
+    adapter_summary,
+    load_adapter,
+    remove_adapter,
+    save_adapter,
+)
 from codeseek.config import Settings, load_settings
 from codeseek.embed import Embedder, load_embedder
 from codeseek.errors import (
@@ -35,7 +42,7 @@ from codeseek.indexer import (
 )
 from codeseek.locks import ReadWriteLock
 from codeseek.scan import ScanResult, SourceFile
-from codeseek.search import Filters, Fusion, Searcher, SearchHit, similar_units
+from codeseek.search import DEFAULT_FUSION, Filters, Fusion, Searcher, SearchHit, similar_units
 from codeseek.store import DB_NAME, Store, unlink_all
 from codeseek.vectors import HNSW_NAME, VectorIndex
 
@@ -63,6 +70,7 @@ class IndexStatus:
     vectors_in_sync: bool
     updated_at: float | None
     bytes_on_disk: int
+    adapter: dict[str, object] | None = None
 
     def to_json(self) -> dict[str, object]:
         """A JSON-ready dict."""
@@ -78,6 +86,7 @@ class Index:
         self._embedder = embedder
         self._vectors: VectorIndex | None = None
         self._searcher: Searcher | None = None
+        self._adapter_seen: tuple[int, int, int] | None = None  # the adapter file searched with
         self.lock = ReadWriteLock()  # searches read, updates write
 
     # -- lifecycle -------------------------------------------------------------------
@@ -168,8 +177,33 @@ class Index:
         self._vectors = vectors
         return vectors
 
+    def _adapter_signature(self) -> tuple[int, int, int] | None:
+        """(inode, size, mtime) of the adapter file; None when there is none."""
+        try:
+            info = (self.settings.index_dir / ADAPTER_NAME).stat()
+        except OSError:
+            return None
+        return info.st_ino, info.st_size, info.st_mtime_ns
+
+    def _refresh_adapter(self, searcher: Searcher) -> None:
+        """Follow a query adapter saved or removed since the searcher loaded (by another
+        process, e.g. ``codeseek tune`` beside a running daemon): one stat per search."""
+        signature = self._adapter_signature()
+        if signature == self._adapter_seen:
+            return
+        adapter = load_adapter(self.settings.index_dir, searcher.model_id)
+        with self.lock.write():
+            searcher.adapter = adapter
+            searcher.fusion = _fusion_of(adapter) or DEFAULT_FUSION
+        self._adapter_seen = signature
+
     def searcher(self) -> Searcher:
-        """The searcher over this index (loads the model and the vectors)."""
+        """The searcher over this index (loads the model and the vectors).
+
+        A query adapter written or removed since the last call is picked up here.
+        """
+        if self._searcher is not None:
+            self._refresh_adapter(self._searcher)
         if self._searcher is None:
             manifest = self.store.manifest()
             built_with = manifest.get("model_id")
@@ -185,6 +219,7 @@ class Index:
                     "run `codeseek index` with this model to re-embed"
                 )
             vectors = self._vectors_for(embedder.model_id, embedder.dim)
+            self._adapter_seen = self._adapter_signature()
             adapter = load_adapter(self.settings.index_dir, embedder.model_id)
             self._searcher = Searcher(self.store, vectors, embedder, embedder.model_id,
                                       self.lock, adapter=adapter, fusion=_fusion_of(adapter))
@@ -313,6 +348,7 @@ class Index:
             and manifest.get("hnsw_generation") == str(generation),
             updated_at=float(updated) if updated else None,
             bytes_on_disk=size,
+            adapter=adapter_summary(self.settings.index_dir),
         )
 
 

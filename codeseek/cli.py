@@ -362,6 +362,7 @@ def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if status.files_with_syntax_errors:
         print(f"warnings     {status.files_with_syntax_errors} files with syntax errors",
               file=out)
+    print(f"adapter      {_adapter_words(status.adapter, status.model_id)}", file=out)
     if daemon is None:
         print("daemon       not running (searches load the index in their own process)",
               file=out)
@@ -378,6 +379,18 @@ def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         for reason, count in sorted(status.skipped.items(), key=lambda kv: -kv[1]):
             print(f"             {count:>6} {reason}", file=out)
     return EXIT_OK
+
+
+def _adapter_words(adapter: dict[str, Any] | None, model_id: str | None) -> str:
+    if adapter is None:
+        return "none (search uses the plain model; `codeseek tune` trains one)"
+    when = time.strftime("%Y-%m-%d %H:%M", time.localtime(adapter["saved_at"]))
+    if adapter["model_id"] != model_id:
+        return f"saved {when} for model {adapter['model_id']}, not this index's: unused"
+    before, after = adapter["served_mrr_before"], adapter["served_mrr_after"]
+    gain = (f"; held-out served MRR {before:.3f} -> {after:.3f} ({adapter['held_out']} "
+            "docstrings)" if isinstance(before, float) and isinstance(after, float) else "")
+    return f"in use, trained {when}{gain}"
 
 
 # -- outline -----------------------------------------------------------------------

@@ -490,3 +490,27 @@ def test_search_and_status_commands_use_the_daemon(daemon: Daemon) -> None:
     out = io.StringIO()
     assert main(["status", repo, "--json"], out=out, err=err) == 0
     assert json.loads(out.getvalue())["daemon"]["state"] == "watching"
+
+
+def test_a_new_adapter_reaches_the_running_daemon(daemon: Daemon, client: DaemonClient) -> None:
+    from codeseek.adapter import QueryAdapter, remove_adapter, save_adapter
+
+    query = "retry failed uploads with backoff"
+    plain = [h.unit_id for h in client.search(query, 10)]
+    assert client.status()["index"]["adapter"] is None
+    dim = FakeEmbedder().dim
+    flip = np.eye(dim, dtype=np.float32)[::-1].copy()
+    index_dir = daemon.index.settings.index_dir
+    save_adapter(index_dir, QueryAdapter(flip, FakeEmbedder().model_id, {
+        "split": {"holdout": 0.2, "seed": 0, "by_file": False}}))
+    # reference: the same index opened afresh in this process, adapter loaded from disk
+    fresh = open_index(daemon.index.settings.repo, embedder=FakeEmbedder())
+    try:
+        expected = [h.unit_id for h in fresh.search(query, 10)]
+    finally:
+        fresh.close()
+    assert expected != plain
+    assert [h.unit_id for h in client.search(query, 10)] == expected  # no restart
+    assert client.status()["index"]["adapter"]["model_id"] == FakeEmbedder().model_id
+    remove_adapter(index_dir)
+    assert [h.unit_id for h in client.search(query, 10)] == plain

@@ -248,3 +248,66 @@ def test_an_adapter_that_does_not_help_is_not_kept(fake_index: Index,
     assert "not kept" in report.to_text()
     assert not (fake_index.settings.index_dir / ADAPTER_NAME).exists()
     assert fake_index.searcher().adapter is None
+
+
+# -- an adapter saved beside a running searcher ------------------------------------------
+
+
+def test_an_adapter_saved_by_another_process_reaches_a_running_searcher(
+        fake_index: Index) -> None:
+    from codeseek import FakeEmbedder, open_index
+
+    query = "retry failed uploads with backoff"
+    plain = [h.unit_id for h in fake_index.search(query, 10)]
+    searcher = fake_index.searcher()
+    dim, model = searcher.vectors.dim, searcher.model_id
+    flip = np.eye(dim, dtype=np.float32)[::-1].copy()
+    # a second Index on the same folder plays the part of `codeseek tune` in another process
+    other = open_index(fake_index.settings.repo, embedder=FakeEmbedder())
+    try:
+        save_adapter(other.settings.index_dir, QueryAdapter(flip, model, {
+            "split": {"holdout": 0.2, "seed": 0, "by_file": False},
+            "fusion": {"kind": "zscore", "dense_weight": 0.9, "rrf_k": 5}}))
+        adapted = [h.unit_id for h in fake_index.search(query, 10)]
+        assert fake_index.searcher() is searcher  # the same searcher, its adapter swapped
+        assert searcher.adapter is not None and np.array_equal(searcher.adapter.matrix, flip)
+        assert searcher.fusion.kind == "zscore" and searcher.fusion.dense_weight == 0.9
+        # the reference: a searcher built from scratch with that adapter and fusion
+        fresh = Searcher(searcher.store, searcher.vectors, searcher.embedder, model,
+                         adapter=searcher.adapter, fusion=searcher.fusion)
+        assert adapted == [h.unit_id for h in fresh.search(query, 10)]
+        assert adapted != plain
+        assert other.remove_adapter()
+        assert [h.unit_id for h in fake_index.search(query, 10)] == plain
+        assert searcher.adapter is None and searcher.fusion.kind == "rrf"
+    finally:
+        other.close()
+
+
+def test_status_says_whether_an_adapter_serves(fake_index: Index, sample_copy: Path) -> None:
+    assert fake_index.status().adapter is None
+    code, out, err = run_cli("status", str(sample_copy))
+    assert code == 0, err
+    assert ("adapter      none (search uses the plain model; `codeseek tune` trains one)"
+            in out.splitlines())
+    searcher = fake_index.searcher()
+    report = {"held_out": 38, "served_mrr_before": 0.4421, "served_mrr_after": 0.5012,
+              "training": {"batch_size": 256, "pairs": 113}}
+    save_adapter(fake_index.settings.index_dir, QueryAdapter.identity(
+        searcher.vectors.dim, searcher.model_id).with_header(
+        {"split": {"holdout": 0.2, "seed": 0, "by_file": False}, "report": report}))
+    summary = fake_index.status().adapter
+    assert summary is not None
+    assert {k: summary[k] for k in ("model_id", "held_out", "served_mrr_before",
+                                    "served_mrr_after", "batch_size", "pairs")} == {
+        "model_id": searcher.model_id, "held_out": 38, "served_mrr_before": 0.4421,
+        "served_mrr_after": 0.5012, "batch_size": 256, "pairs": 113}
+    code, out, err = run_cli("status", str(sample_copy), "--json")
+    assert code == 0, err
+    assert json.loads(out)["adapter"]["served_mrr_after"] == 0.5012
+    # the CLI's status reads the index without a model: the adapter counts as this index's
+    # when it was made for the model the index was built with
+    code, out, err = run_cli("status", str(sample_copy))
+    line = next(x for x in out.splitlines() if x.startswith("adapter"))
+    assert "in use, trained" in line
+    assert line.endswith("held-out served MRR 0.442 -> 0.501 (38 docstrings)")
