@@ -2,9 +2,12 @@
 
 Runs the recall checks of ``codeseek eval`` (:mod:`codeseek.evaluate`) on a
 copy of the Python standard library without its test folders (as
-``scripts/bench_index.py`` copies it) and on ``sample_repo/``, and prints, for
-each choice codeseek makes, its figure on the training split (where the choice
-is made) and on the held-out split (what it is worth):
+``scripts/bench_index.py`` copies it), on ``sample_repo/`` and on the packaged
+repositories the tests read (``tests/corpora.py``: Go, C++ and Ruby packages
+take part in the choices; the Java and C ones are too small to split and are
+only checked, every documented unit held out), and prints, for each choice
+codeseek makes, its figure on the training split (where the choice is made)
+and on the held-out split (what it is worth):
 
 1. the unit text the model embeds (the documents have no doc: see evaluate.py);
 2. the keyword side (fields, identifier splitting, stemming, stopwords);
@@ -38,6 +41,9 @@ import numpy as np
 
 PROJECT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(PROJECT))
+sys.path.insert(0, str(PROJECT / "tests"))
+
+from corpora import CORPORA, CorpusUnavailable, fetch, units_of  # noqa: E402
 
 from codeseek.adapter import QueryAdapter  # noqa: E402
 from codeseek.config import load_settings  # noqa: E402
@@ -64,13 +70,14 @@ from codeseek.evaluate import (  # noqa: E402
     served_ranks,
     without_doc,
 )
-from codeseek.parse import parse_source  # noqa: E402
-from codeseek.scan import SkipFile, read_source, scan_repository  # noqa: E402
 from codeseek.search import DEFAULT_FUSION, Fusion, lexical_match  # noqa: E402
 from codeseek.tune import TrainSettings, fusion_for, train_adapter, training_data  # noqa: E402
 from codeseek.units import CodeUnit, code_words, split_identifier  # noqa: E402
 
 SMALL = 200  # a corpus with fewer held-out docstrings is also checked with all of them
+CHOOSING = 100  # training pairs a corpus needs to take part in the choices
+# packaged repositories of the tests: (language in tests/corpora.py, takes part in choices)
+PACKAGED = (("go", True), ("cpp", True), ("ruby", True), ("java", False), ("c", False))
 SKIP = shutil.ignore_patterns("test", "tests", "idle_test", "site-packages", "__pycache__")
 # published reference points for the 1,000-pool protocol, from memory (via the CodeBERT
 # paper's table of CodeSearchNet results): not measured here
@@ -89,19 +96,6 @@ def copy_stdlib(target: Path) -> Path:
     """A copy of the standard library without its test folders."""
     shutil.copytree(sysconfig.get_paths()["stdlib"], target, ignore=SKIP, symlinks=True)
     return target
-
-
-def parse_repository(repo: Path) -> list[CodeUnit]:
-    """Every unit of a repository, as `codeseek index` would store them."""
-    settings = load_settings(repo)
-    units: list[CodeUnit] = []
-    for source in scan_repository(settings).files:
-        try:
-            data = read_source(source, settings.max_file_bytes)
-        except SkipFile:
-            continue
-        units.extend(parse_source(source.path, data, source.spec).units)
-    return units
 
 
 # -- the choices --------------------------------------------------------------------
@@ -155,6 +149,7 @@ REPRESENTATIONS: dict[str, Callable[[CodeUnit], str]] = {
     "name + code, words from 1600 chars": text_words_beyond(1600),
     "shipped (CodeUnit.embed_text)": text_shipped,
 }
+SHIPPED_TEXT = "shipped (CodeUnit.embed_text)"
 
 
 def fields_shipped(unit: CodeUnit) -> list[str]:
@@ -262,6 +257,7 @@ class Bench:
     cache: VectorCache
     split: Split
     train_sample: int
+    chooses: bool = True
 
     def __post_init__(self) -> None:
         self.selection = select_cases(self.units, self.split)
@@ -320,6 +316,7 @@ def print_table(bench: Bench, title: str, table: Table, recall: bool = False) ->
 
 def choose_across(tables: dict[str, Table], benches: Sequence[Bench]) -> str:
     """The choice with the best mean, over corpora, of its training MRR at the first pool."""
+    benches = [b for b in benches if b.chooses]
     names = list(next(iter(tables.values())))
     means = {name: float(np.mean([mean_reciprocal_rank(tables[b.name][name][0][b.pools[0]].ranks)
                                   for b in benches]))
@@ -481,7 +478,7 @@ def section_adapter(bench: Bench, served: Served) -> None:
 
 
 def shipped_is(bench: Bench, representation: str) -> bool:
-    return bench.texts(representation) == bench.texts("shipped (CodeUnit.embed_text)")
+    return bench.texts(representation) == bench.texts(SHIPPED_TEXT)
 
 
 def main() -> None:
@@ -491,7 +488,8 @@ def main() -> None:
                         help="folder of the vector cache (default /tmp/codeseek-bench-quality)")
     parser.add_argument("--train-sample", type=int, default=1500,
                         help="training pairs used to choose the keyword side and the fusion")
-    parser.add_argument("--corpus", choices=("both", "stdlib", "sample"), default="both")
+    parser.add_argument("--corpus", choices=("all", "stdlib", "sample", "packaged"),
+                        default="all")
     args = parser.parse_args()
     print("command: .venv/bin/python scripts/bench_quality.py "
           + " ".join(shlex.quote(a) for a in sys.argv[1:]))
@@ -505,18 +503,38 @@ def main() -> None:
         embedder = load_embedder(load_settings(scratch))
         print(f"model {embedder.model_id}")
         cache = VectorCache(cache_dir / "vectors.npz", embedder.model_id, prune=False)
-        corpora = []
-        if args.corpus in ("both", "stdlib"):
-            corpora.append(("python standard library", copy_stdlib(Path(scratch) / "stdlib")))
-        if args.corpus in ("both", "sample"):
-            corpora.append(("sample_repo", PROJECT / "sample_repo"))
-        benches = [Bench(name, parse_repository(repo), embedder, cache, Split(),
-                         args.train_sample) for name, repo in corpora]
-        run(benches)
+        corpora: list[tuple[str, Path, bool]] = []
+        if args.corpus in ("all", "stdlib"):
+            corpora.append(("python standard library", copy_stdlib(Path(scratch) / "stdlib"),
+                            True))
+        if args.corpus in ("all", "sample"):
+            corpora.append(("sample_repo", PROJECT / "sample_repo", True))
+        if args.corpus in ("all", "packaged"):
+            corpora.extend(packaged_corpora())
+        # a corpus too small to split is held out whole (it takes no part in the choices)
+        benches = [Bench(name, units_of(repo), embedder, cache,
+                         Split() if chooses else Split(1.0), args.train_sample, chooses)
+                   for name, repo, chooses in corpora]
+        run([b for b in benches if b.chooses], [b for b in benches if not b.chooses])
     print(f"\n{time.perf_counter() - started:.0f} s")
 
 
-def run(benches: Sequence[Bench]) -> None:
+def packaged_corpora() -> list[tuple[str, Path, bool]]:
+    """The packaged repositories the tests read (fetched once into their cache)."""
+    found: list[tuple[str, Path, bool]] = []
+    for language, chooses in PACKAGED:
+        corpus = CORPORA[language]
+        try:
+            found.append((corpus.label, fetch(corpus), chooses))
+        except CorpusUnavailable as exc:
+            print(f"left out {corpus.label}: {exc.args[0]}")
+    return found
+
+
+def run(benches: Sequence[Bench], checked: Sequence[Bench] = ()) -> None:
+    for bench in benches:
+        if len(bench.train) < CHOOSING:
+            bench.chooses = False
     for bench in benches:
         print(f"\n=== {bench.name}: {len(bench.units)} units, {len(bench.test)} held-out "
               f"docstrings, {len(bench.selection.training)} training pairs ({len(bench.train)} "
@@ -525,8 +543,11 @@ def run(benches: Sequence[Bench]) -> None:
           "each one's first pool); the held-out figures say what it is worth.")
     tables = {b.name: representation_table(b) for b in benches}
     representation = choose_across(tables, benches)
-    print("the shipped CodeUnit.embed_text is this choice: "
-          f"{all(shipped_is(b, representation) for b in benches)}")
+    shipped_text = all(shipped_is(b, representation) for b in benches)
+    print(f"the shipped CodeUnit.embed_text is this choice: {shipped_text}")
+    if not shipped_text:  # what search serves is measured below, not what it could serve
+        representation = SHIPPED_TEXT
+        print(f"the stages below use the shipped text ({SHIPPED_TEXT}), as search does")
     documents = {b.name: b.docs(representation) for b in benches}
     tables = {b.name: keyword_table(b, documents[b.name]) for b in benches}
     keyword = choose_across(tables, benches)
@@ -539,6 +560,11 @@ def run(benches: Sequence[Bench]) -> None:
         section_served(bench, served[bench.name])
         if len(bench.test) < SMALL:
             section_everything(bench, served[bench.name])
+    for bench in checked:
+        print(f"\n=== {bench.name}: {len(bench.units)} units, {len(bench.selection.cases)} "
+              "documented units: too few to split, so only checked")
+        bench.train = bench.test[:1]  # nothing is chosen on it; the signals need one pair
+        section_everything(bench, served_signals(bench, representation, keyword))
     for bench in benches:
         section_adapter(bench, served[bench.name])
 

@@ -22,6 +22,11 @@ import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
+from codeseek.config import load_settings
+from codeseek.parse import parse_source
+from codeseek.scan import SkipFile, read_source, scan_repository
+from codeseek.units import CodeUnit
+
 
 class CorpusUnavailable(Exception):
     """A corpus cannot be fetched here (no client for its registry); args[0] says why."""
@@ -122,6 +127,32 @@ def fetch(corpus: Corpus) -> Path:
             if not (target / ".complete").is_file():  # else another run fetched it first
                 raise
     return target
+
+
+def fetch_or_skip(corpus: Corpus) -> Path:
+    """:func:`fetch` for a test: skip it where the corpus cannot be fetched, but fail on CI
+    (where setup installs every client, so a missing corpus is a broken set-up)."""
+    import pytest
+
+    try:
+        return fetch(corpus)
+    except CorpusUnavailable as exc:
+        if os.environ.get("CI"):
+            pytest.fail(f"{corpus.label}: {exc}")
+        pytest.skip(f"{corpus.label}: {exc}")
+
+
+def units_of(repo: Path) -> list[CodeUnit]:
+    """Every unit of a repository, as `codeseek index` stores them (paths relative to it)."""
+    settings = load_settings(repo)
+    units: list[CodeUnit] = []
+    for source in scan_repository(settings).files:
+        try:
+            data = read_source(source, settings.max_file_bytes)
+        except SkipFile:
+            continue
+        units.extend(parse_source(source.path, data, source.spec).units)
+    return units
 
 
 def files(corpus: Corpus) -> list[Path]:

@@ -22,7 +22,7 @@ from dataclasses import dataclass
 from pathlib import Path
 
 import pytest
-from corpora import CORPORA, Corpus, CorpusUnavailable, fetch, files
+from corpora import CORPORA, fetch_or_skip, files
 
 from codeseek.languages import spec_by_name
 from codeseek.parse import parse_source
@@ -130,15 +130,6 @@ def ctags() -> str:
     return path
 
 
-def corpus_root(corpus: Corpus) -> Path:
-    try:
-        return fetch(corpus)
-    except CorpusUnavailable as exc:
-        if os.environ.get("CI"):
-            pytest.fail(f"{corpus.label}: {exc}")
-        pytest.skip(f"{corpus.label}: {exc}")
-
-
 def ctags_tags(ctags: str, root: Path, paths: list[str], check: Check) -> list[dict[str, object]]:
     """ctags' function and method tags of the files, with paths relative to ``root``."""
     command = [ctags, "--output-format=json", "--fields=+neK", "-f", "-"]
@@ -169,7 +160,7 @@ def same_name(tag_name: str, unit: CodeUnit) -> bool:
 def test_functions_agree_with_ctags(ctags: str, language: str) -> None:
     corpus = CORPORA[language]
     check = CHECKS[language]
-    root = corpus_root(corpus)
+    root = fetch_or_skip(corpus)
     paths = [p.relative_to(root).as_posix() for p in files(corpus)]
     tags = ctags_tags(ctags, root, paths, check)
     units = codeseek_units(root, paths, language)

@@ -14,7 +14,7 @@ from codeseek.adapter import ADAPTER_NAME, QueryAdapter, load_adapter, save_adap
 from codeseek.api import Index
 from codeseek.cli import main
 from codeseek.errors import IndexCorrupt, InvalidSplit, TooFewExamples
-from codeseek.search import Searcher
+from codeseek.search import DEFAULT_FUSION, Searcher
 from codeseek.tune import (
     Adam,
     TrainingData,
@@ -279,7 +279,7 @@ def test_an_adapter_saved_by_another_process_reaches_a_running_searcher(
         assert adapted != plain
         assert other.remove_adapter()
         assert [h.unit_id for h in fake_index.search(query, 10)] == plain
-        assert searcher.adapter is None and searcher.fusion.kind == "rrf"
+        assert searcher.adapter is None and searcher.fusion == DEFAULT_FUSION
     finally:
         other.close()
 
