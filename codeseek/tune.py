@@ -422,11 +422,7 @@ def tune_units(units: Sequence[CodeUnit], embedder: Embedder, *, repository: str
     prepared = prepare(units, embedder, split, cache=cache, training=True, progress=progress)
     matrix, log = train_adapter(training_data(prepared, split), settings, progress)
     adapter = QueryAdapter(matrix, embedder.model_id)
-    chosen = fusion_for(prepared, split, adapter, progress)
-    tuned_fusion = chosen or fusion
-    note = (f"chosen on the {len(validation_split(prepared, split)[1])} pairs set aside"
-            if chosen else f"the served one: fewer than {MIN_FUSION_PAIRS} pairs set aside "
-                           "to choose by")
+    tuned_fusion, note = fusion_for(prepared, split, adapter, progress)
     plain = held_out_signals(prepared, None, progress=progress)
     tuned = held_out_signals(prepared, adapter, reuse=plain, progress=progress)
     before, after = (build_report(repository=repository, model=embedder.model_id, split=split,
@@ -443,11 +439,23 @@ def tune_units(units: Sequence[CodeUnit], embedder: Embedder, *, repository: str
 
 
 def fusion_for(prepared: Prepared, split: Split, adapter: QueryAdapter,
-               progress: Progress | None = None) -> Fusion | None:
-    """The fusion that serves the adapted queries best on the validation pairs (None: none)."""
-    _, aside = validation_split(prepared, split)
-    if len(aside) < MIN_FUSION_PAIRS:
-        return None  # too few to choose a weight by: keep the served one
-    signals = collect_signals(aside, query_matrix(prepared, aside, adapter), prepared.documents,
+               progress: Progress | None = None) -> tuple[Fusion, str]:
+    """The fusion that serves the adapted queries best, and how it was chosen.
+
+    On the pairs set aside when there are at least :data:`MIN_FUSION_PAIRS`;
+    otherwise on all the training pairs. The adapter was fit on most of those,
+    so that choice leans towards the model, which is where an adapter that
+    helps should lean (on a small repository the default weight left much of
+    its gain unserved: ``scripts/bench_quality.py``). The held-out pairs,
+    never used here, still decide whether the adapter is kept.
+    """
+    fit, aside = validation_split(prepared, split)
+    if len(aside) >= MIN_FUSION_PAIRS:
+        cases, note = aside, f"chosen on the {len(aside)} pairs set aside"
+    else:
+        cases = fit + aside
+        note = (f"chosen on all {len(cases)} training pairs: fewer than {MIN_FUSION_PAIRS} "
+                "set aside")
+    signals = collect_signals(cases, query_matrix(prepared, cases, adapter), prepared.documents,
                               prepared.sampler, progress=progress)
-    return choose_fusion(signals)[0]
+    return choose_fusion(signals)[0], note

@@ -468,7 +468,7 @@ def section_adapter(bench: Bench, served: Served) -> None:
     for size in (32, 256, 2048):
         matrix, run = train_adapter(data, TrainSettings(batch_size=size))
         adapter = QueryAdapter(matrix, bench.embedder.model_id)
-        fusion = fusion_for(prepared, bench.split, adapter) or DEFAULT_FUSION
+        fusion, _ = fusion_for(prepared, bench.split, adapter)
         tuned = full_signals(bench, bench.test, docs, served.lexical, adapter)
         ranks = fusion_ranks(tuned, fusion)
         print(f"  {'batch ' + str(size):<14} dense {mrr_cells(tuned.dense, pools)} | served "

@@ -250,6 +250,25 @@ def test_an_adapter_that_does_not_help_is_not_kept(fake_index: Index,
     assert fake_index.searcher().adapter is None
 
 
+def test_the_tuned_fusion_is_chosen_on_training_pairs_only(
+        fake_index: Index, monkeypatch: pytest.MonkeyPatch) -> None:
+    import codeseek.tune as tune
+    from codeseek.evaluate import FUSION_GRID
+
+    # sample_repo sets aside fewer than MIN_FUSION_PAIRS: the weight is chosen on all of
+    # the training pairs (never on the held-out ones, which judge the adapter)
+    report = fake_index.tune(batch_size=32)
+    log = report.log
+    assert log.validation_pairs < tune.MIN_FUSION_PAIRS
+    assert report.fusion_note == (f"chosen on all {log.pairs + log.validation_pairs} training "
+                                  f"pairs: fewer than {tune.MIN_FUSION_PAIRS} set aside")
+    assert report.after.fusion in FUSION_GRID
+    assert report.before.fusion == DEFAULT_FUSION
+    monkeypatch.setattr(tune, "MIN_FUSION_PAIRS", 1)
+    report = fake_index.tune(batch_size=32)
+    assert report.fusion_note == f"chosen on the {report.log.validation_pairs} pairs set aside"
+
+
 # -- an adapter saved beside a running searcher ------------------------------------------
 
 
