@@ -47,7 +47,7 @@ from codeseek.embed import Embedder
 from codeseek.errors import InvalidSplit, ReportWriteError, TooFewExamples
 from codeseek.search import CANDIDATES, DEFAULT_FUSION, Fusion, fuse, lexical_match
 from codeseek.store import MIGRATIONS, Store
-from codeseek.units import CodeUnit, summarize_doc
+from codeseek.units import CodeUnit, lexical_codes, summarize_doc
 from codeseek.vectors import VectorIndex
 
 DEFAULT_HOLDOUT = 0.2
@@ -358,6 +358,7 @@ class DocumentIndex:
 
     def __init__(self, units: Sequence[CodeUnit], vectors: np.ndarray, model_id: str) -> None:
         self.units = [without_doc(u) for u in units]
+        self._lexical_codes = lexical_codes(units)  # members folded as the index folds them
         self.vectors = np.asarray(vectors, dtype=np.float32)
         self.model_id = model_id
         self.languages = np.array([u.language for u in units])
@@ -374,12 +375,12 @@ class DocumentIndex:
         files: dict[str, int] = {}
         row_ids: list[int] = []
         with self.store.transaction():
-            for unit in self.units:
+            for unit, code in zip(self.units, self._lexical_codes, strict=True):
                 if unit.path not in files:
                     files[unit.path] = self.store.upsert_file(unit.path, unit.language, 0, 0,
                                                               "", False)
                 row_ids.append(self.store.insert_unit(files[unit.path], unit,
-                                                      unit.content_hash))
+                                                      unit.content_hash, code))
             self.store.put_vectors(self.model_id, {u.content_hash: self.vectors[i]
                                                    for i, u in enumerate(self.units)})
         return np.array(row_ids, dtype=np.int64)

@@ -30,7 +30,7 @@ from codeseek.embed import Embedder
 from codeseek.parse import ParseResult, parse_source
 from codeseek.scan import ScanResult, SkipFile, SourceFile, read_source, scan_repository
 from codeseek.store import FileRow, Store, missing_vector_units, vector_unit_ids
-from codeseek.units import CodeUnit
+from codeseek.units import LEXICAL_TEXT, CodeUnit, lexical_codes
 from codeseek.vectors import HNSW_NAME, VectorIndex
 
 ProgressCallback = Callable[[str, int, int], None]
@@ -127,6 +127,7 @@ class Updater:
         """Bring the whole index up to date with the repository on disk."""
         started = time.perf_counter()
         self.adopt_model()
+        self.refresh_lexical()
         self.report("scan", 0, 0)
         scan = scan_repository(self.settings)
         known = self.store.file_rows()
@@ -143,6 +144,7 @@ class Updater:
         """Apply a known set of changed files and removed paths (the watcher's path)."""
         started = time.perf_counter()
         self.adopt_model()
+        self.refresh_lexical()
         scan = scan or ScanResult()
         known = self.store.file_rows()
         todo = [f for f in files if may_have_changed(f, known.get(f.path))]
@@ -163,6 +165,14 @@ class Updater:
             self.store.drop_other_models(self.embedder.model_id)
             self.store.set_manifest(model_id=self.embedder.model_id, dim=str(self.embedder.dim))
             bump_generation(self.store)
+
+    def refresh_lexical(self) -> None:
+        """Rewrite the lexical entries of an index whose entries were made another way."""
+        if self.store.manifest().get("lexical_text") == LEXICAL_TEXT:
+            return
+        with self.write_lock(), self.store.transaction():
+            self.store.rewrite_lexical()
+            self.store.set_manifest(lexical_text=LEXICAL_TEXT)
 
     def read_and_parse(self, todo: list[SourceFile], known: dict[str, FileRow],
                        scan: ScanResult) -> list[FileChange]:
@@ -277,6 +287,7 @@ class Updater:
     def _diff_units(self, file_id: int, result: ParseResult) -> None:
         old = self.store.unit_keys_of_file(file_id)
         new = {unit.uid: unit for unit in result.units}
+        lexical = dict(zip(new, lexical_codes(list(new.values())), strict=True))
         stale = [row_id for uid, (row_id, digest) in old.items()
                  if uid not in new or new[uid].content_hash != digest]
         self.store.delete_units(stale)
@@ -286,7 +297,7 @@ class Updater:
             if previous is not None and previous[1] == digest:
                 self.store.update_unit_position(previous[0], unit)
                 continue
-            self.store.insert_unit(file_id, unit, digest)
+            self.store.insert_unit(file_id, unit, digest, lexical[uid])
             if previous is None:
                 self.tally.added += 1
             else:

@@ -22,7 +22,7 @@ from pathlib import Path
 import numpy as np
 
 from codeseek.errors import IndexCorrupt, IndexFormatMismatch, IndexNotFound, IndexWriteError
-from codeseek.units import CodeUnit
+from codeseek.units import CodeUnit, lexical_codes
 
 DB_NAME = "index.sqlite3"
 FORMAT_VERSION = 1
@@ -246,8 +246,13 @@ class Store:
         rows = self._query("SELECT uid, id, content_hash FROM units WHERE file_id=?", (file_id,))
         return {uid: (uid_id, digest) for uid, uid_id, digest in rows}
 
-    def insert_unit(self, file_id: int, unit: CodeUnit, content_hash: str) -> int:
-        """Add one unit and its lexical entry; returns its row id."""
+    def insert_unit(self, file_id: int, unit: CodeUnit, content_hash: str,
+                    lexical_code: str | None = None) -> int:
+        """Add one unit and its lexical entry; returns its row id.
+
+        ``lexical_code`` is the code its lexical entry matches
+        (:func:`~codeseek.units.lexical_codes`; default: its code without the doc).
+        """
         doc_start, doc_end = unit.doc_span if unit.doc_span else (None, None)
         cursor = self._exec(
             """INSERT INTO units (file_id, uid, kind, name, qualname, signature, doc, start_line,
@@ -258,12 +263,24 @@ class Store:
              content_hash),
         )
         row_id = int(cursor.lastrowid or 0)
-        fields = unit.lexical_fields()
+        self._insert_lexical(row_id, unit, lexical_code)
+        return row_id
+
+    def _insert_lexical(self, row_id: int, unit: CodeUnit, code: str | None) -> None:
+        fields = unit.lexical_fields(code)
         self._exec(
             "INSERT INTO units_fts (rowid, names, signature, doc, code) VALUES (?, ?, ?, ?, ?)",
             (row_id, fields["names"], fields["signature"], fields["doc"], fields["code"]),
         )
-        return row_id
+
+    def rewrite_lexical(self) -> int:
+        """Write every unit's lexical entry afresh (after the way it is made changed);
+        returns the number of units. Call inside a transaction."""
+        units = list(self.iter_units())
+        self._exec("DELETE FROM units_fts")
+        for stored, code in zip(units, lexical_codes([s.unit for s in units]), strict=True):
+            self._insert_lexical(stored.id, stored.unit, code)
+        return len(units)
 
     def update_unit_position(self, row_id: int, unit: CodeUnit) -> None:
         """Refresh where an unchanged unit now stands (its lines moved)."""

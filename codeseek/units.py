@@ -11,11 +11,15 @@ from __future__ import annotations
 
 import hashlib
 import re
+from collections.abc import Sequence
 from dataclasses import dataclass
 from functools import cached_property, lru_cache
 
 KINDS = ("function", "method", "class")
 WORDS_FROM = 800  # characters of code from which the embedded text gives identifier words
+# How lexical entries are made; an index whose manifest records another value has them
+# rewritten on its next update. "members-folded": inner units folded to their signatures.
+LEXICAL_TEXT = "members-folded"
 
 _CAMEL = re.compile(r"[A-Z]+(?=[A-Z][a-z])|[A-Z]?[a-z]+|[A-Z]+|\d+")
 _NON_WORD = re.compile(r"[^A-Za-z0-9]+")
@@ -116,14 +120,72 @@ class CodeUnit:
             :32
         ]
 
-    def lexical_fields(self) -> dict[str, str]:
-        """The fields of the lexical (BM25) index, identifiers split into words."""
+    def lexical_fields(self, code: str | None = None) -> dict[str, str]:
+        """The fields of the lexical (BM25) index, identifiers split into words.
+
+        ``code`` is the code to match (default: the code without the doc); the
+        index passes the :func:`lexical_codes` text, in which a class's
+        methods are folded to their signatures.
+        """
         return {
             "names": " ".join(split_identifier(self.qualname)),
             "signature": split_words(self.signature),
             "doc": self.doc,
-            "code": split_words(self.code_without_doc),
+            "code": split_words(self.code_without_doc if code is None else code),
         }
+
+
+def lexical_codes(units: Sequence[CodeUnit]) -> list[str]:
+    """The code each unit's lexical entry matches: its code without its doc, with
+    every unit directly inside it folded to that unit's signature.
+
+    Inner units are indexed on their own, so a class whose entry also held its
+    methods' bodies would outrank the very method a query's words come from
+    (chosen on the training splits of ``scripts/bench_quality.py``). ``units``
+    may mix files; the result follows their order.
+    """
+    codes = [unit.code_without_doc for unit in units]
+    by_path: dict[str, list[int]] = {}
+    for position, unit in enumerate(units):
+        by_path.setdefault(unit.path, []).append(position)
+    for positions in by_path.values():
+        for outer, members in _direct_members(units, positions).items():
+            codes[outer] = _folded(codes[outer], [units[m] for m in members])
+    return codes
+
+
+def _direct_members(units: Sequence[CodeUnit], positions: list[int]) -> dict[int, list[int]]:
+    """outer position -> the positions of the units directly inside it (one file)."""
+    order = sorted(positions, key=lambda p: (units[p].start_line, -units[p].end_line, p))
+    members: dict[int, list[int]] = {}
+    stack: list[int] = []
+    for position in order:
+        unit = units[position]
+        while stack and not _inside(unit, units[stack[-1]]):
+            stack.pop()
+        if stack:
+            members.setdefault(stack[-1], []).append(position)
+        stack.append(position)
+    return members
+
+
+def _inside(inner: CodeUnit, outer: CodeUnit) -> bool:
+    return (outer.start_line <= inner.start_line and inner.end_line <= outer.end_line
+            and (inner.start_line, inner.end_line) != (outer.start_line, outer.end_line))
+
+
+def _folded(code: str, members: list[CodeUnit]) -> str:
+    """``code`` with each member's code (found in order) replaced by its signature."""
+    parts: list[str] = []
+    at = 0
+    for member in members:
+        found = code.find(member.code, at) if member.code else -1
+        if found < 0:
+            continue  # not verbatim inside (it should be): leave the text as it is
+        parts.extend((code[at:found], member.signature))
+        at = found + len(member.code)
+    parts.append(code[at:])
+    return "".join(parts)
 
 
 def split_identifier(identifier: str) -> list[str]:

@@ -72,7 +72,7 @@ from codeseek.evaluate import (  # noqa: E402
 )
 from codeseek.search import DEFAULT_FUSION, Fusion, lexical_match  # noqa: E402
 from codeseek.tune import TrainSettings, fusion_for, train_adapter, training_data  # noqa: E402
-from codeseek.units import CodeUnit, code_words, split_identifier  # noqa: E402
+from codeseek.units import CodeUnit, code_words, lexical_codes, split_identifier  # noqa: E402
 
 SMALL = 200  # a corpus with fewer held-out docstrings is also checked with all of them
 CHOOSING = 100  # training pairs a corpus needs to take part in the choices
@@ -152,7 +152,15 @@ REPRESENTATIONS: dict[str, Callable[[CodeUnit], str]] = {
 SHIPPED_TEXT = "shipped (CodeUnit.embed_text)"
 
 
-def fields_shipped(unit: CodeUnit) -> list[str]:
+def fields_shipped(unit: CodeUnit, folded: str) -> list[str]:
+    """What the index writes: ``folded`` is the unit's code with inner units folded to
+    their signatures (``units.lexical_codes``)."""
+    fields = unit.lexical_fields(folded)
+    return [fields["names"], fields["signature"], fields["doc"], fields["code"]]
+
+
+def fields_members_kept(unit: CodeUnit, folded: str) -> list[str]:
+    """As shipped, but a class's entry keeps its methods' bodies."""
     fields = unit.lexical_fields()
     return [fields["names"], fields["signature"], fields["doc"], fields["code"]]
 
@@ -167,13 +175,13 @@ def _split_every(text: str) -> str:
     return " ".join(out)
 
 
-def fields_before(unit: CodeUnit) -> list[str]:
+def fields_before(unit: CodeUnit, folded: str) -> list[str]:
     """Every identifier followed by its pieces (snake_case too, which the tokenizer splits)."""
     return [" ".join(split_identifier(unit.qualname)), _split_every(unit.signature), "",
             _split_every(unit.code)]
 
 
-def fields_unsplit(unit: CodeUnit) -> list[str]:
+def fields_unsplit(unit: CodeUnit, folded: str) -> list[str]:
     return [unit.qualname, unit.signature, "", unit.code]
 
 
@@ -190,7 +198,7 @@ def match_with_stopwords(query: str) -> str:
 class KeywordVariant:
     """One way to build and query the BM25 side."""
 
-    fields: Callable[[CodeUnit], list[str]]
+    fields: Callable[[CodeUnit, str], list[str]]
     tokenizer: str = "porter unicode61"
     weights: tuple[float, ...] = (4.0, 2.0, 2.0, 1.0)
     match: Callable[[str], str] = lexical_match
@@ -198,7 +206,8 @@ class KeywordVariant:
 
 KEYWORDS: dict[str, KeywordVariant] = {
     "camelCase words added, stemmed, names 4x (shipped)": KeywordVariant(fields_shipped),
-    "every identifier's words added (before)": KeywordVariant(fields_before),
+    "a class's entry keeps its methods' bodies (before)": KeywordVariant(fields_members_kept),
+    "every identifier's words added": KeywordVariant(fields_before),
     "no stemming": KeywordVariant(fields_shipped, tokenizer="unicode61"),
     "identifiers not split": KeywordVariant(fields_unsplit),
     "no name field": KeywordVariant(fields_shipped, weights=(0.0, 2.0, 2.0, 1.0)),
@@ -208,18 +217,20 @@ KEYWORDS: dict[str, KeywordVariant] = {
 
 
 class KeywordIndex:
-    """An FTS5 table of doc-less units built one variant's way (the shipped one is the
-    index's own table and query: checked against DocumentIndex in the run)."""
+    """An FTS5 table of the units, docs removed, built one variant's way (the shipped one
+    is the index's own table and query: checked against DocumentIndex in the run)."""
 
     def __init__(self, units: Sequence[CodeUnit], variant: KeywordVariant) -> None:
         self.variant = variant
         self.size = len(units)
+        bare = [without_doc(u) for u in units]
         self.db = sqlite3.connect(":memory:")
         self.db.execute("CREATE VIRTUAL TABLE t USING fts5(names, signature, doc, code, "
                         f"tokenize = '{variant.tokenizer}')")
         self.db.executemany("INSERT INTO t (rowid, names, signature, doc, code) "
                             "VALUES (?, ?, ?, ?, ?)",
-                            [(i + 1, *variant.fields(u)) for i, u in enumerate(units)])
+                            [(i + 1, *variant.fields(u, folded)) for i, (u, folded)
+                             in enumerate(zip(bare, lexical_codes(units), strict=True))])
         self.weights = ", ".join(str(w) for w in variant.weights)
 
     def __len__(self) -> int:
@@ -345,7 +356,7 @@ def representation_table(bench: Bench) -> Table:
 def keyword_signals(bench: Bench, variant: str, which: str, docs: DocumentIndex) -> dict:
     if (variant, which) not in bench.memo:
         cases = bench.train if which == "train" else bench.test
-        scorer = KeywordIndex(bench.bare, KEYWORDS[variant])
+        scorer = KeywordIndex(bench.units, KEYWORDS[variant])
         sampler = bench.sampler(docs)
         log(f"{bench.name}: keyword search, {variant}, {len(cases)} queries")
         bench.memo[(variant, which)] = lexical_signals(cases, scorer, sampler,

@@ -196,3 +196,58 @@ def test_file_over_the_parse_budget_is_counted_not_fatal(sample_copy: Path,
     assert summary.skipped[REASON_PARSE_BUDGET] == 1
     assert summary.files == len(sample_source_files()) - 1
     assert index.status().skipped[REASON_PARSE_BUDGET] == 1
+
+
+# -- the lexical entries: a class's methods folded to their signatures -------------------
+
+DEPOT = '''\
+class Depot:
+    """Where the vans park overnight."""
+
+    def park(self, van):
+        """Give a van its bay."""
+        return self.bays.index(van.plate) + WINDSHEAR_OFFSET
+
+    def leave(self, van):
+        """Free a van's bay."""
+        self.bays.remove(van.plate)
+'''
+
+
+def keyword_hits(index: Index, words: str) -> list[str]:
+    from codeseek.search import lexical_match
+
+    ids = [row_id for row_id, _ in index.store.lexical_search(lexical_match(words), 10)]
+    names = {s.id: s.unit.qualname for s in index.store.iter_units()}
+    return [names[i] for i in ids]
+
+
+def test_a_word_of_a_method_body_finds_the_method_not_its_class(tmp_path: Path) -> None:
+    (tmp_path / "depot.py").write_text(DEPOT, encoding="utf-8")
+    index = build(tmp_path)
+    assert keyword_hits(index, "windshear") == ["Depot.park"]
+    assert keyword_hits(index, "leave bay")[0] == "Depot.leave"
+    assert "Depot" in keyword_hits(index, "leave")  # the method's name stays in the class's
+    # an edit of the method's body reaches both entries
+    (tmp_path / "depot.py").write_text(DEPOT.replace("WINDSHEAR_OFFSET", "CROSSWIND_OFFSET"),
+                                       encoding="utf-8")
+    index.update()
+    assert keyword_hits(index, "windshear") == []
+    assert keyword_hits(index, "crosswind") == ["Depot.park"]
+
+
+def test_an_index_with_entries_made_the_old_way_is_rewritten_once(tmp_path: Path) -> None:
+    (tmp_path / "depot.py").write_text(DEPOT, encoding="utf-8")
+    index = build(tmp_path)
+    store = index.store
+    # make the entries as codeseek made them before (methods' bodies in the class's entry)
+    with store.transaction():
+        store._exec("DELETE FROM units_fts")
+        for stored in store.iter_units():
+            store._insert_lexical(stored.id, stored.unit, None)
+        store._exec("DELETE FROM manifest WHERE key='lexical_text'")
+    assert keyword_hits(index, "windshear") == ["Depot.park", "Depot"]
+    summary = index.update()
+    assert keyword_hits(index, "windshear") == ["Depot.park"]
+    assert summary.embedded == 0  # only the keyword entries changed
+    assert index.store.manifest()["lexical_text"] == "members-folded"

@@ -21,7 +21,7 @@ from hypothesis import strategies as st
 
 from codeseek.languages import LanguageSpec, spec_for_path
 from codeseek.parse import ParseResult, parse_source
-from codeseek.units import KINDS, CodeUnit
+from codeseek.units import KINDS, CodeUnit, lexical_codes
 
 STDLIB = Path(sysconfig.get_paths()["stdlib"])
 
@@ -631,3 +631,65 @@ def test_truncated_stdlib_file_never_raises(data: st.DataObject) -> None:
     end = data.draw(st.integers(start, len(source)), label="end")
     check_well_formed(source[:end])
     check_well_formed(source[start:end])
+
+
+# --- the lexical entry: inner units folded to their signatures ---------------------------
+
+
+@pytest.mark.parametrize("module", ["textwrap.py", "json/decoder.py", "queue.py", "calendar.py"])
+def test_lexical_code_folds_direct_members_as_ast_sees_them(module: str) -> None:
+    """Reference: Python's ``ast`` on real standard-library code. A class's lexical
+    code keeps each method's ``def`` line but none of the lines inside its body."""
+    path = STDLIB / module
+    if not path.is_file():
+        pytest.skip(f"{module} is not in this Python's standard library")
+    source = path.read_bytes()
+    result = parse(source, module)
+    codes = dict(zip((u.qualname for u in result.units), lexical_codes(result.units),
+                     strict=True))
+    lines = source.decode("utf-8").splitlines()
+    counts: dict[str, int] = {}
+    for line in lines:
+        counts[line.strip()] = counts.get(line.strip(), 0) + 1
+    checked = 0
+    for node in ast.walk(ast.parse(source)):
+        if not isinstance(node, ast.ClassDef) or node.name not in codes:
+            continue  # nested classes are named by their path; top-level ones suffice
+        folded = codes[node.name]
+        for member in node.body:
+            if not isinstance(member, ast.FunctionDef | ast.AsyncFunctionDef):
+                continue
+            assert f"def {member.name}(" in folded
+            first_body_line = member.body[0].lineno
+            assert member.end_lineno is not None
+            for number in range(first_body_line, member.end_lineno + 1):
+                text = lines[number - 1].strip()
+                if len(text) > 8 and counts[text] == 1:  # a line found once in the file
+                    assert text not in folded, (module, node.name, number)
+                    checked += 1
+    assert checked > 20
+
+
+def test_lexical_code_folds_each_level_once() -> None:
+    source = textwrap.dedent('''\
+        class Depot:
+            """Where vans park overnight."""
+
+            capacity = 12
+
+            def park(self, van):
+                """Park one van."""
+                def slot_for(van):
+                    return hash(van.plate) % self.capacity
+                return slot_for(van) + 1
+        ''').encode()
+    units = {u.qualname: u for u in parse(source, "depot.py").units}
+    codes = dict(zip(units, lexical_codes(list(units.values())), strict=True))
+
+    def lines(text: str) -> list[str]:  # indentation does not matter to keyword matching
+        return [line.strip() for line in text.splitlines() if line.strip()]
+
+    assert lines(codes["Depot"]) == ["class Depot:", "capacity = 12", "def park(self, van):"]
+    assert lines(codes["Depot.park"]) == ["def park(self, van):", "def slot_for(van):",
+                                          "return slot_for(van) + 1"]
+    assert codes["Depot.park.slot_for"] == units["Depot.park.slot_for"].code
