@@ -347,6 +347,9 @@ class TuneReport:
         decided_on: the protocol whose served MRR decided.
         kept: whether the adapter raised the held-out served MRR (and was saved).
         fusion_note: how the fusion served with the adapter was chosen.
+        reweighted: the plain model with its fusion weight chosen the same way, on
+            the same pairs (None when that is the served fusion). The adapter must
+            beat it too: a better weight alone is not the adapter's doing.
     """
 
     before: EvalReport
@@ -355,6 +358,7 @@ class TuneReport:
     decided_on: Pool
     kept: bool
     fusion_note: str = ""
+    reweighted: EvalReport | None = None
 
     def served_mrr(self, report: EvalReport) -> float:
         """The served MRR of a report under the deciding protocol."""
@@ -368,6 +372,8 @@ class TuneReport:
             "served_mrr_after": round(self.served_mrr(self.after), 4),
             "training": self.log.to_json(), "split": self.before.split.to_json(),
             "fusion": self.after.fusion.to_json(), "fusion_note": self.fusion_note,
+            "served_mrr_plain_reweighted": (None if self.reweighted is None else
+                                            round(self.served_mrr(self.reweighted), 4)),
             "held_out": self.before.holdout,
             "before": [r.to_json() for r in self.before.results],
             "after": [r.to_json() for r in self.after.results],
@@ -379,6 +385,10 @@ class TuneReport:
         before, after = self.served_mrr(self.before), self.served_mrr(self.after)
         verdict = ("kept: search uses it from now on" if self.kept else
                    "not kept: it did not raise the held-out MRR; search keeps the plain model")
+        if not self.kept and after > before and self.reweighted is not None:
+            verdict = (f"not kept: the plain model with its weight chosen the same way does "
+                       f"as well ({self.served_mrr(self.reweighted):.3f}); search keeps the "
+                       "plain model")
         log = self.log
         return "\n".join([
             f"trained a query adapter on {log.pairs} pairs ({log.validation_pairs} set aside "
@@ -423,24 +433,27 @@ def tune_units(units: Sequence[CodeUnit], embedder: Embedder, *, repository: str
     matrix, log = train_adapter(training_data(prepared, split), settings, progress)
     adapter = QueryAdapter(matrix, embedder.model_id)
     tuned_fusion, note = fusion_for(prepared, split, adapter, progress)
+    plain_fusion, _ = fusion_for(prepared, split, None, progress)
     plain = held_out_signals(prepared, None, progress=progress)
     tuned = held_out_signals(prepared, adapter, reuse=plain, progress=progress)
-    before, after = (build_report(repository=repository, model=embedder.model_id, split=split,
-                                  selection=prepared.selection, signals=signals,
-                                  corpus=len(prepared.documents), fusion=used,
-                                  adapter=signals is tuned)
-                     for signals, used in ((plain, fusion), (tuned, tuned_fusion)))
+    before, after, reweighted = (
+        build_report(repository=repository, model=embedder.model_id, split=split,
+                     selection=prepared.selection, signals=signals,
+                     corpus=len(prepared.documents), fusion=used, adapter=signals is tuned)
+        for signals, used in ((plain, fusion), (tuned, tuned_fusion), (plain, plain_fusion)))
     protocol = deciding_protocol(before)
-    kept = served_mrr(after, protocol) > served_mrr(before, protocol)
-    report = TuneReport(before, after, log, protocol, kept, note)
+    kept = served_mrr(after, protocol) > max(served_mrr(before, protocol),
+                                             served_mrr(reweighted, protocol))
+    report = TuneReport(before, after, log, protocol, kept, note,
+                        None if plain_fusion == fusion else reweighted)
     header = {"split": split.to_json(), "fusion": tuned_fusion.to_json(),
               "report": report.to_json()}
     return adapter.with_header(header), report
 
 
-def fusion_for(prepared: Prepared, split: Split, adapter: QueryAdapter,
+def fusion_for(prepared: Prepared, split: Split, adapter: QueryAdapter | None,
                progress: Progress | None = None) -> tuple[Fusion, str]:
-    """The fusion that serves the adapted queries best, and how it was chosen.
+    """The fusion that serves the (adapted) queries best, and how it was chosen.
 
     On the pairs set aside when there are at least :data:`MIN_FUSION_PAIRS`;
     otherwise on all the training pairs. The adapter was fit on most of those,

@@ -242,12 +242,40 @@ def test_an_adapter_that_does_not_help_is_not_kept(fake_index: Index,
         return scramble, train_adapter(data, TrainSettings(max_epochs=1))[1]
 
     monkeypatch.setattr(tune, "train_adapter", useless)  # a map that scrambles the queries
+    # the weight stays the served one: this checks the rule "kept only if served MRR rises"
+    monkeypatch.setattr(tune, "fusion_for", lambda *args, **kwargs: (DEFAULT_FUSION, "fixed"))
     report = fake_index.tune()
     assert not report.kept
     assert report.served_mrr(report.after) <= report.served_mrr(report.before)
     assert "not kept" in report.to_text()
     assert not (fake_index.settings.index_dir / ADAPTER_NAME).exists()
     assert fake_index.searcher().adapter is None
+
+
+def test_a_better_weight_alone_does_not_keep_an_adapter(fake_index: Index,
+                                                         monkeypatch: pytest.MonkeyPatch) -> None:
+    import codeseek.tune as tune
+
+    dim = fake_index.searcher().vectors.dim
+
+    def identity(data: TrainingData, settings: object = None,
+                 progress: object = None) -> tuple[np.ndarray, object]:
+        return np.eye(dim, dtype=np.float32), train_adapter(data, TrainSettings(max_epochs=1))[1]
+
+    monkeypatch.setattr(tune, "train_adapter", identity)  # an adapter that changes nothing
+    report = fake_index.tune()
+    before, after = report.served_mrr(report.before), report.served_mrr(report.after)
+    # with the fake embedder the keywords are the stronger side, so the weight chosen on the
+    # training pairs differs from the served one and serves the held-out queries better
+    assert report.reweighted is not None and report.reweighted.fusion == report.after.fusion
+    assert after > before
+    assert after == report.served_mrr(report.reweighted)
+    assert not report.kept
+    assert report.to_text().splitlines()[-1] == (
+        f"not kept: the plain model with its weight chosen the same way does as well "
+        f"({after:.3f}); search keeps the plain model")
+    assert report.to_json()["served_mrr_plain_reweighted"] == round(after, 4)
+    assert not (fake_index.settings.index_dir / ADAPTER_NAME).exists()
 
 
 def test_the_tuned_fusion_is_chosen_on_training_pairs_only(
