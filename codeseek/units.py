@@ -175,17 +175,40 @@ def _inside(inner: CodeUnit, outer: CodeUnit) -> bool:
 
 
 def _folded(code: str, members: list[CodeUnit]) -> str:
-    """``code`` with each member's code (found in order) replaced by its signature."""
+    """``code`` with each member's code (found in order) replaced by its signature, and
+    a doc comment written above the member dropped with it (it is the member's doc)."""
     parts: list[str] = []
     at = 0
     for member in members:
         found = code.find(member.code, at) if member.code else -1
         if found < 0:
             continue  # not verbatim inside (it should be): leave the text as it is
-        parts.extend((code[at:found], member.signature))
+        begin = found
+        if member.doc and member.doc_span is None:
+            begin = _comment_lines_above(code, found, at)
+        parts.extend((code[at:begin], member.signature))
         at = found + len(member.code)
     parts.append(code[at:])
     return "".join(parts)
+
+
+_ABOVE_MEMBER = ("//", "/*", "*", "#", "@")  # comment lines, annotations and attributes
+
+
+def _comment_lines_above(code: str, found: int, floor: int) -> int:
+    """Where the run of comment (and annotation) lines right above ``code[found]``
+    begins; ``found`` itself when code precedes it on its line or no such run."""
+    line_start = max(floor, code.rfind("\n", floor, found) + 1)
+    if code[line_start:found].strip():
+        return found
+    begin = line_start
+    while begin > floor:
+        above = max(floor, code.rfind("\n", floor, begin - 1) + 1)
+        text = code[above : begin - 1].strip()
+        if not text.startswith(_ABOVE_MEMBER):
+            break
+        begin = above
+    return begin if begin < line_start else found
 
 
 def split_identifier(identifier: str) -> list[str]:

@@ -684,3 +684,60 @@ def test_markers_and_stars_are_cleaned_and_tags_kept_out_of_the_summary() -> Non
         def release(force); end
         """, "release")
     assert ruby.doc_summary == "Release a bike."
+
+
+# -- keyword entries: a member's doc comment leaves its class's entry with its body -------
+
+
+@pytest.mark.parametrize(("language", "source"), [
+    ("java", """\
+        /** Where the vans park overnight. */
+        public class Depot {
+            private int capacity = 12;
+
+            /**
+             * Gives a van its bay, counted from the gate.
+             * @param van the van
+             */
+            @Override
+            public int park(Van van) {
+                return bays.indexOf(van.plate) + WINDSHEAR;
+            }
+
+            // a note on leaving, not a doc: a blank line follows
+
+            public void leave(Van van) {
+                bays.remove(van.plate);
+            }
+        }
+        """),
+    ("ruby", """\
+        # Where the vans park overnight.
+        class Depot
+          # Gives a van its bay, counted from the gate.
+          def park(van)
+            bays.index(van.plate) + WINDSHEAR
+          end
+
+          # a note on leaving, not a doc: a blank line follows
+
+          def leave(van)
+            bays.delete(van.plate)
+          end
+        end
+        """),
+])
+def test_a_class_entry_keeps_member_signatures_not_their_docs_or_bodies(
+        language: str, source: str) -> None:
+    from codeseek.units import lexical_codes
+
+    units = units_of(language, textwrap.dedent(source))
+    codes = {u.qualname: code for u, code in zip(units, lexical_codes(units), strict=True)}
+    depot = codes["Depot"]
+    assert "park(" in depot and "leave(" in depot
+    assert "WINDSHEAR" not in depot and "delete" not in depot and "remove" not in depot
+    assert "counted from the gate" not in depot  # park's doc is park's
+    assert "a note on leaving" in depot  # a comment that is no one's doc stays
+    park = next(u for u in units if u.qualname.endswith("park"))
+    assert park.doc.startswith("Gives a van its bay")
+    assert "WINDSHEAR" in codes[park.qualname]
