@@ -60,6 +60,9 @@ METHODS = ("lexical", "dense", "dense-ann", "served")
 BOOTSTRAP_SAMPLES = 1000
 ENCODE_CHUNK = 512
 DENSE_CHUNK = 256
+# How many candidates of each side the signals keep; served search fuses the best
+# CANDIDATES of them. Only scripts/bench_quality.py sets it deeper, to try other depths.
+DEPTH = CANDIDATES
 CACHE_NAME = "eval-vectors.npz"
 
 Progress = Callable[[str, int, int], None]
@@ -621,12 +624,12 @@ def lexical_signals(cases: Sequence[Case], documents: KeywordScorer, sampler: Po
 def _lexical_case(order: np.ndarray, scores: np.ndarray, true: int, pool: Pool,
                   sampler: PoolSampler) -> tuple[int, Top]:
     if pool == WHOLE:
-        return rank_of_true(scores, true), _top_of(order, scores, CANDIDATES)
+        return rank_of_true(scores, true), _top_of(order, scores, DEPTH)
     chosen = sampler.pool(true, int(pool))
     inside = np.zeros(len(scores), dtype=bool)
     inside[chosen] = True
     # the served path for a narrowed pool: BM25 matches in order, kept if inside the pool
-    return rank_of_true(scores[chosen], 0), _top_of(order[inside[order]], scores, CANDIDATES)
+    return rank_of_true(scores[chosen], 0), _top_of(order[inside[order]], scores, DEPTH)
 
 
 def dense_signals(cases: Sequence[Case], queries: np.ndarray, documents: DocumentIndex,
@@ -664,7 +667,7 @@ def _dense_case(scores: np.ndarray, true: int, pool: Pool,
     # the served path for a narrowed pool is exact search over the pool's vectors
     # (vectors.exact_search); the same selection here, on the scores already computed
     inside = scores[chosen]
-    k = min(CANDIDATES, len(chosen))
+    k = min(DEPTH, len(chosen))
     top = np.argpartition(-inside, k - 1)[:k]
     top = top[np.argsort(-inside[top], kind="stable")]
     return rank_of_true(inside, 0), (chosen[top], inside[top].astype(np.float64))
@@ -678,7 +681,7 @@ def ann_signals(cases: Sequence[Case], queries: np.ndarray, documents: DocumentI
     for done, case in enumerate(cases):
         if progress and done % 200 == 0:
             progress("HNSW search", done, len(cases))
-        hits = index.search(queries[done], CANDIDATES)
+        hits = index.search(queries[done], DEPTH)
         positions = documents.positions([label for label, _ in hits])
         ranks.append(rank_in(positions, case.position))
         tops.append((positions, np.array([score for _, score in hits])))
@@ -686,12 +689,13 @@ def ann_signals(cases: Sequence[Case], queries: np.ndarray, documents: DocumentI
 
 
 def served_ranks(cases: Sequence[Case], dense: Signals, lexical: Signals,
-                 fusion: Fusion) -> np.ndarray:
-    """Each case's rank in the served ranking (:func:`~codeseek.search.fuse`)."""
+                 fusion: Fusion, candidates: int = CANDIDATES) -> np.ndarray:
+    """Each case's rank in the served ranking (:func:`~codeseek.search.fuse`) of the
+    best ``candidates`` of each side."""
     ranks = []
     for slot, index in enumerate(dense.cases):
-        d_ids, d_scores = dense.tops[slot]
-        l_ids, l_scores = lexical.tops[slot]
+        d_ids, d_scores = (a[:candidates] for a in dense.tops[slot])
+        l_ids, l_scores = (a[:candidates] for a in lexical.tops[slot])
         fused = fuse(list(zip(d_ids.tolist(), d_scores.tolist(), strict=True)),
                      list(zip(l_ids.tolist(), l_scores.tolist(), strict=True)), fusion)
         ranks.append(rank_in([item for item, _ in fused], cases[int(index)].position))

@@ -39,7 +39,9 @@ from codeseek.vectors import VectorIndex, exact_search
 FUSION_KIND = "zscore"
 RRF_K = 5
 DENSE_WEIGHT = 0.6
-CANDIDATES = 100
+# Each side's best CANDIDATES are fused: 200 rather than 100 or 300 by the same training
+# splits (scripts/bench_quality.py, stage "candidates").
+CANDIDATES = 200
 EXACT_FILTER_LIMIT = 50_000
 SNIPPET_LINES = 8
 # common practice: drop the most frequent English function words from lexical queries

@@ -10,7 +10,8 @@ Without PATH it indexes a copy of this machine's Python standard library
     texts, same batch size, and of the torch reference on a sample, with the
     ratios pipeline / raw ONNX and ONNX / torch;
   * a second index of the unchanged tree (seconds, units embedded: should be 0);
-  * warm query latency p50/p95 in one process;
+  * warm query latency p50/p95 in one process, with the served candidates per
+    side and with half as many (taken in turn on each query);
   * a cold `codeseek search` CLI call (a new process, no daemon).
 
 With --corpora it prints parse throughput only, per language, on the real
@@ -37,7 +38,9 @@ from pathlib import Path
 PROJECT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(PROJECT))
 
+import codeseek.search as search_module  # noqa: E402
 from codeseek import open_index  # noqa: E402
+from codeseek.api import Index  # noqa: E402
 from codeseek.config import load_settings  # noqa: E402
 from codeseek.embed import load_embedder  # noqa: E402
 from codeseek.languages import LanguageSpec, spec_by_name  # noqa: E402
@@ -129,6 +132,31 @@ def corpus_throughput(repeat: int) -> None:
               f"{units / full:>10.0f}{units:>7}{size / 1e6:>7.2f}  {label}")
 
 
+def warm_latency(index: Index, queries: list[str]) -> None:
+    """Warm query latency with the served candidates per side, and with half as many,
+    the two taken in turn on each query of one run."""
+    served = search_module.CANDIDATES
+    depths = (served, served // 2)
+    latencies: dict[int, list[float]] = {depth: [] for depth in depths}
+    try:
+        for query in queries:
+            for depth in depths:
+                search_module.CANDIDATES = depth
+                start = time.perf_counter()
+                index.search(query, 10)
+                latencies[depth].append((time.perf_counter() - start) * 1000)
+    finally:
+        search_module.CANDIDATES = served
+    for depth in depths:
+        times = latencies[depth]
+        label = "served" if depth == served else "for comparison"
+        print(f"warm query latency over {len(times)} queries, {depth} candidates per side "
+              f"({label}): p50 {percentile(times, 0.5):.1f} ms, "
+              f"p95 {percentile(times, 0.95):.1f} ms")
+    ratio = percentile(latencies[depths[0]], 0.5) / percentile(latencies[depths[1]], 0.5)
+    print(f"p50 ratio {depths[0]} / {depths[1]} candidates: {ratio:.2f}")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -188,13 +216,7 @@ def main() -> None:
         docs = [s.unit.doc_summary for s in index.store.iter_units() if s.unit.doc_summary]
         queries = docs[:: max(1, len(docs) // args.queries)][: args.queries]
         index.search(queries[0], 10)
-        latencies = []
-        for query in queries:
-            start = time.perf_counter()
-            index.search(query, 10)
-            latencies.append((time.perf_counter() - start) * 1000)
-        print(f"warm query latency over {len(latencies)} queries: "
-              f"p50 {percentile(latencies, 0.5):.1f} ms, p95 {percentile(latencies, 0.95):.1f} ms")
+        warm_latency(index, queries)
         index.close()
 
         cli = [str(PROJECT / ".venv" / "bin" / "codeseek"), "search", "read a config file",
