@@ -296,6 +296,10 @@ class Updater:
             previous = old.get(uid)
             if previous is not None and previous[1] == digest:
                 self.store.update_unit_position(previous[0], unit)
+                # what is embedded is unchanged, but the keyword entry may not be: a long
+                # unit's embedded text keeps only its words, and folding depends on its
+                # members (a blank line above one, its nesting)
+                self.store.replace_lexical(previous[0], unit, lexical[uid])
                 continue
             self.store.insert_unit(file_id, unit, digest, lexical[uid])
             if previous is None:

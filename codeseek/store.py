@@ -273,6 +273,11 @@ class Store:
             (row_id, fields["names"], fields["signature"], fields["doc"], fields["code"]),
         )
 
+    def replace_lexical(self, row_id: int, unit: CodeUnit, code: str | None) -> None:
+        """Write one unit's lexical entry afresh."""
+        self._exec("DELETE FROM units_fts WHERE rowid=?", (row_id,))
+        self._insert_lexical(row_id, unit, code)
+
     def rewrite_lexical(self) -> int:
         """Write every unit's lexical entry afresh (after the way it is made changed);
         returns the number of units. Call inside a transaction."""

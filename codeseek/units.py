@@ -18,8 +18,9 @@ from functools import cached_property, lru_cache
 KINDS = ("function", "method", "class")
 WORDS_FROM = 800  # characters of code from which the embedded text gives identifier words
 # How lexical entries are made; an index whose manifest records another value has them
-# rewritten on its next update. "members-folded": inner units folded to their signatures.
-LEXICAL_TEXT = "members-folded"
+# rewritten on its next update. "members-folded-2": inner units folded to their signatures,
+# a member's doc comment with it.
+LEXICAL_TEXT = "members-folded-2"
 
 _CAMEL = re.compile(r"[A-Z]+(?=[A-Z][a-z])|[A-Z]?[a-z]+|[A-Z]+|\d+")
 _NON_WORD = re.compile(r"[^A-Za-z0-9]+")
@@ -185,30 +186,31 @@ def _folded(code: str, members: list[CodeUnit]) -> str:
             continue  # not verbatim inside (it should be): leave the text as it is
         begin = found
         if member.doc and member.doc_span is None:
-            begin = _comment_lines_above(code, found, at)
+            begin = _doc_above(code, found, at, member.doc)
         parts.extend((code[at:begin], member.signature))
         at = found + len(member.code)
     parts.append(code[at:])
     return "".join(parts)
 
 
-_ABOVE_MEMBER = ("//", "/*", "*", "#", "@")  # comment lines, annotations and attributes
+_BLANK_LINE = re.compile(r"\n[ \t]*\r?\n")
+_BLOCK_OPENERS = ("/**", "/*!", "/*")
 
 
-def _comment_lines_above(code: str, found: int, floor: int) -> int:
-    """Where the run of comment (and annotation) lines right above ``code[found]``
-    begins; ``found`` itself when code precedes it on its line or no such run."""
-    line_start = max(floor, code.rfind("\n", floor, found) + 1)
-    if code[line_start:found].strip():
+def _doc_above(code: str, found: int, floor: int, doc: str) -> int:
+    """Where the doc comment written above ``code[found]`` starts (the start of the line
+    holding the doc's first line, or of a lone ``/**`` line just above it); ``found``
+    itself when the doc's text is not there with no blank line before the member."""
+    first = next((line.strip() for line in doc.splitlines() if line.strip()), "")
+    at = code.rfind(first, floor, found) if first else -1
+    if at < 0 or _BLANK_LINE.search(code, at, found):
         return found
-    begin = line_start
-    while begin > floor:
-        above = max(floor, code.rfind("\n", floor, begin - 1) + 1)
-        text = code[above : begin - 1].strip()
-        if not text.startswith(_ABOVE_MEMBER):
-            break
-        begin = above
-    return begin if begin < line_start else found
+    start = max(floor, code.rfind("\n", floor, at) + 1)
+    if start > floor:
+        above = max(floor, code.rfind("\n", floor, start - 1) + 1)
+        if code[above : start - 1].strip() in _BLOCK_OPENERS:
+            start = above
+    return start
 
 
 def split_identifier(identifier: str) -> list[str]:

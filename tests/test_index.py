@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import shutil
+from collections.abc import Callable
 from pathlib import Path
 
 import pytest
@@ -10,6 +11,7 @@ from sample_files import sample_source_files
 
 from codeseek import FakeEmbedder, open_index
 from codeseek.api import Index
+from codeseek.units import LEXICAL_TEXT
 from codeseek.vectors import HNSW_NAME
 
 
@@ -250,4 +252,43 @@ def test_an_index_with_entries_made_the_old_way_is_rewritten_once(tmp_path: Path
     summary = index.update()
     assert keyword_hits(index, "windshear") == ["Depot.park"]
     assert summary.embedded == 0  # only the keyword entries changed
-    assert index.store.manifest()["lexical_text"] == "members-folded"
+    assert index.store.manifest()["lexical_text"] == LEXICAL_TEXT
+
+
+def keyword_entries(index: Index) -> dict[str, tuple[str, ...]]:
+    rows = {row[0]: tuple(row[1:]) for row in index.store._query(
+        "SELECT rowid, names, signature, doc, code FROM units_fts")}
+    return {s.unit.uid: rows[s.id] for s in index.store.iter_units()}
+
+
+FILLER = "\n".join(f"    private int bay{number} = {number};" for number in range(40))
+LONG_DEPOT = f"""class Depot {{
+    private int maxRetries = 3;
+{FILLER}
+    /** Gives a van its bay, counted from the gate. */
+    public int park(Van van) {{ return maxRetries + WINDSHEAR; }}
+}}
+"""
+
+
+@pytest.mark.parametrize(("name", "edit"), [
+    # a blank line between a doc and its method: the method loses its doc, so the class's
+    # entry keeps the comment (the class's embedded text, its words only, is unchanged)
+    ("blank line under a doc", lambda text: text.replace(
+        "gate. */\n", "gate. */\n\n")),
+    ("doc marker made plain", lambda text: text.replace("/** Gives", "/* Gives")),
+    ("identifier respelt", lambda text: text.replace("maxRetries", "max_retries")),
+])
+def test_keyword_entries_after_an_edit_equal_a_fresh_build(
+        tmp_path: Path, name: str, edit: Callable[[str], str]) -> None:
+    repo = tmp_path / "repo"
+    repo.mkdir()
+    source = repo / "Depot.java"
+    source.write_text(LONG_DEPOT, encoding="utf-8")
+    index = build(repo)
+    source.write_text(edit(LONG_DEPOT), encoding="utf-8")
+    index.update()
+    fresh = open_index(repo, index_dir=tmp_path / "fresh", create=True,
+                       embedder=FakeEmbedder())
+    fresh.update()
+    assert keyword_entries(index) == keyword_entries(fresh)

@@ -741,3 +741,43 @@ def test_a_class_entry_keeps_member_signatures_not_their_docs_or_bodies(
     park = next(u for u in units if u.qualname.endswith("park"))
     assert park.doc.startswith("Gives a van its bay")
     assert "WINDSHEAR" in codes[park.qualname]
+
+
+@pytest.mark.parametrize(("language", "source", "kept", "dropped"), [
+    ("javascript", """\
+        class Counter {
+          #count = 0;
+          /** Increments the count. */
+          inc() { this.#count++; }
+        }
+        """, ["#count = 0;"], ["Increments the count", "this.#count++"]),
+    ("java", """\
+        class Depot {
+            @Inject Gate gate;
+            /** Opens the gate for a van. */
+            public void open() { gate.lift(); }
+        }
+        """, ["@Inject Gate gate;"], ["Opens the gate", "gate.lift()"]),
+    ("cpp", """\
+        class Depot {
+        #ifdef WITH_GATE
+          /// Opens the gate for a van.
+          int open() { return lift(); }
+        #endif
+          /// Doubles a bay number.
+          template <typename T>
+          T twice(T bay) { return bay + bay; }
+        };
+        """, ["#ifdef WITH_GATE", "#endif"],
+     ["Opens the gate", "lift()", "Doubles a bay", "bay + bay"]),
+])
+def test_a_class_entry_drops_only_its_members_docs_and_bodies(
+        language: str, source: str, kept: list[str], dropped: list[str]) -> None:
+    from codeseek.units import lexical_codes
+
+    units = units_of(language, textwrap.dedent(source))
+    codes = {u.qualname: code for u, code in zip(units, lexical_codes(units), strict=True)}
+    depot = codes.get("Depot", codes.get("Counter"))
+    assert depot is not None, list(codes)
+    assert [text for text in kept if text not in depot] == []  # fields, directives stay
+    assert [text for text in dropped if text in depot] == []
