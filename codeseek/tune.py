@@ -432,8 +432,13 @@ def tune_units(units: Sequence[CodeUnit], embedder: Embedder, *, repository: str
     prepared = prepare(units, embedder, split, cache=cache, training=True, progress=progress)
     matrix, log = train_adapter(training_data(prepared, split), settings, progress)
     adapter = QueryAdapter(matrix, embedder.model_id)
-    tuned_fusion, note = fusion_for(prepared, split, adapter, progress)
-    plain_fusion, _ = fusion_for(prepared, split, None, progress)
+    cases, note = fusion_cases(prepared, split)
+    plain_choice = collect_signals(cases, query_matrix(prepared, cases, None), prepared.documents,
+                                   prepared.sampler, progress=progress)
+    tuned_choice = collect_signals(cases, query_matrix(prepared, cases, adapter),
+                                   prepared.documents, prepared.sampler,
+                                   lexical=plain_choice.lexical, progress=progress)
+    tuned_fusion, plain_fusion = choose_fusion(tuned_choice)[0], choose_fusion(plain_choice)[0]
     plain = held_out_signals(prepared, None, progress=progress)
     tuned = held_out_signals(prepared, adapter, reuse=plain, progress=progress)
     before, after, reweighted = (
@@ -451,12 +456,11 @@ def tune_units(units: Sequence[CodeUnit], embedder: Embedder, *, repository: str
     return adapter.with_header(header), report
 
 
-def fusion_for(prepared: Prepared, split: Split, adapter: QueryAdapter | None,
-               progress: Progress | None = None) -> tuple[Fusion, str]:
-    """The fusion that serves the (adapted) queries best, and how it was chosen.
+def fusion_cases(prepared: Prepared, split: Split) -> tuple[list[Case], str]:
+    """The training pairs a fusion weight is chosen on, and a note saying which.
 
-    On the pairs set aside when there are at least :data:`MIN_FUSION_PAIRS`;
-    otherwise on all the training pairs. The adapter was fit on most of those,
+    The pairs set aside when there are at least :data:`MIN_FUSION_PAIRS`;
+    otherwise all the training pairs. The adapter was fit on most of those,
     so that choice leans towards the model, which is where an adapter that
     helps should lean (on a small repository the default weight left much of
     its gain unserved: ``scripts/bench_quality.py``). The held-out pairs,
@@ -464,11 +468,16 @@ def fusion_for(prepared: Prepared, split: Split, adapter: QueryAdapter | None,
     """
     fit, aside = validation_split(prepared, split)
     if len(aside) >= MIN_FUSION_PAIRS:
-        cases, note = aside, f"chosen on the {len(aside)} pairs set aside"
-    else:
-        cases = fit + aside
-        note = (f"chosen on all {len(cases)} training pairs: fewer than {MIN_FUSION_PAIRS} "
-                "set aside")
+        return aside, f"chosen on the {len(aside)} pairs set aside"
+    cases = fit + aside
+    return cases, (f"chosen on all {len(cases)} training pairs: fewer than {MIN_FUSION_PAIRS} "
+                   "set aside")
+
+
+def fusion_for(prepared: Prepared, split: Split, adapter: QueryAdapter | None,
+               progress: Progress | None = None) -> tuple[Fusion, str]:
+    """The fusion that serves the (adapted) queries best on :func:`fusion_cases`."""
+    cases, note = fusion_cases(prepared, split)
     signals = collect_signals(cases, query_matrix(prepared, cases, adapter), prepared.documents,
                               prepared.sampler, progress=progress)
     return choose_fusion(signals)[0], note

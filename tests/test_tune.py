@@ -243,7 +243,7 @@ def test_an_adapter_that_does_not_help_is_not_kept(fake_index: Index,
 
     monkeypatch.setattr(tune, "train_adapter", useless)  # a map that scrambles the queries
     # the weight stays the served one: this checks the rule "kept only if served MRR rises"
-    monkeypatch.setattr(tune, "fusion_for", lambda *args, **kwargs: (DEFAULT_FUSION, "fixed"))
+    monkeypatch.setattr(tune, "choose_fusion", lambda *args, **kwargs: (DEFAULT_FUSION, {}))
     report = fake_index.tune()
     assert not report.kept
     assert report.served_mrr(report.after) <= report.served_mrr(report.before)
