@@ -18,9 +18,9 @@ from functools import cached_property, lru_cache
 KINDS = ("function", "method", "class")
 WORDS_FROM = 800  # characters of code from which the embedded text gives identifier words
 # How lexical entries are made; an index whose manifest records another value has them
-# rewritten on its next update. "members-folded-2": inner units folded to their signatures,
+# rewritten on its next update. "members-folded-3": inner units folded to their signatures,
 # a member's doc comment with it.
-LEXICAL_TEXT = "members-folded-2"
+LEXICAL_TEXT = "members-folded-3"
 
 _CAMEL = re.compile(r"[A-Z]+(?=[A-Z][a-z])|[A-Z]?[a-z]+|[A-Z]+|\d+")
 _NON_WORD = re.compile(r"[^A-Za-z0-9]+")
@@ -145,7 +145,8 @@ def lexical_codes(units: Sequence[CodeUnit]) -> list[str]:
     (chosen on the training splits of ``scripts/bench_quality.py``). ``units``
     may mix files; the result follows their order.
     """
-    codes = [unit.code_without_doc for unit in units]
+    codes = [unit.code[_own_start(unit):] if unit.doc_span is None else unit.code_without_doc
+             for unit in units]
     by_path: dict[str, list[int]] = {}
     for position, unit in enumerate(units):
         by_path.setdefault(unit.path, []).append(position)
@@ -181,16 +182,33 @@ def _folded(code: str, members: list[CodeUnit]) -> str:
     parts: list[str] = []
     at = 0
     for member in members:
-        found = code.find(member.code, at) if member.code else -1
+        own = member.code[_own_start(member):]  # without other code sharing its first line
+        found = code.find(own, at) if own else -1
         if found < 0:
             continue  # not verbatim inside (it should be): leave the text as it is
         begin = found
         if member.doc and member.doc_span is None:
             begin = _doc_above(code, found, at, member.doc)
         parts.extend((code[at:begin], member.signature))
-        at = found + len(member.code)
+        at = found + len(own)
     parts.append(code[at:])
     return "".join(parts)
+
+
+def _own_start(unit: CodeUnit) -> int:
+    """Where a unit's own text starts in its ``code``, which begins at the start of its
+    first line: after other code on that line (``} h() {``, ``class A { f() {``), found as
+    the first place the line reads as the signature's first two words; 0 when only
+    indentation precedes it or the signature cannot be placed."""
+    first_line = unit.code.split("\n", 1)[0]
+    words = unit.signature.split()[:2]
+    if not words:
+        return 0
+    for match in re.finditer(rf"(?<![\w$@#]){re.escape(words[0])}", first_line):
+        at = match.start()
+        if first_line[at:].split()[: len(words)] == words:
+            return at if first_line[:at].strip() else 0
+    return 0
 
 
 _BLANK_LINE = re.compile(r"\n[ \t]*\r?\n")

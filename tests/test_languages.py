@@ -781,3 +781,26 @@ def test_a_class_entry_drops_only_its_members_docs_and_bodies(
     assert depot is not None, list(codes)
     assert [text for text in kept if text not in depot] == []  # fields, directives stay
     assert [text for text in dropped if text in depot] == []
+
+
+def test_members_sharing_a_line_with_other_code_fold_cleanly() -> None:
+    from codeseek.units import lexical_codes
+
+    source = """\
+        class Depot { park() {
+            return lift(); }
+          leave() {
+            return lower();
+          } refuel() {
+            return pump();
+          }
+        }
+        """
+    units = units_of("javascript", textwrap.dedent(source))
+    codes = {u.qualname: code for u, code in zip(units, lexical_codes(units), strict=True)}
+    assert set(codes) == {"Depot", "Depot.park", "Depot.leave", "Depot.refuel"}
+    assert [line.strip() for line in codes["Depot"].splitlines()] == [
+        "class Depot { park()", "leave() refuel()", "}"]
+    # a member's own entry starts at the member, not at the code before it on its line
+    assert codes["Depot.park"].startswith("park() {")
+    assert codes["Depot.refuel"].startswith("refuel() {")
