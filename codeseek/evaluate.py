@@ -361,24 +361,23 @@ class DocumentIndex:
 
     def __init__(self, units: Sequence[CodeUnit], vectors: np.ndarray, model_id: str) -> None:
         self.units = [without_doc(u) for u in units]
-        self._lexical_codes = lexical_codes(units)  # members folded as the index folds them
         self.vectors = np.asarray(vectors, dtype=np.float32)
         self.model_id = model_id
         self.languages = np.array([u.language for u in units])
         self.store = memory_store()
         self._ann: VectorIndex | None = None
-        self.row_ids = self._fill()
+        self.row_ids = self._fill(lexical_codes(units))  # members folded as the index folds them
         self._positions = np.full(int(self.row_ids.max(initial=0)) + 1, -1, dtype=np.int64)
         self._positions[self.row_ids] = np.arange(len(self.row_ids))
 
     def __len__(self) -> int:
         return len(self.units)
 
-    def _fill(self) -> np.ndarray:
+    def _fill(self, codes: list[str]) -> np.ndarray:
         files: dict[str, int] = {}
         row_ids: list[int] = []
         with self.store.transaction():
-            for unit, code in zip(self.units, self._lexical_codes, strict=True):
+            for unit, code in zip(self.units, codes, strict=True):
                 if unit.path not in files:
                     files[unit.path] = self.store.upsert_file(unit.path, unit.language, 0, 0,
                                                               "", False)
