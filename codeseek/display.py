@@ -10,10 +10,17 @@ outline, status, the TUI) passes its repository text through :func:`printable`
 (one line) or :func:`printable_block` (several lines); JSON output keeps the
 exact text. Escapes are written the way Python writes them (``\\x1b``,
 ``\\n``, ``\\u202e``), so what is shown can be searched for.
+
+JSON keeps the exact text, with one exception it cannot avoid: a path that is
+not UTF-8 (its undecodable bytes held as lone surrogates) cannot be written as
+UTF-8 JSON. :func:`json_path` then gives ``path`` with each such byte written
+``\\xNN`` (as a terminal shows it) and adds ``path_bytes``, the path's exact
+bytes in base64 (RFC 4648), so nothing is lost.
 """
 
 from __future__ import annotations
 
+import base64
 import re
 
 # C0 controls, DEL, C1 controls, lone surrogates (undecodable bytes of a file
@@ -43,3 +50,14 @@ def printable(text: str) -> str:
 def printable_block(text: str) -> str:
     """``text`` for a terminal, keeping its newlines and tabs (code, a docstring)."""
     return _UNSAFE_IN_BLOCK.sub(_escape, text.replace("\r\n", "\n"))
+
+
+def json_path(path: str) -> dict[str, str]:
+    """The JSON fields of a path: ``{"path": ...}``, plus ``path_bytes`` when not UTF-8."""
+    try:
+        path.encode("utf-8")
+    except UnicodeEncodeError:
+        raw = path.encode("utf-8", "surrogateescape")
+        shown = re.sub("[\udc80-\udcff]", _escape, path)
+        return {"path": shown, "path_bytes": base64.b64encode(raw).decode("ascii")}
+    return {"path": path}

@@ -8,6 +8,8 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
+from codeseek.display import json_path
+
 
 @dataclass(frozen=True)
 class SearchHit:
@@ -42,11 +44,12 @@ class SearchHit:
     unit_id: int
 
     def to_json(self) -> dict[str, object]:
-        """The JSON Lines record of this hit."""
+        """The JSON Lines record of this hit (a path that is not UTF-8: see
+        :func:`~codeseek.display.json_path`)."""
         return {
             "query": self.query, "rank": self.rank, "score": round(self.score, 6),
             "similarity": None if self.similarity is None else round(self.similarity, 6),
-            "path": self.path, "start_line": self.start_line, "end_line": self.end_line,
+            **json_path(self.path), "start_line": self.start_line, "end_line": self.end_line,
             "language": self.language, "kind": self.kind, "name": self.name,
             "qualname": self.qualname, "signature": self.signature,
             "doc_summary": self.doc_summary, "snippet": self.snippet,

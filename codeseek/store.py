@@ -7,6 +7,15 @@ embedded twice), ``units_fts`` (FTS5 over identifier-split names, signature,
 doc and code) and ``skipped`` (files left out, with their reason). The
 database runs in WAL mode; every change is one transaction. sqlite3 errors
 are translated here into codeseek's own.
+
+Paths are stored losslessly. A file name that is not UTF-8 reaches codeseek
+as text holding lone surrogates (Python's ``surrogateescape``), which SQLite's
+TEXT cannot hold; such a path (and the unit ids made from it) is stored as a
+BLOB of the file system's own bytes and read back as the same text
+(:func:`to_column`, :func:`from_column`). Every other path stays TEXT, so an
+index of UTF-8 names is unchanged. Skipping such files instead would lose code
+a user can open and edit; escaping them into TEXT would make two names read
+the same.
 """
 
 from __future__ import annotations
@@ -90,6 +99,20 @@ class StoredUnit:
     id: int
     unit: CodeUnit
     content_hash: str
+
+
+def to_column(text: str) -> str | bytes:
+    """A path or unit id as stored: itself, or its bytes when it is not UTF-8."""
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return text.encode("utf-8", "surrogateescape")
+    return text
+
+
+def from_column(value: str | bytes) -> str:
+    """The text of a stored path or unit id (the inverse of :func:`to_column`)."""
+    return value.decode("utf-8", "surrogateescape") if isinstance(value, bytes) else value
 
 
 def _translate(exc: sqlite3.Error, path: Path) -> Exception:
@@ -222,7 +245,10 @@ class Store:
     def file_rows(self) -> dict[str, FileRow]:
         """Every indexed file, by path."""
         rows = self._query("SELECT id, path, language, size, mtime_ns, sha256 FROM files")
-        return {row[1]: FileRow(*row) for row in rows}
+        found: dict[str, FileRow] = {}
+        for row_id, path, *rest in rows:
+            found[from_column(path)] = FileRow(row_id, from_column(path), *rest)
+        return found
 
     def touch_file(self, file_id: int, size: int, mtime_ns: int) -> None:
         """Record a new size and mtime for a file whose content did not change."""
@@ -237,14 +263,14 @@ class Store:
                ON CONFLICT(path) DO UPDATE SET language=excluded.language, size=excluded.size,
                  mtime_ns=excluded.mtime_ns, sha256=excluded.sha256,
                  has_errors=excluded.has_errors, indexed_at=excluded.indexed_at""",
-            (path, language, size, mtime_ns, sha256, int(has_errors), time.time()),
+            (to_column(path), language, size, mtime_ns, sha256, int(has_errors), time.time()),
         )
-        return int(self._query("SELECT id FROM files WHERE path=?", (path,))[0][0])
+        return int(self._query("SELECT id FROM files WHERE path=?", (to_column(path),))[0][0])
 
     def unit_keys_of_file(self, file_id: int) -> dict[str, tuple[int, str]]:
         """uid -> (row id, content hash) for one file's units."""
         rows = self._query("SELECT uid, id, content_hash FROM units WHERE file_id=?", (file_id,))
-        return {uid: (uid_id, digest) for uid, uid_id, digest in rows}
+        return {from_column(uid): (uid_id, digest) for uid, uid_id, digest in rows}
 
     def insert_unit(self, file_id: int, unit: CodeUnit, content_hash: str,
                     lexical_code: str | None = None) -> int:
@@ -258,7 +284,7 @@ class Store:
             """INSERT INTO units (file_id, uid, kind, name, qualname, signature, doc, start_line,
                  end_line, code, doc_start, doc_end, ordinal, content_hash)
                VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
-            (file_id, unit.uid, unit.kind, unit.name, unit.qualname, unit.signature, unit.doc,
+            (file_id, to_column(unit.uid), unit.kind, unit.name, unit.qualname, unit.signature, unit.doc,
              unit.start_line, unit.end_line, unit.code, doc_start, doc_end, unit.ordinal,
              content_hash),
         )
@@ -313,7 +339,8 @@ class Store:
     def replace_skipped(self, skipped: Iterable[tuple[str, str]]) -> None:
         """Record the files left out by the latest scan."""
         self._exec("DELETE FROM skipped")
-        self._db.executemany("INSERT OR REPLACE INTO skipped VALUES (?, ?)", list(skipped))
+        self._db.executemany("INSERT OR REPLACE INTO skipped VALUES (?, ?)",
+                             [(to_column(path), reason) for path, reason in skipped])
 
     def skipped_counts(self) -> dict[str, int]:
         """Files left out by the latest scan, counted by reason."""
@@ -389,7 +416,7 @@ class Store:
                 f"WHERE u.id IN ({','.join('?' * len(chunk))})",
                 chunk,
             )
-            found.update((int(row_id), path) for row_id, path in rows)
+            found.update((int(row_id), from_column(path)) for row_id, path in rows)
         return found
 
     # -- vectors -------------------------------------------------------------------
@@ -462,7 +489,7 @@ def _stored_unit(row: tuple) -> StoredUnit:
     (row_id, path, language, kind, name, qualname, signature, doc, start, end, code,
      doc_start, doc_end, ordinal, content_hash) = row
     unit = CodeUnit(
-        path=path, language=language, kind=kind, name=name, qualname=qualname,
+        path=from_column(path), language=language, kind=kind, name=name, qualname=qualname,
         signature=signature, doc=doc, start_line=start, end_line=end, code=code,
         doc_span=(doc_start, doc_end) if doc_start is not None else None, ordinal=ordinal,
     )
