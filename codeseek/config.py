@@ -94,11 +94,17 @@ def load_settings(
             return env[env_name]
         return file_values.get(key)
 
+    def where(env_name: str, key: str) -> str:
+        """Where a setting came from, for its error message."""
+        return env_name if env.get(env_name) else f"{root / CONFIG_FILE_NAME}: {key}"
+
     chosen_index = pick(index_dir, "CODESEEK_INDEX_DIR", "index_dir")
+    _check_path(chosen_index, where("CODESEEK_INDEX_DIR", "index_dir"))
     index_path = (
         _resolve_against(root, chosen_index) if chosen_index else root / INDEX_DIR_NAME
     )
     chosen_model = pick(model, "CODESEEK_MODEL", "model")
+    _check_path(chosen_model, where("CODESEEK_MODEL", "model"))
     chosen_backend = str(pick(backend, "CODESEEK_BACKEND", "backend") or DEFAULT_BACKEND)
     if chosen_backend not in BACKENDS:
         raise ConfigError(
@@ -113,11 +119,14 @@ def load_settings(
         index_dir=index_path,
         model=_resolve_against(root, chosen_model) if chosen_model else None,
         backend=chosen_backend,
-        max_file_bytes=_positive_int(max_bytes, "max_file_bytes", DEFAULT_MAX_FILE_BYTES),
+        max_file_bytes=_positive_int(max_bytes, where("CODESEEK_MAX_FILE_BYTES",
+                                                      "max_file_bytes"),
+                                     DEFAULT_MAX_FILE_BYTES),
         exclude=tuple(exclude),
         include_vendored=bool(file_values.get("include_vendored", False)),
         batch_size=_positive_int(
-            file_values.get("batch_size"), "batch_size", DEFAULT_BATCH_SIZE
+            file_values.get("batch_size"), f"{root / CONFIG_FILE_NAME}: batch_size",
+            DEFAULT_BATCH_SIZE
         ),
         cache_dir=default_cache_dir(env),
     )
@@ -128,15 +137,30 @@ def _resolve_against(root: Path, value: str | os.PathLike[str]) -> Path:
     return path if path.is_absolute() else (Path.cwd() / path).resolve()
 
 
+MAX_SETTING_INT = 2**40  # 1 TiB: far above any real limit, far below what read() takes
+
+
+def _check_path(value: Any, name: str) -> None:
+    """A folder setting must be text (TOML gives numbers and tables as they are)."""
+    if value is not None and not isinstance(value, str | os.PathLike):
+        raise ConfigError(f"{name} must be a folder path in quotes, not {value!r}")
+
+
 def _positive_int(value: Any, name: str, default: int) -> int:
+    """A whole number from 1 to MAX_SETTING_INT; a float such as 2.5 or 1e99 is refused,
+    never truncated (``int(2.5)`` would make a 2-byte file limit)."""
     if value is None or value == "":
         return default
+    if isinstance(value, bool) or not isinstance(value, int | str):
+        raise ConfigError(f"{name} must be a whole number, not {value!r}")
     try:
         number = int(value)
-    except (TypeError, ValueError):
+    except ValueError:
         raise ConfigError(f"{name} must be a whole number, not {value!r}") from None
     if number <= 0:
         raise ConfigError(f"{name} must be positive, not {number}")
+    if number > MAX_SETTING_INT:
+        raise ConfigError(f"{name} must be at most {MAX_SETTING_INT}, not {number}")
     return number
 
 
@@ -146,6 +170,9 @@ def _read_config_file(path: Path) -> dict[str, Any]:
             data = tomllib.load(handle)
     except FileNotFoundError:
         return {}
+    except UnicodeDecodeError as exc:  # TOML is UTF-8 by definition (toml.io, v1.0.0)
+        raise ConfigError(f"{path}: cannot read settings: not UTF-8 text (byte "
+                          f"0x{exc.object[exc.start]:02x} at offset {exc.start})") from None
     except (OSError, tomllib.TOMLDecodeError) as exc:
         raise ConfigError(f"{path}: cannot read settings: {exc}") from exc
     section = data.get("codeseek", data)

@@ -373,4 +373,18 @@ def load_embedder(settings: Settings) -> Embedder:
     fingerprint = model_fingerprint(folder, settings.cache_dir)
     if settings.backend == "torch":
         return TorchEmbedder(folder, fingerprint, settings.batch_size)
+    if not onnx_path(settings.cache_dir, fingerprint).exists():
+        _check_cache_folder(onnx_path(settings.cache_dir, fingerprint).parent, settings.cache_dir)
     return OnnxEmbedder(folder, fingerprint, settings.cache_dir, settings.batch_size)
+
+
+def _check_cache_folder(folder: Path, cache_dir: Path) -> None:
+    """Make the folder the ONNX export goes to, or say clearly why it cannot be made."""
+    try:
+        folder.mkdir(parents=True, exist_ok=True)
+        with tempfile.TemporaryFile(dir=folder):
+            pass
+    except OSError as exc:
+        raise ModelUnavailable(
+            f"{cache_dir}: cannot write the model cache folder ({exc.strerror or exc}); "
+            "set CODESEEK_CACHE_DIR to a folder you can write") from exc
