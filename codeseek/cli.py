@@ -18,6 +18,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
 from codeseek import __version__
+from codeseek.display import json_path, printable, printable_block
 from codeseek.errors import CodeseekError, IndexLocked, InvalidQuery, RepositoryNotFound
 
 if TYPE_CHECKING:
@@ -207,7 +208,7 @@ def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
             summary = _update_with_bar(index, err)
     print(format_summary(summary), file=out)
     for path in summary.syntax_warnings[:20]:
-        print(f"warning: {path}: syntax errors; indexed the units that could be recovered",
+        print(f"warning: {printable(path)}: syntax errors; indexed the units that could be recovered",
               file=err)
     if len(summary.syntax_warnings) > 20:
         print(f"warning: {len(summary.syntax_warnings) - 20} more files with syntax errors "
@@ -272,7 +273,7 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         raise InvalidQuery("give a QUERY or --batch FILE, not both")
     from codeseek.client import DaemonUnavailable
 
-    queries = _read_batch(args.batch) if args.batch is not None else [args.query]
+    queries = _read_batch(args.batch) if args.batch is not None else [_query_text(args.query)]
     options = {"languages": args.lang, "paths": args.path, "kinds": args.kind}
     results: list[list[SearchHit]] | None = None
     client = _daemon_client(args.repo, args)
@@ -296,11 +297,43 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     return EXIT_OK
 
 
-def _read_batch(source: str) -> list[str]:
+def _query_text(query: str) -> str:
+    """The query argument; one holding bytes that are not UTF-8 (kept by Python as
+    lone surrogates) is refused, since no index text could match them."""
     try:
-        text = sys.stdin.read() if source == "-" else Path(source).read_text(encoding="utf-8")
-    except (OSError, UnicodeDecodeError) as exc:
+        query.encode("utf-8")
+    except UnicodeEncodeError as exc:
+        raise InvalidQuery(f"the query is not valid UTF-8 text: {printable(query)} "
+                           f"(character {exc.start + 1})") from None
+    return query
+
+
+def _read_batch(source: str) -> list[str]:
+    """The queries of a batch file or of stdin (``-``): UTF-8 text, one per line.
+
+    The bytes are decoded here, not by the locale's text layer, so binary input
+    is refused the same way on every system; a closed stdin is an error too.
+    """
+    try:
+        if source == "-":
+            if sys.stdin is None or sys.stdin.closed:
+                raise InvalidQuery("-: cannot read the batch: standard input is closed")
+            stream = getattr(sys.stdin, "buffer", None)
+            data = stream.read() if stream is not None else sys.stdin.read()
+        else:
+            data = Path(source).read_bytes()
+    except OSError as exc:
         raise InvalidQuery(f"{source}: cannot read the batch file: {exc}") from exc
+    if isinstance(data, str):  # a text stream stood in for stdin (tests)
+        data = data.encode("utf-8", "surrogateescape")
+    try:
+        text = data.decode("utf-8")
+    except UnicodeDecodeError as exc:
+        raise InvalidQuery(f"{source}: cannot read the batch: not UTF-8 text (byte "
+                           f"0x{data[exc.start]:02x} at offset {exc.start})") from None
+    if "\0" in text:
+        raise InvalidQuery(f"{source}: cannot read the batch: it holds a NUL byte "
+                           f"(at offset {data.index(0)}); give one query per line as text")
     return [line.strip() for line in text.splitlines() if line.strip()]
 
 
@@ -313,12 +346,13 @@ def _print_hits(hits: Sequence[SearchHit], out: TextIO) -> None:
     if not hits:
         print("no matches; try other words or fewer filters", file=out)
         return
-    for hit in hits:
-        print(f"{hit.rank:>2}. {hit.qualname}  [{hit.kind}, {hit.language}]  "
-              f"{hit.path}:{hit.start_line}", file=out)
+    for hit in hits:  # repository text is escaped: shown, never obeyed by the terminal
+        print(f"{hit.rank:>2}. {printable(hit.qualname)}  [{hit.kind}, {hit.language}]  "
+              f"{printable(hit.path)}:{hit.start_line}", file=out)
         if hit.doc_summary:
-            print(f"    {_clip(hit.doc_summary, 100)}", file=out)
-        for number, line in enumerate(hit.snippet.splitlines()[:3], hit.start_line):
+            print(f"    {_clip(printable(hit.doc_summary), 100)}", file=out)
+        lines = printable_block(hit.snippet.rstrip("\n")).split("\n")
+        for number, line in enumerate(lines[:3], hit.start_line):
             print(f"    {number:>5} | {_clip(line, 90)}", file=out)
         print(file=out)
 
@@ -349,9 +383,11 @@ def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         return EXIT_OK
     updated = (time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(status.updated_at))
                if status.updated_at else "never")
-    print(f"repository   {status.repo}", file=out)
-    print(f"index        {status.index_dir} ({status.bytes_on_disk / 1e6:.1f} MB)", file=out)
-    print(f"model        {status.model_id or 'none yet'} ({status.dim or '-'} dimensions)",
+    print(f"repository   {printable(str(status.repo))}", file=out)
+    print(f"index        {printable(str(status.index_dir))} "
+          f"({status.bytes_on_disk / 1e6:.1f} MB)", file=out)
+    print(f"model        {printable(status.model_id or 'none yet')} "
+          f"({status.dim or '-'} dimensions)",
           file=out)
     print(f"contents     {status.files} files, {status.units} units", file=out)
     for language, count in sorted(status.languages.items()):
@@ -373,7 +409,7 @@ def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
               f"{daemon['watcher']}, {daemon['pending']} changes pending, last update {last}",
               file=out)
         if daemon["last_error"]:
-            print(f"             last error: {daemon['last_error']}", file=out)
+            print(f"             last error: {printable(str(daemon['last_error']))}", file=out)
     if status.skipped:
         print("left out", file=out)
         for reason, count in sorted(status.skipped.items(), key=lambda kv: -kv[1]):
@@ -402,15 +438,15 @@ def cmd_outline(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     for unit in outline_path(Path(args.path)):
         if args.json:
             record = {
-                "path": unit.path, "language": unit.language, "kind": unit.kind,
+                **json_path(unit.path), "language": unit.language, "kind": unit.kind,
                 "name": unit.name, "qualname": unit.qualname, "signature": unit.signature,
                 "start_line": unit.start_line, "end_line": unit.end_line,
                 "has_doc": bool(unit.doc), "doc_summary": unit.doc_summary,
             }
             out.write(json.dumps(record, ensure_ascii=False) + "\n")
         else:
-            out.write(f"{unit.path}:{unit.start_line}-{unit.end_line} {unit.kind} "
-                      f"{unit.qualname}\n")
+            out.write(f"{printable(unit.path)}:{unit.start_line}-{unit.end_line} {unit.kind} "
+                      f"{printable(unit.qualname)}\n")
     return EXIT_OK
 
 
@@ -418,7 +454,7 @@ def cmd_watch(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     from codeseek.daemon import run_foreground
 
     def log(message: str) -> None:
-        print(message, file=err, flush=True)
+        print(printable(message), file=err, flush=True)  # log lines may quote file names
 
     with _open(args.path, args, create=True) as index:
         run_foreground(index, log, poll=args.poll)
@@ -467,7 +503,7 @@ def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     finally:
         app.close_searcher()
     for place in app.locations:
-        print(place, file=out)
+        print(printable(place), file=out)
     return EXIT_ERROR if app.return_code else EXIT_OK
 
 
@@ -512,11 +548,22 @@ def _split_arguments(parser: argparse.ArgumentParser) -> None:
     parser.add_argument("--holdout", type=float, metavar="SHARE",
                         help="share of the documented units held out (default: 0.2, or the "
                              "adapter's)")
-    parser.add_argument("--seed", type=int, metavar="N",
+    parser.add_argument("--seed", type=_seed, metavar="N",
                         help="changes which units are held out (default: 0, or the adapter's)")
     parser.add_argument("--by-file", action="store_true", default=None,
                         help="hold out whole files, so no held-out unit shares a file with a "
                              "training unit")
+
+
+def _seed(text: str) -> int:
+    """A split seed: a whole number, 0 or more (the split hashes it; numpy needs it >= 0)."""
+    try:
+        value = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"must be a whole number, not {text!r}") from None
+    if value < 0:
+        raise argparse.ArgumentTypeError(f"must be 0 or more, not {value}")
+    return value
 
 
 def _one_repo(args: argparse.Namespace) -> str | None:
@@ -578,7 +625,7 @@ def main(argv: Sequence[str] | None = None, out: TextIO | None = None,
     try:
         return COMMANDS[args.command](args, out, err)
     except CodeseekError as exc:
-        print(f"error: {exc}", file=err)
+        print(f"error: {printable(str(exc))}", file=err)  # it may quote a file name
         return EXIT_ERROR
     except KeyboardInterrupt:
         print("error: interrupted; the index keeps what was committed", file=err)

@@ -9,6 +9,35 @@ read-only folders; a property-based sweep over random bytes.
 
 from __future__ import annotations
 
+import base64
+import io
+import json
+import os
+import sqlite3
+import subprocess
+import sys
+import tempfile
+from pathlib import Path
+
+import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
+
+from codeseek.cli import main
+from codeseek.display import printable
+
+
+def run_cli(*argv: str) -> tuple[int, str, str]:
+    """One command through codeseek.cli.main, its stdout and stderr as text."""
+    out, err = io.StringIO(), io.StringIO()
+    code = main(list(argv), out=out, err=err)
+    return code, out.getvalue(), err.getvalue()
+
+
+def index_quietly(repo: Path, *extra: str) -> None:
+    code, _out, err = run_cli("index", str(repo), "--backend", "fake", "-q", *extra)
+    assert code == 0, err
+
 # == the index folder: nothing written outside the repository and its index ==
 
 
@@ -16,17 +45,358 @@ from __future__ import annotations
 
 # == terminal output: control characters escaped, JSON exact ==
 
+# The sequence sets the window title (OSC 0, ended by BEL) and clears the screen
+# (CSI 2 J): ECMA-48 / xterm's control sequences.
+HOSTILE = "\x1b]0;pwned\x07\x1b[2J"
+HOSTILE_SHOWN = "\\x1b]0;pwned\\x07\\x1b[2J"
 
+
+@pytest.fixture
+def hostile_repo(sample_copy: Path) -> Path:
+    """sample_repo plus a docstring, a file name and a folder name holding escapes."""
+    folder = sample_copy / "python" / f"den{HOSTILE}"
+    folder.mkdir()
+    (folder / f"gate{HOSTILE}.py").write_text(
+        f'def unlock_gate():\n    """Unlock the gate {HOSTILE} of a dock."""\n    return 1\n',
+        encoding="utf-8")
+    (sample_copy / "python" / "new\nline.py").write_text(
+        'def newline_named():\n    """A unit in a file whose name holds a newline."""\n'
+        "    return 2\n", encoding="utf-8")
+    return sample_copy
+
+
+def test_plain_search_shows_escapes_instead_of_sending_them(hostile_repo: Path) -> None:
+    index_quietly(hostile_repo)
+    code, out, err = run_cli("search", "unlock the gate of a dock", "--repo", str(hostile_repo),
+                             "--backend", "fake", "-k", "1")
+    assert code == 0, err
+    assert "\x1b" not in out and "\x07" not in out
+    assert out.splitlines()[0] == (f" 1. unlock_gate  [function, python]  "
+                                   f"python/den{HOSTILE_SHOWN}/gate{HOSTILE_SHOWN}.py:1")
+    assert out.splitlines()[1] == f"    Unlock the gate {HOSTILE_SHOWN} of a dock."
+
+
+def test_search_json_keeps_the_exact_text(hostile_repo: Path) -> None:
+    index_quietly(hostile_repo)
+    code, out, err = run_cli("search", "unlock the gate of a dock", "--repo", str(hostile_repo),
+                             "--backend", "fake", "-k", "1", "--json")
+    assert code == 0, err
+    (line,) = out.splitlines()
+    record = json.loads(line)
+    assert record["path"] == f"python/den{HOSTILE}/gate{HOSTILE}.py"
+    assert record["doc_summary"] == f"Unlock the gate {HOSTILE} of a dock."
+    assert "\x1b" not in line  # json.dumps writes control characters as \u001b (RFC 8259)
+
+
+def test_outline_plain_escapes_and_keeps_one_line_per_unit(hostile_repo: Path) -> None:
+    code, out, err = run_cli("outline", str(hostile_repo / "python"))
+    assert code == 0, err
+    assert "\x1b" not in out and "\x07" not in out
+    lines = out.splitlines()
+    assert f"{hostile_repo.as_posix()}/python/den{HOSTILE_SHOWN}/gate{HOSTILE_SHOWN}.py:1-3 " \
+           "function unlock_gate" in lines
+    assert f"{hostile_repo.as_posix()}/python/new\\nline.py:1-3 function newline_named" in lines
+    code, json_out, _ = run_cli("outline", str(hostile_repo / "python"), "--json")
+    records = [json.loads(line) for line in json_out.splitlines()]
+    assert len(records) == len(lines)  # one record per unit, both ways
+    assert f"{hostile_repo.as_posix()}/python/new\nline.py" in {r["path"] for r in records}
+
+
+def test_a_newline_in_a_file_name_stays_one_search_record(hostile_repo: Path) -> None:
+    index_quietly(hostile_repo)
+    argv = ("search", "a file whose name holds a newline", "--repo", str(hostile_repo),
+            "--backend", "fake", "-k", "3")
+    code, out, err = run_cli(*argv)
+    assert code == 0, err
+    assert out.splitlines()[0] == " 1. newline_named  [function, python]  python/new\\nline.py:1"
+    code, out, err = run_cli(*argv, "--json")
+    lines = out.splitlines()
+    assert len(lines) == 3  # JSON Lines: the newline inside the name is written \n
+    assert json.loads(lines[0])["path"] == "python/new\nline.py"
+
+
+def test_status_escapes_the_folder_names_it_shows(tmp_path: Path) -> None:
+    repo = tmp_path / f"fleet{HOSTILE}"
+    (repo / "python").mkdir(parents=True)
+    (repo / "python" / "dock.py").write_text("def dock():\n    return 1\n", encoding="utf-8")
+    index_quietly(repo)
+    code, out, err = run_cli("status", str(repo))
+    assert code == 0, err
+    assert "\x1b" not in out
+    assert out.splitlines()[0] == f"repository   {printable(str(repo.resolve()))}"
+    assert HOSTILE_SHOWN in out.splitlines()[0]
+
+
+def test_error_and_warning_lines_escape_file_names(sample_copy: Path) -> None:
+    code, out, err = run_cli("outline", str(sample_copy / f"gone{HOSTILE}.py"))
+    assert code == 1
+    assert err == f"error: {sample_copy.as_posix()}/gone{HOSTILE_SHOWN}.py: no such file or folder\n"
+    (sample_copy / "python" / f"broken{HOSTILE}.py").write_text(
+        "def broken(:\n    return 1\n", encoding="utf-8")
+    code, out, err = run_cli("index", str(sample_copy), "--backend", "fake", "-q")
+    assert code == 0
+    assert err == (f"warning: python/broken{HOSTILE_SHOWN}.py: syntax errors; indexed the "
+                   "units that could be recovered\n")
 
 
 # == file names and bytes: non-UTF-8 names, newlines in names ==
 
+# A Latin-1 name: b"\xe9" is "é" in Latin-1 and not UTF-8 on its own (a lead byte
+# with no continuation byte, RFC 3629). Python gives it as the lone surrogate
+# "\udce9" (PEP 383); codeseek stores its bytes and shows it as "\xe9".
+LATIN1_FILE = b"tarif\xe9.py"
+LATIN1_FOLDER = b"dossi\xe9r"
 
+
+@pytest.fixture
+def latin1_repo(sample_copy: Path) -> Path:
+    """sample_repo plus a file and a folder whose names are not UTF-8."""
+    python = os.fsencode(sample_copy / "python")
+    with open(os.path.join(python, LATIN1_FILE), "wb") as handle:
+        handle.write(b'def tariff_for_zone():\n    """Work out the tariff of a zone."""\n'
+                     b"    return 2\n")
+    os.mkdir(os.path.join(python, LATIN1_FOLDER))
+    with open(os.path.join(python, LATIN1_FOLDER, b"inner.py"), "wb") as handle:
+        handle.write(b'def inner_helper():\n    """A helper inside the folder."""\n'
+                     b"    return 3\n")
+    return sample_copy
+
+
+def _stored(index_dir: Path) -> dict[str, object]:
+    """Everything an index holds of files, units and their vectors, read with sqlite3."""
+    db = sqlite3.connect(index_dir / "index.sqlite3")
+    try:
+        files = sorted(db.execute("SELECT path, language, sha256 FROM files").fetchall(),
+                       key=repr)
+        units = sorted(db.execute(
+            "SELECT f.path, u.uid, u.kind, u.qualname, u.start_line, u.end_line, u.code, "
+            "u.content_hash, v.vector FROM units u JOIN files f ON f.id = u.file_id "
+            "LEFT JOIN vectors v ON v.content_hash = u.content_hash").fetchall(), key=repr)
+        skipped = sorted(db.execute("SELECT path, reason FROM skipped").fetchall(), key=repr)
+    finally:
+        db.close()
+    return {"files": files, "units": units, "skipped": skipped}
+
+
+def test_non_utf8_names_index_and_every_other_file_too(latin1_repo: Path, tmp_path: Path
+                                                       ) -> None:
+    from conftest import SAMPLE_REPO
+    code, out, err = run_cli("index", str(latin1_repo), "--backend", "fake", "-q")
+    assert code == 0, err
+    fresh = tmp_path / "plain-index"
+    index_quietly(SAMPLE_REPO, "--index-dir", str(fresh))
+    stored = _stored(latin1_repo / ".codeseek")
+    plain = _stored(fresh)
+    assert set(plain["files"]) < set(stored["files"])  # every ordinary file is indexed
+    extra = {row[0] for row in set(stored["files"]) - set(plain["files"])}
+    # kept as the file system's own bytes (SQLite BLOBs), not as mangled text
+    assert extra == {b"python/" + LATIN1_FILE, b"python/" + LATIN1_FOLDER + b"/inner.py"}
+    code, status_out, err = run_cli("status", str(latin1_repo))
+    assert code == 0, err
+    sample_files = len(plain["files"])
+    assert f"contents     {sample_files + 2} files" in status_out
+    code, again, err = run_cli("index", str(latin1_repo), "--backend", "fake", "-q")
+    assert again.startswith(f"indexed {sample_files + 2} files, ")
+    assert ": 0 added, 0 changed, 0 removed, 0 embedded," in again  # nothing seen as new
+
+
+def test_a_hit_in_a_non_utf8_file_is_shown_escaped_and_json_stays_utf8(latin1_repo: Path
+                                                                      ) -> None:
+    index_quietly(latin1_repo)
+    argv = ("search", "the tariff of a zone", "--repo", str(latin1_repo), "--backend", "fake",
+            "-k", "1")
+    code, out, err = run_cli(*argv)
+    assert code == 0, err
+    assert out.splitlines()[0] == (" 1. tariff_for_zone  [function, python]  "
+                                   "python/tarif\\xe9.py:1")
+    code, out, err = run_cli(*argv, "--json")
+    assert code == 0, err
+    out.encode("utf-8")  # no lone surrogate reaches the output: it can be written as UTF-8
+    record = json.loads(out)
+    assert record["path"] == "python/tarif\\xe9.py"
+    assert base64.b64decode(record["path_bytes"]) == b"python/" + LATIN1_FILE
+    # the path names the real file: the bytes open it
+    assert os.path.exists(os.path.join(os.fsencode(latin1_repo), base64.b64decode(
+        record["path_bytes"])))
+
+
+def test_outline_of_a_tree_with_non_utf8_names(latin1_repo: Path) -> None:
+    code, out, err = run_cli("outline", str(latin1_repo / "python"))
+    assert code == 0, err
+    lines = out.splitlines()
+    base = (latin1_repo / "python").as_posix()
+    assert f"{base}/tarif\\xe9.py:1-3 function tariff_for_zone" in lines
+    assert f"{base}/dossi\\xe9r/inner.py:1-3 function inner_helper" in lines
+    code, out, err = run_cli("outline", str(latin1_repo / "python"), "--json")
+    assert code == 0, err
+    out.encode("utf-8")
+    records = {r["qualname"]: r for r in map(json.loads, out.splitlines())}
+    assert base64.b64decode(records["inner_helper"]["path_bytes"]) == os.fsencode(
+        f"{base}/") + LATIN1_FOLDER + b"/inner.py"
+    assert "path_bytes" not in records["triage_priority"]  # UTF-8 names: only "path"
+    code, out, err = run_cli("outline", os.fsdecode(os.path.join(
+        os.fsencode(latin1_repo / "python"), LATIN1_FILE)))
+    assert (code, out) == (0, f"{base}/tarif\\xe9.py:1-3 function tariff_for_zone\n"), err
+
+
+def test_the_watcher_path_takes_non_utf8_names(latin1_repo: Path) -> None:
+    from codeseek import FakeEmbedder, open_index
+    from codeseek.watch import Watcher
+
+    index_quietly(latin1_repo)
+    with open_index(latin1_repo, embedder=FakeEmbedder()) as index:
+        watcher = Watcher(index)  # not started: events are handed to it as watchdog would
+        python = os.fsencode(latin1_repo / "python")
+        added = os.path.join(python, b"zone\xff.py")
+        with open(added, "wb") as handle:
+            handle.write(b"def zone_fare():\n    return 4\n")
+        os.remove(os.path.join(python, LATIN1_FILE))
+        os.mkdir(os.path.join(python, b"d\xfe"))
+        with open(os.path.join(python, b"d\xfe", b"x.py"), "wb") as handle:
+            handle.write(b"def deep_fare():\n    return 5\n")
+        for path in (added, os.path.join(python, LATIN1_FILE), os.path.join(python, b"d\xfe")):
+            watcher.notice(path)  # bytes, as watchdog hands them on
+        watcher.notice(os.fsdecode(added))  # and text
+        summary = watcher.apply(watcher.queue.take(timeout=1.0, debounce=0.0))
+        assert watcher.state.last_error is None
+        assert summary is not None and (summary.added, summary.removed) == (2, 1)
+        paths = {hit.path for hit in index.search("zone fare deep fare", 20)}
+    assert {"python/zone\udcff.py", "python/d\udcfe/x.py"} <= paths
+    assert "python/tarif\udce9.py" not in paths
+    fresh = latin1_repo.parent / "fresh-index"
+    index_quietly(latin1_repo, "--index-dir", str(fresh))
+    ours, theirs = _stored(latin1_repo / ".codeseek"), _stored(fresh)
+    assert ours["files"] == theirs["files"] and ours["units"] == theirs["units"]
+
+
+def test_the_daemon_wire_format_keeps_a_non_utf8_path() -> None:
+    import dataclasses
+
+    from codeseek.hits import SearchHit
+
+    hit = SearchHit(query="q", rank=1, score=1.0, similarity=None, path="a/tarif\udce9.py",
+                    start_line=1, end_line=2, language="python", kind="function", name="f",
+                    qualname="f", signature="def f():", doc_summary="", snippet="", unit_id=1)
+    # the daemon sends json.dumps(asdict(hit)) (ASCII escapes), the client rebuilds the hit
+    wire = json.dumps(dataclasses.asdict(hit)).encode("utf-8")
+    assert SearchHit(**json.loads(wire)) == hit
 
 
 # == configuration and command-line values ==
 
 
+@pytest.fixture
+def indexed_copy(sample_copy: Path) -> Path:
+    index_quietly(sample_copy)
+    return sample_copy
+
+
+def _search_batch_from(monkeypatch: pytest.MonkeyPatch, repo: Path, stdin: object
+                       ) -> tuple[int, str, str]:
+    monkeypatch.setattr(sys, "stdin", stdin)
+    return run_cli("search", "--batch", "-", "--repo", str(repo), "--backend", "fake")
+
+
+def test_batch_from_binary_stdin(indexed_copy: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # the locale's text layer would hand these bytes on as surrogates (C.UTF-8) or fail
+    stdin = io.TextIOWrapper(io.BytesIO(b"\xff\xfe\x00dock\n"), encoding="utf-8",
+                             errors="surrogateescape")
+    assert _search_batch_from(monkeypatch, indexed_copy, stdin) == (
+        1, "", "error: -: cannot read the batch: not UTF-8 text (byte 0xff at offset 0)\n")
+    stdin = io.TextIOWrapper(io.BytesIO(b"dock\nbat\x00tery\n"), encoding="utf-8")
+    assert _search_batch_from(monkeypatch, indexed_copy, stdin) == (
+        1, "", "error: -: cannot read the batch: it holds a NUL byte (at offset 8); give one "
+               "query per line as text\n")
+
+
+def test_batch_file_that_is_not_utf8(indexed_copy: Path, tmp_path: Path) -> None:
+    batch = tmp_path / "queries.txt"
+    batch.write_bytes(b"dock battery\nstation caf\xe9\n")
+    assert run_cli("search", "--batch", str(batch), "--repo", str(indexed_copy),
+                   "--backend", "fake") == (
+        1, "", f"error: {batch}: cannot read the batch: not UTF-8 text (byte 0xe9 at offset "
+               "24)\n")  # 13 bytes of the first line, then "station caf"
+
+
+def test_batch_from_a_closed_stdin(indexed_copy: Path, monkeypatch: pytest.MonkeyPatch
+                                   ) -> None:
+    assert _search_batch_from(monkeypatch, indexed_copy, None) == (
+        1, "", "error: -: cannot read the batch: standard input is closed\n")
+    # the real thing: a shell closes fd 0 (`<&-`) and Python sets sys.stdin to None
+    result = subprocess.run(
+        [sys.executable, "-m", "codeseek", "search", "--batch", "-", "--backend", "fake"],
+        cwd=indexed_copy, stdin=subprocess.DEVNULL, capture_output=True, text=True,
+        preexec_fn=lambda: os.close(0), check=False)
+    assert (result.returncode, result.stderr) == (
+        1, "error: -: cannot read the batch: standard input is closed\n")
+
+
+def test_a_query_argument_that_is_not_utf8(indexed_copy: Path) -> None:
+    query = os.fsdecode(b"caf\xe9 dock")  # what sys.argv holds for those bytes (PEP 383)
+    assert run_cli("search", query, "--repo", str(indexed_copy), "--backend", "fake") == (
+        1, "", "error: the query is not valid UTF-8 text: caf\\xe9 dock (character 4)\n")
+
+
+@pytest.mark.parametrize("command", ["eval", "tune"])
+def test_a_negative_seed_is_a_usage_error(indexed_copy: Path, command: str,
+                                          capsys: pytest.CaptureFixture[str]) -> None:
+    with pytest.raises(SystemExit) as stop:
+        main([command, str(indexed_copy), "--seed", "-1", "--backend", "fake"])
+    assert stop.value.code == 2
+    err = capsys.readouterr().err
+    assert "Traceback" not in err
+    assert err.splitlines()[-1] == f"codeseek {command}: error: argument --seed: must be 0 or " \
+                                   "more, not -1"
+
+
+def _config_error(repo: Path, toml: bytes) -> tuple[int, str, str]:
+    (repo / "codeseek.toml").write_bytes(toml)
+    return run_cli("index", str(repo), "--backend", "fake", "-q")
+
+
+def test_a_codeseek_toml_that_is_not_utf8(sample_copy: Path) -> None:
+    # TOML files must be valid UTF-8 (the TOML v1.0.0 specification)
+    assert _config_error(sample_copy, b'exclude = ["caf\xe9/"]\n') == (
+        1, "", f"error: {sample_copy}/codeseek.toml: cannot read settings: not UTF-8 text "
+               "(byte 0xe9 at offset 15)\n")
+
+
+@pytest.mark.parametrize(("line", "message"), [
+    (b"index_dir = 5", "index_dir must be a folder path in quotes, not 5"),
+    (b"model = [1]", "model must be a folder path in quotes, not [1]"),
+    (b"max_file_bytes = 1e99", "max_file_bytes must be a whole number, not 1e+99"),
+    (b"max_file_bytes = 2.5", "max_file_bytes must be a whole number, not 2.5"),
+    (b"max_file_bytes = true", "max_file_bytes must be a whole number, not True"),
+    (b"max_file_bytes = 99999999999999999999",
+     "max_file_bytes must be at most 1099511627776, not 99999999999999999999"),
+    (b"batch_size = 0.5", "batch_size must be a whole number, not 0.5"),
+])
+def test_bad_values_in_codeseek_toml(sample_copy: Path, line: bytes, message: str) -> None:
+    assert _config_error(sample_copy, line + b"\n") == (
+        1, "", f"error: {sample_copy}/codeseek.toml: {message}\n")
+    assert not (sample_copy / ".codeseek").exists()  # nothing was written
+
+
+def test_a_bad_value_from_the_environment_names_the_variable(
+        sample_copy: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("CODESEEK_MAX_FILE_BYTES", "2.5")
+    assert run_cli("index", str(sample_copy), "--backend", "fake", "-q") == (
+        1, "", "error: CODESEEK_MAX_FILE_BYTES must be a whole number, not '2.5'\n")
+
+
+def test_an_uncreatable_cache_dir(indexed_copy: Path, tmp_path: Path,
+                                  monkeypatch: pytest.MonkeyPatch) -> None:
+    from codeseek.embed import default_model_dir_or_none
+
+    if default_model_dir_or_none() is None:
+        pytest.skip("the packaged model is not installed")
+    blocker = tmp_path / "a-file"
+    blocker.write_text("not a folder\n", encoding="utf-8")
+    monkeypatch.setenv("CODESEEK_CACHE_DIR", str(blocker / "cache"))
+    # the default backend (ONNX) exports the model into the cache folder on first use
+    assert run_cli("search", "dock battery", "--repo", str(indexed_copy)) == (
+        1, "", f"error: {blocker}/cache: cannot write the model cache folder (Not a "
+               "directory); set CODESEEK_CACHE_DIR to a folder you can write\n")
 
 
 # == the daemon: requests, locks, sockets, first build ==
@@ -40,3 +410,78 @@ from __future__ import annotations
 
 
 # == a property-based sweep over random bytes ==
+
+
+def _posix_name(raw: bytes) -> bytes | None:
+    """``raw`` as one file name a POSIX file system takes (no ``/``, no NUL), or None."""
+    name = raw.replace(b"/", b"_").replace(b"\0", b"_")[:200]
+    return None if name in (b"", b".", b"..") else name
+
+
+def _write_tree(root: bytes, names: list[bytes], start: int) -> None:
+    """A Python file per name (every other one inside a folder of that name)."""
+    for number, name in enumerate(names, start):
+        if number % 2:
+            folder = os.path.join(root, name)
+            if os.path.lexists(folder):
+                continue
+            os.mkdir(folder)
+            target = os.path.join(folder, b"unit.py")
+        else:
+            target = os.path.join(root, name + b".py")
+            if os.path.lexists(target):
+                continue
+        with open(target, "wb") as handle:
+            handle.write(b'def unit_%d():\n    """Dock %d of the sweep."""\n    return %d\n'
+                         % (number, number, number))
+
+
+def _check_run(argv: list[str]) -> None:
+    """One command: exit 0 and nothing on stderr, or exactly one ``error: ...`` line."""
+    code, out, err = run_cli(*argv)
+    out.encode("utf-8")  # nothing that cannot be written to a UTF-8 terminal or pipe
+    if code == 0:
+        assert err == "", (argv, err)
+    else:
+        assert code == 1, (argv, code, err)
+        assert len(err.splitlines()) == 1 and err.startswith("error: "), (argv, err)
+        err.encode("utf-8")
+
+
+_NAMES = st.lists(st.binary(min_size=1, max_size=16), max_size=6)
+
+
+@settings(max_examples=20, deadline=None,
+          suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
+@given(first=_NAMES, second=_NAMES, query=st.binary(max_size=24),
+       lines=st.lists(st.binary(max_size=24), max_size=4), as_json=st.booleans())
+def test_random_bytes_as_names_queries_and_batch_lines(
+        first: list[bytes], second: list[bytes], query: bytes, lines: list[bytes],
+        as_json: bool) -> None:
+    with tempfile.TemporaryDirectory() as temp:
+        repo = Path(temp) / "repo"
+        root = os.fsencode(repo)
+        os.mkdir(root)
+        (repo / "base.py").write_text('def base():\n    """The depot."""\n    return 0\n',
+                                      encoding="utf-8")
+        _write_tree(root, [n for n in map(_posix_name, first) if n], 1)
+        common = ["--backend", "fake"]
+        _check_run(["index", str(repo), "-q", *common])
+        _write_tree(root, [n for n in map(_posix_name, second) if n], 100)  # an update
+        _check_run(["index", str(repo), "-q", *common])
+        view = ["--json"] if as_json else []
+        # a query argument as sys.argv holds it (PEP 383); "--" keeps it positional
+        _check_run(["search", "--repo", str(repo), *common, *view, "--", os.fsdecode(query)])
+        batch = Path(temp) / "batch.txt"
+        batch.write_bytes(b"\n".join(lines))
+        _check_run(["search", "--batch", str(batch), "--repo", str(repo), *common])
+        _check_run(["outline", str(repo), *view])
+        _check_run(["status", str(repo)])
+        fresh = Path(temp) / "fresh-index"
+        _check_run(["index", str(repo), "-q", "--index-dir", str(fresh), *common])
+        ours, theirs = _stored(repo / ".codeseek"), _stored(fresh)
+        assert ours["files"] == theirs["files"] and ours["units"] == theirs["units"]
+        # an index kept outside sees the repository's own index folder as ignored files
+        theirs_skipped = [row for row in theirs["skipped"]
+                          if not str(row[0]).startswith(".codeseek/")]
+        assert ours["skipped"] == theirs_skipped
