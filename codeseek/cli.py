@@ -208,8 +208,8 @@ def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
             summary = _update_with_bar(index, err)
     print(format_summary(summary), file=out)
     for path in summary.syntax_warnings[:20]:
-        print(f"warning: {printable(path)}: syntax errors; indexed the units that could be recovered",
-              file=err)
+        print(f"warning: {printable(path)}: syntax errors; indexed the units that could be "
+              "recovered", file=err)
     if len(summary.syntax_warnings) > 20:
         print(f"warning: {len(summary.syntax_warnings) - 20} more files with syntax errors "
               "(see `codeseek status`)", file=err)
@@ -586,7 +586,7 @@ def cmd_eval(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if args.json:
         out.write(json.dumps(report.to_json(), ensure_ascii=False) + "\n")
     else:
-        print(report.to_text(), file=out)
+        print(printable_block(report.to_text()), file=out)  # it names the repository
     return EXIT_OK
 
 
@@ -602,7 +602,7 @@ def cmd_tune(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if args.json:
         out.write(json.dumps(report.to_json(), ensure_ascii=False) + "\n")
     else:
-        print(report.to_text(), file=out)
+        print(printable_block(report.to_text()), file=out)  # it names the repository
     return EXIT_OK
 
 

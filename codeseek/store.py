@@ -284,8 +284,8 @@ class Store:
             """INSERT INTO units (file_id, uid, kind, name, qualname, signature, doc, start_line,
                  end_line, code, doc_start, doc_end, ordinal, content_hash)
                VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
-            (file_id, to_column(unit.uid), unit.kind, unit.name, unit.qualname, unit.signature, unit.doc,
-             unit.start_line, unit.end_line, unit.code, doc_start, doc_end, unit.ordinal,
+            (file_id, to_column(unit.uid), unit.kind, unit.name, unit.qualname, unit.signature,
+             unit.doc, unit.start_line, unit.end_line, unit.code, doc_start, doc_end, unit.ordinal,
              content_hash),
         )
         row_id = int(cursor.lastrowid or 0)

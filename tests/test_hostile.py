@@ -127,10 +127,25 @@ def test_status_escapes_the_folder_names_it_shows(tmp_path: Path) -> None:
     assert HOSTILE_SHOWN in out.splitlines()[0]
 
 
+def test_the_eval_report_escapes_the_repository_it_names(tmp_path: Path) -> None:
+    import shutil
+
+    from conftest import SAMPLE_REPO
+
+    repo = tmp_path / f"fleet{HOSTILE}"
+    shutil.copytree(SAMPLE_REPO, repo)
+    index_quietly(repo)
+    code, out, err = run_cli("eval", str(repo), "--backend", "fake")
+    assert code == 0, err
+    assert "\x1b" not in out and "\x07" not in out
+    assert f"docstrings of {printable(str(repo.resolve()))}" in out.splitlines()[0]
+
+
 def test_error_and_warning_lines_escape_file_names(sample_copy: Path) -> None:
     code, out, err = run_cli("outline", str(sample_copy / f"gone{HOSTILE}.py"))
     assert code == 1
-    assert err == f"error: {sample_copy.as_posix()}/gone{HOSTILE_SHOWN}.py: no such file or folder\n"
+    assert err == (f"error: {sample_copy.as_posix()}/gone{HOSTILE_SHOWN}.py: no such file or "
+                   "folder\n")
     (sample_copy / "python" / f"broken{HOSTILE}.py").write_text(
         "def broken(:\n    return 1\n", encoding="utf-8")
     code, out, err = run_cli("index", str(sample_copy), "--backend", "fake", "-q")
