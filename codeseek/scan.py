@@ -301,7 +301,9 @@ class IgnoreRules:
 
 def _load_ignore_file(path: Path) -> IgnoreFile | None:
     try:
-        lines = path.read_text(encoding="utf-8", errors="replace").splitlines()
+        # surrogateescape: a pattern holding bytes that are not UTF-8 matches the same
+        # bytes of a file name (git matches bytes), not a replacement character
+        lines = path.read_text(encoding="utf-8", errors="surrogateescape").splitlines()
     except (FileNotFoundError, NotADirectoryError, IsADirectoryError, PermissionError):
         return None
     return IgnoreFile(lines)

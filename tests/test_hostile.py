@@ -284,6 +284,26 @@ def test_the_watcher_path_takes_non_utf8_names(latin1_repo: Path) -> None:
     assert ours["files"] == theirs["files"] and ours["units"] == theirs["units"]
 
 
+def test_a_gitignore_line_in_latin1_ignores_the_same_bytes(tmp_path: Path) -> None:
+    from codeseek.config import load_settings
+    from codeseek.scan import scan_repository
+
+    root = os.fsencode(tmp_path)
+    for name in (b"tarif\xe9.py", b"tarif\xe8.py", b"plain.py"):
+        with open(os.path.join(root, name), "wb") as handle:
+            handle.write(b"def f():\n    return 1\n")
+    with open(os.path.join(root, b".gitignore"), "wb") as handle:
+        handle.write(b"tarif\xe9.py\n")
+    found = {os.fsencode(f.path) for f in scan_repository(load_settings(tmp_path)).files}
+    # the reference: git itself, on the same tree (git ls-files --others --exclude-standard)
+    subprocess.run(["git", "init", "-q", str(tmp_path)], check=True)
+    listed = subprocess.run(["git", "-C", str(tmp_path), "-c", "core.quotePath=false",
+                             "ls-files", "-z", "--others", "--exclude-standard"],
+                            check=True, capture_output=True).stdout
+    by_git = {name for name in listed.split(b"\0") if name.endswith(b".py")}
+    assert found == by_git == {b"tarif\xe8.py", b"plain.py"}
+
+
 def test_the_daemon_wire_format_keeps_a_non_utf8_path() -> None:
     import dataclasses
 
@@ -469,10 +489,11 @@ _NAMES = st.lists(st.binary(min_size=1, max_size=16), max_size=6)
 @settings(max_examples=20, deadline=None,
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
 @given(first=_NAMES, second=_NAMES, query=st.binary(max_size=24),
-       lines=st.lists(st.binary(max_size=24), max_size=4), as_json=st.booleans())
+       lines=st.lists(st.binary(max_size=24), max_size=4), ignore=st.binary(max_size=24),
+       as_json=st.booleans())
 def test_random_bytes_as_names_queries_and_batch_lines(
         first: list[bytes], second: list[bytes], query: bytes, lines: list[bytes],
-        as_json: bool) -> None:
+        ignore: bytes, as_json: bool) -> None:
     with tempfile.TemporaryDirectory() as temp:
         repo = Path(temp) / "repo"
         root = os.fsencode(repo)
@@ -483,6 +504,7 @@ def test_random_bytes_as_names_queries_and_batch_lines(
         common = ["--backend", "fake"]
         _check_run(["index", str(repo), "-q", *common])
         _write_tree(root, [n for n in map(_posix_name, second) if n], 100)  # an update
+        (repo / ".gitignore").write_bytes(ignore)  # random bytes as ignore rules too
         _check_run(["index", str(repo), "-q", *common])
         view = ["--json"] if as_json else []
         # a query argument as sys.argv holds it (PEP 383); "--" keeps it positional
