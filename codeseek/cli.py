@@ -62,7 +62,13 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"codeseek {__version__}")
     commands = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for add_parser in (_index_parser, _search_parser, _status_parser, _watch_parser,
+                       _outline_parser, _ui_parser, _eval_parser, _tune_parser):
+        add_parser(commands)
+    return parser
 
+
+def _index_parser(commands: Any) -> None:
     index = commands.add_parser("index", help="build or bring up to date the index of a repository",
                                 description="Build the index of a repository, or bring it up "
                                             "to date; only changed files are parsed and only "
@@ -74,6 +80,8 @@ def build_parser() -> argparse.ArgumentParser:
                        help="discard the existing index and build it from scratch")
     index.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
 
+
+def _search_parser(commands: Any) -> None:
     search = commands.add_parser("search", help="rank the units that match a query",
                                  description="Rank the functions, methods and classes that "
                                              "match a natural-language query.")
@@ -94,6 +102,8 @@ def build_parser() -> argparse.ArgumentParser:
                              "answers in JSON Lines")
     _common_index_options(search)
 
+
+def _status_parser(commands: Any) -> None:
     status = commands.add_parser("status", help="what the index holds and how fresh it is",
                                  description="Show what the index holds, what was left out "
                                              "and why, and whether it is up to date.")
@@ -102,6 +112,8 @@ def build_parser() -> argparse.ArgumentParser:
     _common_index_options(status, model=False)
     status.add_argument("--json", action="store_true", help="one JSON object")
 
+
+def _watch_parser(commands: Any) -> None:
     watch = commands.add_parser("watch", help="index, then keep the index fresh and answer "
                                               "queries (runs in the foreground)",
                                 description="Index the repository, then watch it: every saved "
@@ -114,12 +126,16 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--poll", action="store_true",
                        help="watch by polling instead of inotify (network file systems)")
 
+
+def _outline_parser(commands: Any) -> None:
     outline = commands.add_parser("outline", help="list the units extracted from a file or tree",
                                   description="List the units codeseek extracts from a file or "
                                               "a folder, without an index or a model.")
     outline.add_argument("path", metavar="PATH", help="a source file or a folder")
     outline.add_argument("--json", action="store_true", help="one JSON object per unit")
 
+
+def _ui_parser(commands: Any) -> None:
     ui = commands.add_parser("ui", help="search as you type in the terminal and read the hits",
                              description="Search as you type, read each hit's code, and open "
                                          "it in your editor ($VISUAL or $EDITOR).")
@@ -127,8 +143,6 @@ def build_parser() -> argparse.ArgumentParser:
                     help="repository root (default: the current folder's repository)")
     ui.add_argument("--repo", metavar="PATH", help="repository root (the same as PATH)")
     _common_index_options(ui)
-    _add_check_parsers(commands)
-    return parser
 
 
 def find_repo_root(start: Path) -> Path:
@@ -474,8 +488,7 @@ def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
 # -- eval and tune -----------------------------------------------------------------
 
 
-def _add_check_parsers(commands: Any) -> None:
-    """The parsers of ``eval`` and ``tune``."""
+def _eval_parser(commands: Any) -> None:
     evaluate = commands.add_parser(
         "eval", help="measure how well search finds this repository's held-out docstrings",
         description="Recall checks: hold out a share of the documented units, search for each "
@@ -487,6 +500,9 @@ def _add_check_parsers(commands: Any) -> None:
     evaluate.add_argument("--html", metavar="FILE",
                           help="also write a small self-contained HTML report to FILE")
     _common_index_options(evaluate)
+
+
+def _tune_parser(commands: Any) -> None:
     tune = commands.add_parser(
         "tune", help="adapt search to this repository with a query adapter",
         description="Train a query-side adapter on the training share of the repository's "
