@@ -18,7 +18,13 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
 from codeseek import __version__
-from codeseek.errors import CodeseekError, IndexLocked, InvalidQuery, RepositoryNotFound
+from codeseek.errors import (
+    CodeseekError,
+    IndexLocked,
+    InvalidQuery,
+    RepositoryNotFound,
+    UsageError,
+)
 
 if TYPE_CHECKING:
     from codeseek.api import Index
@@ -39,7 +45,7 @@ EPILOG = """\
 examples:
   codeseek index                      build or refresh the index of this repository
   codeseek search "retry failed uploads"
-  codeseek search "parse the config file" --lang python -k 5 --json
+  codeseek search "parse the config file" --language python -k 5 --json
   codeseek outline src/billing.py     list the units codeseek extracts from a file"""
 
 
@@ -90,12 +96,18 @@ def _search_parser(commands: Any) -> None:
                         help="repository root (default: the current folder's repository)")
     search.add_argument("-k", type=int, default=10, metavar="N",
                         help="number of results (default: 10)")
-    search.add_argument("--lang", action="append", default=[], metavar="L",
-                        help="only this language (repeatable)")
-    search.add_argument("--path", action="append", default=[], metavar="GLOB",
-                        help="only files matching this gitignore-style glob (repeatable)")
-    search.add_argument("--kind", action="append", default=[], metavar="K",
-                        help="only this kind: function, method or class (repeatable)")
+    search.add_argument("--language", action="append", dest="languages", default=[],
+                        metavar="L", help="only this language (repeatable; any case)")
+    search.add_argument("--files", action="append", dest="files", default=[], metavar="GLOB",
+                        help="only files matching this gitignore-style pattern, read from "
+                             "the current folder (repeatable)")
+    search.add_argument("--unit", action="append", dest="units", default=[], metavar="K",
+                        help="only this unit: function, method, class, or a language's own "
+                             "word for a class such as struct or trait (repeatable)")
+    # the options' first names, still accepted so that scripts keep working
+    search.add_argument("--lang", action="append", dest="languages", help=argparse.SUPPRESS)
+    search.add_argument("--path", action="append", dest="files", help=argparse.SUPPRESS)
+    search.add_argument("--kind", action="append", dest="units", help=argparse.SUPPRESS)
     search.add_argument("--json", action="store_true", help="one JSON object per hit (JSON Lines)")
     search.add_argument("--batch", metavar="FILE",
                         help="read one query per line from FILE (- for stdin); "
@@ -166,10 +178,42 @@ def _root(repo: str | None) -> Path:
 
 def _open(repo: str | None, args: argparse.Namespace, *, create: bool) -> Index:
     from codeseek.api import open_index
+    from codeseek.errors import IndexNotFound
 
-    return open_index(_root(repo), index_dir=args.index_dir,
-                      model=getattr(args, "model", None),
-                      backend=getattr(args, "backend", None), create=create)
+    try:
+        index = open_index(_root(repo), index_dir=args.index_dir,
+                           model=getattr(args, "model", None),
+                           backend=getattr(args, "backend", None), create=create)
+    except IndexNotFound as exc:
+        raise IndexNotFound(f"{exc}{NO_INDEX_HINT}") from exc
+    try:
+        _check_repository(index)
+    except BaseException:
+        index.close()
+        raise
+    return index
+
+
+NO_INDEX_HINT = "; for an index built elsewhere, give --index-dir DIR or set CODESEEK_INDEX_DIR"
+
+
+def _check_repository(index: Index) -> None:
+    """Refuse an index kept outside the repository that was built for another repository.
+
+    An index inside the repository (the default ``.codeseek``) moves with it, so only an
+    index elsewhere is checked; an index from before the manifest recorded its repository
+    is taken as it is.
+    """
+    from codeseek.indexer import repository_record
+
+    settings = index.settings
+    if settings.index_dir.is_relative_to(settings.repo):
+        return
+    recorded = index.store.manifest().get("repo")
+    if recorded is not None and recorded != repository_record(settings.repo):
+        raise UsageError(f"the index at {settings.index_dir} was built for the repository "
+                         f"{recorded}, not {settings.repo}; give --repo {recorded}, or another "
+                         f"--index-dir for {settings.repo}")
 
 
 def _running_daemon_pid(repo: str | None, args: argparse.Namespace) -> int | None:
@@ -281,16 +325,22 @@ def format_summary(summary: UpdateSummary) -> str:
 
 def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if args.batch is None and args.query is None:
-        raise InvalidQuery("give a QUERY or --batch FILE")
+        raise UsageError("give a QUERY or --batch FILE")
     if args.batch is not None and args.query is not None:
-        raise InvalidQuery("give a QUERY or --batch FILE, not both")
+        raise UsageError("give a QUERY or --batch FILE, not both")
+    if args.batch is None and not args.query.strip():
+        raise UsageError("the query is empty; type what you are looking for")
+    if args.k < 1:
+        raise UsageError(f"-k must be at least 1, not {args.k}")
     from codeseek.client import DaemonUnavailable
 
-    queries = _read_batch(args.batch) if args.batch is not None else [args.query]
-    options = {"languages": args.lang, "paths": args.path, "kinds": args.kind}
+    lines = _read_batch(args.batch) if args.batch is not None else [args.query]
+    queries = [line for line in lines if line]
+    options = _search_filters(args)
     results: list[list[SearchHit]] | None = None
     client = _daemon_client(args.repo, args)
     if client is not None and queries:
+        _open(args.repo, args, create=False).close()  # the same checks as in process
         try:
             results = client.search_many(queries, args.k, **options)
         except DaemonUnavailable:
@@ -299,8 +349,7 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         with _open(args.repo, args, create=False) as index:
             results = index.search_many(queries, args.k, **options) if queries else []
     if args.batch is not None:
-        for hits in results:
-            _print_json(hits, out)
+        _print_batch(lines, results, out)
         return EXIT_OK
     hits = results[0]
     if args.json:
@@ -310,12 +359,50 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     return EXIT_OK
 
 
+def _search_filters(args: argparse.Namespace) -> dict[str, list[str]]:
+    """The filter options in the stored names, file patterns relative to the repository
+    root (read from the current folder); a value that cannot be used is a usage error."""
+    from codeseek.errors import UnsupportedLanguage
+    from codeseek.filtering import files_pattern, language_name, unit_kind
+
+    root = _root(args.repo).resolve()
+    try:
+        return {
+            "languages": list(dict.fromkeys(language_name(x) for x in args.languages)),
+            "paths": [files_pattern(x, root, Path.cwd().resolve()) for x in args.files],
+            "kinds": list(dict.fromkeys(unit_kind(x) for x in args.units)),
+        }
+    except (InvalidQuery, UnsupportedLanguage) as exc:
+        raise UsageError(str(exc)) from exc
+
+
 def _read_batch(source: str) -> list[str]:
+    """Every line of the batch, stripped (blank lines kept: each gets an answer)."""
     try:
         text = sys.stdin.read() if source == "-" else Path(source).read_text(encoding="utf-8")
+    except FileNotFoundError as exc:
+        raise InvalidQuery(f"{source}: no such file") from exc
     except (OSError, UnicodeDecodeError) as exc:
         raise InvalidQuery(f"{source}: cannot read the batch file: {exc}") from exc
-    return [line.strip() for line in text.splitlines() if line.strip()]
+    return [line.strip() for line in text.splitlines()]
+
+
+def no_hits_record(query: str) -> dict[str, object]:
+    """The JSON Lines record of a batch line with no hit (or a blank line): ``rank`` is
+    null, which no hit has, and ``hits`` is 0."""
+    return {"query": query, "rank": None, "hits": 0}
+
+
+def _print_batch(lines: Sequence[str], results: Sequence[Sequence[SearchHit]],
+                 out: TextIO) -> None:
+    """Every line's hits in line order; a line without any, one :func:`no_hits_record`."""
+    answers = iter(results)
+    for line in lines:
+        hits = next(answers) if line else []
+        if hits:
+            _print_json(hits, out)
+        else:
+            out.write(json.dumps(no_hits_record(line), ensure_ascii=False) + "\n")
 
 
 def _print_json(hits: Sequence[SearchHit], out: TextIO) -> None:
@@ -593,6 +680,9 @@ def main(argv: Sequence[str] | None = None, out: TextIO | None = None,
     os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
     try:
         return COMMANDS[args.command](args, out, err)
+    except UsageError as exc:
+        print(f"error: {exc}", file=err)
+        return EXIT_USAGE
     except CodeseekError as exc:
         print(f"error: {exc}", file=err)
         return EXIT_ERROR
