@@ -77,6 +77,38 @@ def test_batch_gives_the_same_ranking_as_one_by_one(indexed: Path, tmp_path: Pat
         assert got == expected
 
 
+def test_batch_answers_every_line(indexed: Path, tmp_path: Path) -> None:
+    batch = tmp_path / "queries.txt"
+    batch.write_text("refund a rider\n\n   \ndecode the dock packet\n", encoding="utf-8")
+    code, out, err = run_cli("search", "--batch", str(batch), "--repo", str(indexed),
+                             "--backend", "fake", "-k", "2")
+    assert code == 0, err
+    records = [json.loads(line) for line in out.splitlines()]
+    assert [(r["query"], r["rank"]) for r in records] == [
+        ("refund a rider", 1), ("refund a rider", 2), ("", None), ("", None),
+        ("decode the dock packet", 1), ("decode the dock packet", 2)]
+    assert records[2] == {"query": "", "rank": None, "hits": 0}
+    assert all("hits" not in r for r in records if r["rank"] is not None)
+
+
+def test_batch_query_without_hits_gets_a_record(indexed: Path, tmp_path: Path) -> None:
+    batch = tmp_path / "queries.txt"
+    batch.write_text("refund a rider\ndecode the dock packet\n", encoding="utf-8")
+    code, out, err = run_cli("search", "--batch", str(batch), "--repo", str(indexed),
+                             "--backend", "fake", "--files", "no-such-folder/")
+    assert code == 0, err
+    assert out == ('{"query": "refund a rider", "rank": null, "hits": 0}\n'
+                   '{"query": "decode the dock packet", "rank": null, "hits": 0}\n')
+
+
+def test_batch_file_that_is_missing(indexed: Path, tmp_path: Path) -> None:
+    missing = tmp_path / "nothing.txt"
+    code, out, err = run_cli("search", "--batch", str(missing), "--repo", str(indexed),
+                             "--backend", "fake")
+    assert (code, out) == (1, "")
+    assert err == f"error: {missing}: no such file\n"
+
+
 def test_filters_narrow_results(indexed: Path) -> None:
     code, out, _ = run_cli("search", "decode packet", "--repo", str(indexed), "--backend",
                            "fake", "--json", "--language", "go", "-k", "20")
