@@ -414,14 +414,64 @@ def _print_hits(hits: Sequence[SearchHit], out: TextIO) -> None:
     if not hits:
         print("no matches; try other words or fewer filters", file=out)
         return
+    columns = _columns()
     for hit in hits:
         print(f"{hit.rank:>2}. {hit.qualname}  [{hit.kind}, {hit.language}]  "
               f"{hit.path}:{hit.start_line}", file=out)
         if hit.doc_summary:
-            print(f"    {_clip(hit.doc_summary, 100)}", file=out)
-        for number, line in enumerate(hit.snippet.splitlines()[:3], hit.start_line):
-            print(f"    {number:>5} | {_clip(line, 90)}", file=out)
+            print(f"    {_clip(hit.doc_summary, columns - 4)}", file=out)
+        for number, line in shown_code_lines(hit):
+            print(f"    {number:>5} | {_clip(line, columns - 12)}", file=out)
         print(file=out)
+
+
+CODE_LINES = 3
+"""Lines of code plain search output shows per hit."""
+
+
+def _columns() -> int:
+    """The terminal's width (``COLUMNS`` first, as :func:`shutil.get_terminal_size` reads
+    it); 104 when output is not a terminal; never under 40."""
+    import shutil
+
+    return max(40, shutil.get_terminal_size((104, 24)).columns)
+
+
+def shown_code_lines(hit: SearchHit, count: int = CODE_LINES) -> list[tuple[int, str]]:
+    """(line number, text) of the code lines plain output shows: the snippet's first
+    lines, without a docstring (its summary is shown above them already)."""
+    lines = list(enumerate(hit.snippet.splitlines(), hit.start_line))
+    if hit.doc_summary and hit.language == "python":
+        rows = _docstring_rows(hit.snippet)
+        if rows is not None:
+            first, last = rows
+            lines = lines[: first - 1] + [pair for pair in lines[last:] if pair[1].strip()]
+    return lines[:count]
+
+
+def _docstring_rows(code: str) -> tuple[int, int] | None:
+    """The 1-based first and last rows of a Python docstring in ``code`` (a unit's first
+    lines, so the docstring may run past their end), or None when there is none."""
+    import io
+    import tokenize
+
+    header_done = False
+    found: tuple[int, int] | None = None
+    skipped = (tokenize.NL, tokenize.INDENT, tokenize.COMMENT)
+    try:
+        for token in tokenize.generate_tokens(io.StringIO(code).readline):
+            if not header_done:
+                header_done = token.type == tokenize.NEWLINE  # the def or class line ends
+            elif token.type == tokenize.STRING:
+                found = (found[0] if found else token.start[0], token.end[0])
+            elif token.type not in skipped:
+                return found if token.type in (tokenize.NEWLINE, tokenize.ENDMARKER) else None
+    except tokenize.TokenError as exc:
+        # only a string still open where the snippet ends gets here after the header
+        if header_done and found is None and len(exc.args) > 1:
+            return (int(exc.args[1][0]), code.count("\n") + 1)
+        return None
+    return found
 
 
 def _clip(text: str, width: int) -> str:

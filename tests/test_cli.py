@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import ast
 import io
 import json
 import os
@@ -14,6 +15,7 @@ import pytest
 from sample_files import sample_source_files
 
 from codeseek.cli import main
+from codeseek.hits import SearchHit
 
 
 def run_cli(*argv: str) -> tuple[int, str, str]:
@@ -300,6 +302,69 @@ def test_human_output_names_file_and_line(indexed: Path) -> None:
     path_line = first.rsplit(" ", 1)[-1]
     path, line = path_line.rsplit(":", 1)
     assert (indexed / path).is_file() and int(line) >= 1
+
+
+def _hit(snippet: str, doc: str, language: str = "python") -> SearchHit:
+    return SearchHit(query="q", rank=1, score=1.0, similarity=0.5, path="a.py", start_line=10,
+                     end_line=30, language=language, kind="function", name="f", qualname="f",
+                     signature="def f(a)", doc_summary=doc, snippet=snippet, unit_id=1)
+
+
+@pytest.mark.parametrize(("snippet", "expected"), [
+    ('def f(a):\n    """Add one."""\n    b = a + 1\n    return b\n',
+     [(10, "def f(a):"), (12, "    b = a + 1"), (13, "    return b")]),
+    ('def f(\n    a,\n):\n    r"""Add\n    one.\n    """\n\n    return a + 1',
+     [(10, "def f("), (11, "    a,"), (12, "):")]),
+    ('class F:\n    """Add\n    one, and\n    more', [(10, "class F:")]),
+    ('def f(a):\n    """Add one."""\n\n    # then\n    return a',
+     [(10, "def f(a):"), (13, "    # then"), (14, "    return a")]),
+    ('def f(a):\n    "a".join(a)\n    return a',
+     [(10, "def f(a):"), (11, '    "a".join(a)'), (12, "    return a")]),
+])
+def test_plain_output_shows_code_after_the_docstring(snippet: str,
+                                                     expected: list[tuple[int, str]]) -> None:
+    from codeseek.cli import shown_code_lines
+
+    assert shown_code_lines(_hit(snippet, "Add one.")) == expected
+
+
+def test_plain_output_shows_no_docstring_twice(indexed: Path) -> None:
+    code, out, _ = run_cli("search", "decode a dock status packet", "--repo", str(indexed),
+                           "--backend", "fake", "--files", "python/kestrune/telemetry.py",
+                           "-k", "20")
+    assert code == 0
+    source = (indexed / "python/kestrune/telemetry.py").read_text(encoding="utf-8")
+    docstrings = {node.lineno: node.body[0]  # reference: Python's own ast
+                  for node in ast.walk(ast.parse(source))
+                  if isinstance(node, ast.FunctionDef | ast.ClassDef) and ast.get_docstring(node)}
+    checked = 0
+    for block in out.strip().split("\n\n"):
+        lines = block.splitlines()
+        start = int(lines[0].rsplit(":", 1)[1])
+        shown = [int(line.split("|")[0]) for line in lines[1:] if " | " in line]
+        assert shown and shown[0] == start
+        if start in docstrings:
+            doc = docstrings[start]
+            assert lines[1].startswith("    ") and " | " not in lines[1]  # the summary
+            assert not set(shown) & set(range(doc.lineno, (doc.end_lineno or 0) + 1)), start
+            checked += 1
+    assert checked >= 3
+
+
+def test_plain_output_is_as_wide_as_the_terminal(indexed: Path,
+                                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    argv = ("search", "decode status packet", "--repo", str(indexed), "--backend", "fake",
+            "--language", "go", "-k", "1")
+    doc = ("DecodeStatusPacket parses the raw bytes of a dock status packet into a "
+           "DockStatus. It verifies the length, the magic byte and the XOR checksum before "
+           "reading fields.")
+    monkeypatch.setenv("COLUMNS", "200")
+    _, out, _ = run_cli(*argv)
+    assert out.splitlines()[1] == f"    {doc}"
+    monkeypatch.setenv("COLUMNS", "60")
+    _, out, _ = run_cli(*argv)
+    assert out.splitlines()[1] == f"    {doc[:53]}..."
+    assert max(len(line) for line in out.splitlines()[1:]) <= 60  # the header is never cut
 
 
 def test_status_json(indexed: Path) -> None:
