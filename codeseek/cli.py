@@ -27,7 +27,7 @@ from codeseek.errors import (
 )
 
 if TYPE_CHECKING:
-    from codeseek.api import Index
+    from codeseek.api import Index, IndexStatus
     from codeseek.client import DaemonClient
     from codeseek.indexer import UpdateSummary
     from codeseek.search import SearchHit
@@ -123,6 +123,9 @@ def _status_parser(commands: Any) -> None:
                         help="repository root (default: the current folder's repository)")
     _common_index_options(status, model=False)
     status.add_argument("--json", action="store_true", help="one JSON object")
+    status.add_argument("--skipped", action="store_true",
+                        help="list the files left out, one `path  reason` line each "
+                             "(with --json: a skipped_files list)")
 
 
 def _watch_parser(commands: Any) -> None:
@@ -486,6 +489,7 @@ def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
 
     with _open(args.path, args, create=False) as index:
         status = index.status()
+        skipped = index.skipped_files() if args.skipped else None
     daemon: dict[str, Any] | None = None
     client = _daemon_client(args.path, args)
     if client is not None:
@@ -496,40 +500,62 @@ def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if args.json:
         record = status.to_json()
         record["daemon"] = daemon
+        if skipped is not None:
+            record["skipped_files"] = [{"path": p, "reason": r} for p, r in skipped]
         out.write(json.dumps(record, ensure_ascii=False) + "\n")
-        return EXIT_OK
+    elif skipped is not None:
+        out.write(format_skipped(skipped))
+    else:
+        out.write(format_status(status, daemon))
+    return EXIT_OK
+
+
+def format_skipped(skipped: Sequence[tuple[str, str]]) -> str:
+    """``status --skipped``: one ``path  reason`` line per file left out."""
+    from codeseek.display import printable
+
+    return "".join(f"{printable(path)}  {reason}\n" for path, reason in skipped)
+
+
+def format_status(status: IndexStatus, daemon: dict[str, Any] | None) -> str:
+    """What ``codeseek status`` prints: the index's status and the daemon's, if one runs."""
     updated = (time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(status.updated_at))
                if status.updated_at else "never")
-    print(f"repository   {status.repo}", file=out)
-    print(f"index        {status.index_dir} ({status.bytes_on_disk / 1e6:.1f} MB)", file=out)
-    print(f"model        {status.model_id or 'none yet'} ({status.dim or '-'} dimensions)",
-          file=out)
-    print(f"contents     {status.files} files, {status.units} units", file=out)
-    for language, count in sorted(status.languages.items()):
-        print(f"             {count:>6} {language}", file=out)
-    print(f"updated      {updated} (generation {status.generation}; vector index "
-          f"{'in sync' if status.vectors_in_sync else 'will be rebuilt on next search'})",
-          file=out)
+    lines = [
+        f"repository   {status.repo}",
+        f"index        {status.index_dir} ({status.bytes_on_disk / 1e6:.1f} MB)",
+        f"model        {status.model_id or 'none yet'} ({status.dim or '-'} dimensions)",
+        f"contents     {status.files} files, {status.units} units",
+    ]
+    lines += [f"             {count:>6} {language}"
+              for language, count in sorted(status.languages.items())]
+    lines.append(f"updated      {updated} (generation {status.generation}; vector index "
+                 f"{'in sync' if status.vectors_in_sync else 'will be rebuilt on next search'})")
     if status.files_with_syntax_errors:
-        print(f"warnings     {status.files_with_syntax_errors} files with syntax errors",
-              file=out)
-    print(f"adapter      {_adapter_words(status.adapter, status.model_id)}", file=out)
-    if daemon is None:
-        print("daemon       not running (searches load the index in their own process)",
-              file=out)
-    else:
-        last = (time.strftime("%H:%M:%S", time.localtime(daemon["last_update"]))
-                if daemon["last_update"] else "none yet")
-        print(f"daemon       pid {daemon['pid']}, {daemon['state']}, watching by "
-              f"{daemon['watcher']}, {daemon['pending']} changes pending, last update {last}",
-              file=out)
-        if daemon["last_error"]:
-            print(f"             last error: {daemon['last_error']}", file=out)
+        lines.append(f"warnings     {status.files_with_syntax_errors} files with syntax errors")
+    lines.append(f"adapter      {_adapter_words(status.adapter, status.model_id)}")
+    lines += _daemon_lines(daemon)
     if status.skipped:
-        print("left out", file=out)
-        for reason, count in sorted(status.skipped.items(), key=lambda kv: -kv[1]):
-            print(f"             {count:>6} {reason}", file=out)
-    return EXIT_OK
+        lines.append("left out      (`codeseek status --skipped` lists the files)")
+        lines += [f"             {count:>6} {reason}"
+                  for reason, count in sorted(status.skipped.items(), key=lambda kv: -kv[1])]
+    return "".join(line + "\n" for line in lines)
+
+
+def _daemon_lines(daemon: dict[str, Any] | None) -> list[str]:
+    if daemon is None:
+        return ["daemon       not running (searches load the index in their own process)"]
+    last = (time.strftime("%H:%M:%S", time.localtime(daemon["last_update"]))
+            if daemon["last_update"] else "none yet")
+    state, watcher = daemon["state"], daemon["watcher"]
+    doing = (f"watching for changes ({watcher})" if state == "watching"
+             else f"{state} (file watcher: {watcher})")
+    pending = daemon["pending"]
+    lines = [f"daemon       pid {daemon['pid']}, {doing}, {pending} "
+             f"{'change' if pending == 1 else 'changes'} pending, last update {last}"]
+    if daemon["last_error"]:
+        lines.append(f"             last error: {daemon['last_error']}")
+    return lines
 
 
 def _adapter_words(adapter: dict[str, Any] | None, model_id: str | None) -> str:

@@ -9,11 +9,13 @@ import os
 import shutil
 import subprocess
 import sys
+from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
 from sample_files import sample_source_files
 
+from codeseek.api import IndexStatus
 from codeseek.cli import main
 from codeseek.hits import SearchHit
 
@@ -376,6 +378,87 @@ def test_status_json(indexed: Path) -> None:
     assert status["vectors_in_sync"] is True
     assert status["skipped"]["ignored by .gitignore or exclude rules"] == 1
     assert set(status["languages"]) == set(sources.values())
+
+
+def test_status_lists_the_files_left_out(indexed: Path) -> None:
+    code, out, _ = run_cli("status", str(indexed), "--skipped")
+    assert code == 0
+    assert out == (".gitignore  no supported language\n"
+                   "README.md  no supported language\n"
+                   "build/  ignored by .gitignore or exclude rules\n"
+                   "go/go.mod  no supported language\n"
+                   "rust/fares/Cargo.toml  no supported language\n")
+    code, out, _ = run_cli("status", str(indexed), "--skipped", "--json")
+    record = json.loads(out)
+    assert record["skipped_files"][2] == {"path": "build/",
+                                          "reason": "ignored by .gitignore or exclude rules"}
+    assert len(record["skipped_files"]) == sum(record["skipped"].values())
+    _, out, _ = run_cli("status", str(indexed), "--json")
+    assert "skipped_files" not in json.loads(out)
+
+
+@pytest.fixture
+def utc(monkeypatch: pytest.MonkeyPatch) -> Iterator[None]:
+    import time
+
+    monkeypatch.setenv("TZ", "UTC")
+    time.tzset()
+    yield
+    monkeypatch.undo()
+    time.tzset()
+
+
+def _status(**changes: object) -> IndexStatus:
+    values: dict[str, object] = dict(
+        repo="/src/fleet", index_dir="/src/fleet/.codeseek", files=12, units=140,
+        languages={"python": 100, "go": 40}, skipped={"no supported language": 3,
+                                                     "over the size limit": 5},
+        files_with_syntax_errors=0, model_id="all-MiniLM-L6-v2@abc", dim=384, generation=7,
+        vectors_in_sync=True, updated_at=1_800_000_000.0, bytes_on_disk=2_500_000,
+        adapter=None)
+    values.update(changes)
+    return IndexStatus(**values)  # type: ignore[arg-type]
+
+
+def test_format_status_word_for_word(utc: None) -> None:
+    from codeseek.cli import format_status
+
+    assert format_status(_status(), None) == (
+        "repository   /src/fleet\n"
+        "index        /src/fleet/.codeseek (2.5 MB)\n"
+        "model        all-MiniLM-L6-v2@abc (384 dimensions)\n"
+        "contents     12 files, 140 units\n"
+        "                 40 go\n"
+        "                100 python\n"
+        "updated      2027-01-15 08:00:00 (generation 7; vector index in sync)\n"
+        "adapter      none (search uses the plain model; `codeseek tune` trains one)\n"
+        "daemon       not running (searches load the index in their own process)\n"
+        "left out      (`codeseek status --skipped` lists the files)\n"
+        "                  5 over the size limit\n"
+        "                  3 no supported language\n")
+
+
+def test_format_status_of_a_running_daemon(utc: None) -> None:
+    from codeseek.cli import format_status
+
+    daemon = {"pid": 4242, "state": "watching", "watcher": "inotify", "pending": 1,
+              "last_update": 1_800_000_030.0, "last_error": None}
+    text = format_status(_status(skipped={}, files_with_syntax_errors=2,
+                                 vectors_in_sync=False, updated_at=None), daemon)
+    assert text.splitlines()[-4:] == [
+        "updated      never (generation 7; vector index will be rebuilt on next search)",
+        "warnings     2 files with syntax errors",
+        "adapter      none (search uses the plain model; `codeseek tune` trains one)",
+        "daemon       pid 4242, watching for changes (inotify), 1 change pending, "
+        "last update 08:00:30",
+    ]
+    daemon.update(state="indexing", watcher="starting", pending=0, last_update=None,
+                  last_error="disk full")
+    assert format_status(_status(skipped={}), daemon).splitlines()[-2:] == [
+        "daemon       pid 4242, indexing (file watcher: starting), 0 changes pending, "
+        "last update none yet",
+        "             last error: disk full",
+    ]
 
 
 def test_outline_lists_units_without_an_index(sample_copy: Path) -> None:
