@@ -170,7 +170,9 @@ def files_pattern(pattern: str, root: Path, cwd: Path) -> str:
     As git reads a pathspec given in a subfolder: a relative pattern applies
     within the folder you stand in (``billing/`` in ``python/kestrune`` means
     ``python/kestrune/**/billing/``); ``./x`` and ``../x`` start from it; an
-    absolute path inside the repository names that place. Standing outside
+    absolute path inside the repository names that place, and one outside it
+    is refused, while a leading ``/`` that names no place on disk anchors the
+    pattern at the folder you stand in, as in a ``.gitignore``. Standing outside
     the repository, a plain pattern is relative to the repository root (as
     before), while ``./x``, ``../x`` and absolute paths must still land inside
     it. ``root`` and ``cwd`` are absolute and resolved.
@@ -178,7 +180,7 @@ def files_pattern(pattern: str, root: Path, cwd: Path) -> str:
     check_files_pattern(pattern)
     negate = "!" if pattern.startswith("!") else ""
     body = pattern[len(negate):]
-    if os.path.isabs(body):
+    if os.path.isabs(body) and _names_a_place(body, root):
         rel = _inside(Path(os.path.normpath(body)), root, pattern)
         # the path is the user's own text: its glob characters stay glob characters
         return negate + _anchored(rel, "", body.endswith("/"))
@@ -198,6 +200,14 @@ def files_pattern(pattern: str, root: Path, cwd: Path) -> str:
     anchored = "/" in stem
     joiner = "/" if anchored else "/**/"
     return f"{negate}/{_escape(base)}{joiner}{body.lstrip('/')}"
+
+
+def _names_a_place(body: str, root: Path) -> bool:
+    """Whether a pattern with a leading ``/`` is a path on disk (inside the repository, or
+    under a top folder that exists) rather than a gitignore pattern anchored at its folder
+    (``/python/``)."""
+    path = Path(os.path.normpath(body))
+    return _relative(path, root) is not None or os.path.lexists(Path(*path.parts[:2]))
 
 
 def _anchored(folder: str, rest: str, trailing_slash: bool) -> str:

@@ -163,7 +163,7 @@ def test_files_is_read_from_the_current_folder(indexed: Path,
     monkeypatch.chdir(indexed / "python" / "kestrune")
     billing = "python/kestrune/billing/"
     for pattern in ("billing/", "./billing", "./billing/", "../kestrune/billing/",
-                    "billing/*.py", str(indexed / billing)):
+                    "billing/*.py", str(indexed / billing), "/billing/"):
         code, out, err = run_cli("search", "fare", "--backend", "fake", "--json", "-k", "50",
                                  "--files", pattern)
         assert code == 0, (pattern, err)
@@ -174,10 +174,11 @@ def test_files_is_read_from_the_current_folder(indexed: Path,
                            "--files", "*.go")
     assert (code, out) == (0, "")
     monkeypatch.chdir(indexed)
-    code, out, _ = run_cli("search", "fare", "--backend", "fake", "--json", "-k", "50",
-                           "--files", "billing/")
-    assert code == 0 and _json_paths(out) and all(p.startswith(billing) for p in
-                                                  _json_paths(out))
+    for pattern in ("billing/", "/python/kestrune/billing/"):  # a leading / anchors, as before
+        code, out, _ = run_cli("search", "fare", "--backend", "fake", "--json", "-k", "50",
+                               "--files", pattern)
+        assert code == 0 and _json_paths(out), pattern
+        assert all(p.startswith(billing) for p in _json_paths(out)), pattern
 
 
 def test_files_outside_the_repository_is_an_error(indexed: Path, tmp_path: Path,
