@@ -2,8 +2,9 @@
 
 Each command parses its options, calls the library, prints, and turns a
 :class:`~codeseek.errors.CodeseekError` into one ``error: ...`` line on stderr
-and exit status 1. Heavy modules are imported inside the commands, so
-``codeseek --help`` answers at once.
+and exit status 1 (2 for a :class:`~codeseek.errors.UsageError`: an option
+value or combination that cannot be used, as argparse's own errors). Heavy
+modules are imported inside the commands, so ``codeseek --help`` answers at once.
 """
 
 from __future__ import annotations
