@@ -328,6 +328,10 @@ class Index:
         filters = Filters(tuple(languages), tuple(paths), tuple(kinds))
         return similar_units(self.searcher(), unit_id, k, filters)
 
+    def skipped_files(self) -> list[tuple[str, str]]:
+        """(path, reason) of every file left out of the index, by path."""
+        return self.store.skipped_files()
+
     def status(self) -> IndexStatus:
         """Counts and freshness; never loads the model."""
         manifest = self.store.manifest()

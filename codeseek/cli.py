@@ -2,8 +2,9 @@
 
 Each command parses its options, calls the library, prints, and turns a
 :class:`~codeseek.errors.CodeseekError` into one ``error: ...`` line on stderr
-and exit status 1. Heavy modules are imported inside the commands, so
-``codeseek --help`` answers at once.
+and exit status 1 (2 for a :class:`~codeseek.errors.UsageError`: an option
+value or combination that cannot be used, as argparse's own errors). Heavy
+modules are imported inside the commands, so ``codeseek --help`` answers at once.
 """
 
 from __future__ import annotations
@@ -19,10 +20,16 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from codeseek import __version__
 from codeseek.display import json_path, printable, printable_block
-from codeseek.errors import CodeseekError, IndexLocked, InvalidQuery, RepositoryNotFound
+from codeseek.errors import (
+    CodeseekError,
+    IndexLocked,
+    InvalidQuery,
+    RepositoryNotFound,
+    UsageError,
+)
 
 if TYPE_CHECKING:
-    from codeseek.api import Index
+    from codeseek.api import Index, IndexStatus
     from codeseek.client import DaemonClient
     from codeseek.indexer import UpdateSummary
     from codeseek.search import SearchHit
@@ -40,7 +47,7 @@ EPILOG = """\
 examples:
   codeseek index                      build or refresh the index of this repository
   codeseek search "retry failed uploads"
-  codeseek search "parse the config file" --lang python -k 5 --json
+  codeseek search "parse the config file" --language python -k 5 --json
   codeseek outline src/billing.py     list the units codeseek extracts from a file"""
 
 
@@ -63,7 +70,13 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--version", action="version", version=f"codeseek {__version__}")
     commands = parser.add_subparsers(dest="command", metavar="COMMAND")
+    for add_parser in (_index_parser, _search_parser, _status_parser, _watch_parser,
+                       _outline_parser, _ui_parser, _eval_parser, _tune_parser):
+        add_parser(commands)
+    return parser
 
+
+def _index_parser(commands: Any) -> None:
     index = commands.add_parser("index", help="build or bring up to date the index of a repository",
                                 description="Build the index of a repository, or bring it up "
                                             "to date; only changed files are parsed and only "
@@ -75,6 +88,8 @@ def build_parser() -> argparse.ArgumentParser:
                        help="discard the existing index and build it from scratch")
     index.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
 
+
+def _search_parser(commands: Any) -> None:
     search = commands.add_parser("search", help="rank the units that match a query",
                                  description="Rank the functions, methods and classes that "
                                              "match a natural-language query.")
@@ -83,18 +98,26 @@ def build_parser() -> argparse.ArgumentParser:
                         help="repository root (default: the current folder's repository)")
     search.add_argument("-k", type=int, default=10, metavar="N",
                         help="number of results (default: 10)")
-    search.add_argument("--lang", action="append", default=[], metavar="L",
-                        help="only this language (repeatable)")
-    search.add_argument("--path", action="append", default=[], metavar="GLOB",
-                        help="only files matching this gitignore-style glob (repeatable)")
-    search.add_argument("--kind", action="append", default=[], metavar="K",
-                        help="only this kind: function, method or class (repeatable)")
+    search.add_argument("--language", action="append", dest="languages", default=[],
+                        metavar="L", help="only this language (repeatable; any case)")
+    search.add_argument("--files", action="append", dest="files", default=[], metavar="GLOB",
+                        help="only files matching this gitignore-style pattern, read from "
+                             "the current folder (repeatable)")
+    search.add_argument("--unit", action="append", dest="units", default=[], metavar="K",
+                        help="only this unit: function, method, class, or a language's own "
+                             "word for a class such as struct or trait (repeatable)")
+    # the options' first names, still accepted so that scripts keep working
+    search.add_argument("--lang", action="append", dest="languages", help=argparse.SUPPRESS)
+    search.add_argument("--path", action="append", dest="files", help=argparse.SUPPRESS)
+    search.add_argument("--kind", action="append", dest="units", help=argparse.SUPPRESS)
     search.add_argument("--json", action="store_true", help="one JSON object per hit (JSON Lines)")
     search.add_argument("--batch", metavar="FILE",
                         help="read one query per line from FILE (- for stdin); "
                              "answers in JSON Lines")
     _common_index_options(search)
 
+
+def _status_parser(commands: Any) -> None:
     status = commands.add_parser("status", help="what the index holds and how fresh it is",
                                  description="Show what the index holds, what was left out "
                                              "and why, and whether it is up to date.")
@@ -102,7 +125,12 @@ def build_parser() -> argparse.ArgumentParser:
                         help="repository root (default: the current folder's repository)")
     _common_index_options(status, model=False)
     status.add_argument("--json", action="store_true", help="one JSON object")
+    status.add_argument("--skipped", action="store_true",
+                        help="list the files left out, one `path  reason` line each "
+                             "(with --json: a skipped_files list)")
 
+
+def _watch_parser(commands: Any) -> None:
     watch = commands.add_parser("watch", help="index, then keep the index fresh and answer "
                                               "queries (runs in the foreground)",
                                 description="Index the repository, then watch it: every saved "
@@ -115,12 +143,16 @@ def build_parser() -> argparse.ArgumentParser:
     watch.add_argument("--poll", action="store_true",
                        help="watch by polling instead of inotify (network file systems)")
 
+
+def _outline_parser(commands: Any) -> None:
     outline = commands.add_parser("outline", help="list the units extracted from a file or tree",
                                   description="List the units codeseek extracts from a file or "
                                               "a folder, without an index or a model.")
     outline.add_argument("path", metavar="PATH", help="a source file or a folder")
     outline.add_argument("--json", action="store_true", help="one JSON object per unit")
 
+
+def _ui_parser(commands: Any) -> None:
     ui = commands.add_parser("ui", help="search as you type in the terminal and read the hits",
                              description="Search as you type, read each hit's code, and open "
                                          "it in your editor ($VISUAL or $EDITOR).")
@@ -128,8 +160,6 @@ def build_parser() -> argparse.ArgumentParser:
                     help="repository root (default: the current folder's repository)")
     ui.add_argument("--repo", metavar="PATH", help="repository root (the same as PATH)")
     _common_index_options(ui)
-    _add_check_parsers(commands)
-    return parser
 
 
 def find_repo_root(start: Path) -> Path:
@@ -153,10 +183,42 @@ def _root(repo: str | None) -> Path:
 
 def _open(repo: str | None, args: argparse.Namespace, *, create: bool) -> Index:
     from codeseek.api import open_index
+    from codeseek.errors import IndexNotFound
 
-    return open_index(_root(repo), index_dir=args.index_dir,
-                      model=getattr(args, "model", None),
-                      backend=getattr(args, "backend", None), create=create)
+    try:
+        index = open_index(_root(repo), index_dir=args.index_dir,
+                           model=getattr(args, "model", None),
+                           backend=getattr(args, "backend", None), create=create)
+    except IndexNotFound as exc:
+        raise IndexNotFound(f"{exc}{NO_INDEX_HINT}") from exc
+    try:
+        _check_repository(index)
+    except BaseException:
+        index.close()
+        raise
+    return index
+
+
+NO_INDEX_HINT = "; for an index built elsewhere, give --index-dir DIR or set CODESEEK_INDEX_DIR"
+
+
+def _check_repository(index: Index) -> None:
+    """Refuse an index kept outside the repository that was built for another repository.
+
+    An index inside the repository (the default ``.codeseek``) moves with it, so only an
+    index elsewhere is checked; an index from before the manifest recorded its repository
+    is taken as it is.
+    """
+    from codeseek.indexer import repository_record
+
+    settings = index.settings
+    if settings.index_dir.is_relative_to(settings.repo):
+        return
+    recorded = index.store.manifest().get("repo")
+    if recorded is not None and recorded != repository_record(settings.repo):
+        raise UsageError(f"the index at {settings.index_dir} was built for the repository "
+                         f"{recorded}, not {settings.repo}; give --repo {recorded}, or another "
+                         f"--index-dir for {settings.repo}")
 
 
 def _running_daemon_pid(repo: str | None, args: argparse.Namespace) -> int | None:
@@ -268,16 +330,22 @@ def format_summary(summary: UpdateSummary) -> str:
 
 def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if args.batch is None and args.query is None:
-        raise InvalidQuery("give a QUERY or --batch FILE")
+        raise UsageError("give a QUERY or --batch FILE")
     if args.batch is not None and args.query is not None:
-        raise InvalidQuery("give a QUERY or --batch FILE, not both")
+        raise UsageError("give a QUERY or --batch FILE, not both")
+    if args.batch is None and not args.query.strip():
+        raise UsageError("the query is empty; type what you are looking for")
+    if args.k < 1:
+        raise UsageError(f"-k must be at least 1, not {args.k}")
     from codeseek.client import DaemonUnavailable
 
-    queries = _read_batch(args.batch) if args.batch is not None else [_query_text(args.query)]
-    options = {"languages": args.lang, "paths": args.path, "kinds": args.kind}
+    lines = _read_batch(args.batch) if args.batch is not None else [_query_text(args.query)]
+    queries = [line for line in lines if line]
+    options = _search_filters(args)
     results: list[list[SearchHit]] | None = None
     client = _daemon_client(args.repo, args)
     if client is not None and queries:
+        _open(args.repo, args, create=False).close()  # the same checks as in process
         try:
             results = client.search_many(queries, args.k, **options)
         except DaemonUnavailable:
@@ -286,8 +354,7 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         with _open(args.repo, args, create=False) as index:
             results = index.search_many(queries, args.k, **options) if queries else []
     if args.batch is not None:
-        for hits in results:
-            _print_json(hits, out)
+        _print_batch(lines, results, out)
         return EXIT_OK
     hits = results[0]
     if args.json:
@@ -295,6 +362,23 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     else:
         _print_hits(hits, out)
     return EXIT_OK
+
+
+def _search_filters(args: argparse.Namespace) -> dict[str, list[str]]:
+    """The filter options in the stored names, file patterns relative to the repository
+    root (read from the current folder); a value that cannot be used is a usage error."""
+    from codeseek.errors import UnsupportedLanguage
+    from codeseek.filtering import files_pattern, language_name, unit_kind
+
+    root = _root(args.repo).resolve()
+    try:
+        return {
+            "languages": list(dict.fromkeys(language_name(x) for x in args.languages)),
+            "paths": [files_pattern(x, root, Path.cwd().resolve()) for x in args.files],
+            "kinds": list(dict.fromkeys(unit_kind(x) for x in args.units)),
+        }
+    except (InvalidQuery, UnsupportedLanguage) as exc:
+        raise UsageError(str(exc)) from exc
 
 
 def _query_text(query: str) -> str:
@@ -309,7 +393,8 @@ def _query_text(query: str) -> str:
 
 
 def _read_batch(source: str) -> list[str]:
-    """The queries of a batch file or of stdin (``-``): UTF-8 text, one per line.
+    """The queries of a batch file or of stdin (``-``): UTF-8 text, one per line, every line
+    kept (stripped).
 
     The bytes are decoded here, not by the locale's text layer, so binary input
     is refused the same way on every system; a closed stdin is an error too.
@@ -322,6 +407,8 @@ def _read_batch(source: str) -> list[str]:
             data = stream.read() if stream is not None else sys.stdin.read()
         else:
             data = Path(source).read_bytes()
+    except FileNotFoundError as exc:
+        raise InvalidQuery(f"{source}: no such file") from exc
     except OSError as exc:
         raise InvalidQuery(f"{source}: cannot read the batch file: {exc}") from exc
     if isinstance(data, str):  # a text stream stood in for stdin (tests)
@@ -334,7 +421,25 @@ def _read_batch(source: str) -> list[str]:
     if "\0" in text:
         raise InvalidQuery(f"{source}: cannot read the batch: it holds a NUL byte "
                            f"(at offset {data.index(0)}); give one query per line as text")
-    return [line.strip() for line in text.splitlines() if line.strip()]
+    return [line.strip() for line in text.splitlines()]  # blank lines too: each gets an answer
+
+
+def no_hits_record(query: str) -> dict[str, object]:
+    """The JSON Lines record of a batch line with no hit (or a blank line): ``rank`` is
+    null, which no hit has, and ``hits`` is 0."""
+    return {"query": query, "rank": None, "hits": 0}
+
+
+def _print_batch(lines: Sequence[str], results: Sequence[Sequence[SearchHit]],
+                 out: TextIO) -> None:
+    """Every line's hits in line order; a line without any, one :func:`no_hits_record`."""
+    answers = iter(results)
+    for line in lines:
+        hits = next(answers) if line else []
+        if hits:
+            _print_json(hits, out)
+        else:
+            out.write(json.dumps(no_hits_record(line), ensure_ascii=False) + "\n")
 
 
 def _print_json(hits: Sequence[SearchHit], out: TextIO) -> None:
@@ -346,15 +451,64 @@ def _print_hits(hits: Sequence[SearchHit], out: TextIO) -> None:
     if not hits:
         print("no matches; try other words or fewer filters", file=out)
         return
+    columns = _columns()
     for hit in hits:  # repository text is escaped: shown, never obeyed by the terminal
         print(f"{hit.rank:>2}. {printable(hit.qualname)}  [{hit.kind}, {hit.language}]  "
               f"{printable(hit.path)}:{hit.start_line}", file=out)
         if hit.doc_summary:
-            print(f"    {_clip(printable(hit.doc_summary), 100)}", file=out)
-        lines = printable_block(hit.snippet.rstrip("\n")).split("\n")
-        for number, line in enumerate(lines[:3], hit.start_line):
-            print(f"    {number:>5} | {_clip(line, 90)}", file=out)
+            print(f"    {_clip(printable(hit.doc_summary), columns - 4)}", file=out)
+        for number, line in shown_code_lines(hit):
+            print(f"    {number:>5} | {_clip(printable_block(line), columns - 12)}", file=out)
         print(file=out)
+
+
+CODE_LINES = 3
+"""Lines of code plain search output shows per hit."""
+
+
+def _columns() -> int:
+    """The terminal's width (``COLUMNS`` first, as :func:`shutil.get_terminal_size` reads
+    it); 104 when output is not a terminal; never under 40."""
+    import shutil
+
+    return max(40, shutil.get_terminal_size((104, 24)).columns)
+
+
+def shown_code_lines(hit: SearchHit, count: int = CODE_LINES) -> list[tuple[int, str]]:
+    """(line number, text) of the code lines plain output shows: the snippet's first
+    lines, without a docstring (its summary is shown above them already)."""
+    lines = list(enumerate(hit.snippet.splitlines(), hit.start_line))
+    if hit.doc_summary and hit.language == "python":
+        rows = _docstring_rows(hit.snippet)
+        if rows is not None:
+            first, last = rows
+            lines = lines[: first - 1] + [pair for pair in lines[last:] if pair[1].strip()]
+    return lines[:count]
+
+
+def _docstring_rows(code: str) -> tuple[int, int] | None:
+    """The 1-based first and last rows of a Python docstring in ``code`` (a unit's first
+    lines, so the docstring may run past their end), or None when there is none."""
+    import io
+    import tokenize
+
+    header_done = False
+    found: tuple[int, int] | None = None
+    skipped = (tokenize.NL, tokenize.INDENT, tokenize.COMMENT)
+    try:
+        for token in tokenize.generate_tokens(io.StringIO(code).readline):
+            if not header_done:
+                header_done = token.type == tokenize.NEWLINE  # the def or class line ends
+            elif token.type == tokenize.STRING:
+                found = (found[0] if found else token.start[0], token.end[0])
+            elif token.type not in skipped:
+                return found if token.type in (tokenize.NEWLINE, tokenize.ENDMARKER) else None
+    except tokenize.TokenError as exc:
+        # only a string still open where the snippet ends gets here after the header
+        if header_done and found is None and len(exc.args) > 1:
+            return (int(exc.args[1][0]), code.count("\n") + 1)
+        return None
+    return found
 
 
 def _clip(text: str, width: int) -> str:
@@ -369,6 +523,7 @@ def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
 
     with _open(args.path, args, create=False) as index:
         status = index.status()
+        skipped = index.skipped_files() if args.skipped else None
     daemon: dict[str, Any] | None = None
     client = _daemon_client(args.path, args)
     if client is not None:
@@ -379,42 +534,60 @@ def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if args.json:
         record = status.to_json()
         record["daemon"] = daemon
+        if skipped is not None:
+            record["skipped_files"] = [{"path": p, "reason": r} for p, r in skipped]
         out.write(json.dumps(record, ensure_ascii=False) + "\n")
-        return EXIT_OK
+    elif skipped is not None:
+        out.write(format_skipped(skipped))
+    else:
+        out.write(format_status(status, daemon))
+    return EXIT_OK
+
+
+def format_skipped(skipped: Sequence[tuple[str, str]]) -> str:
+    """``status --skipped``: one ``path  reason`` line per file left out."""
+    return "".join(f"{printable(path)}  {reason}\n" for path, reason in skipped)
+
+
+def format_status(status: IndexStatus, daemon: dict[str, Any] | None) -> str:
+    """What ``codeseek status`` prints: the index's status and the daemon's, if one runs."""
     updated = (time.strftime("%Y-%m-%d %H:%M:%S", time.localtime(status.updated_at))
                if status.updated_at else "never")
-    print(f"repository   {printable(str(status.repo))}", file=out)
-    print(f"index        {printable(str(status.index_dir))} "
-          f"({status.bytes_on_disk / 1e6:.1f} MB)", file=out)
-    print(f"model        {printable(status.model_id or 'none yet')} "
-          f"({status.dim or '-'} dimensions)",
-          file=out)
-    print(f"contents     {status.files} files, {status.units} units", file=out)
-    for language, count in sorted(status.languages.items()):
-        print(f"             {count:>6} {language}", file=out)
-    print(f"updated      {updated} (generation {status.generation}; vector index "
-          f"{'in sync' if status.vectors_in_sync else 'will be rebuilt on next search'})",
-          file=out)
+    lines = [
+        f"repository   {printable(str(status.repo))}",
+        f"index        {printable(str(status.index_dir))} ({status.bytes_on_disk / 1e6:.1f} MB)",
+        f"model        {printable(status.model_id or 'none yet')} ({status.dim or '-'} dimensions)",
+        f"contents     {status.files} files, {status.units} units",
+    ]
+    lines += [f"             {count:>6} {language}"
+              for language, count in sorted(status.languages.items())]
+    lines.append(f"updated      {updated} (generation {status.generation}; vector index "
+                 f"{'in sync' if status.vectors_in_sync else 'will be rebuilt on next search'})")
     if status.files_with_syntax_errors:
-        print(f"warnings     {status.files_with_syntax_errors} files with syntax errors",
-              file=out)
-    print(f"adapter      {_adapter_words(status.adapter, status.model_id)}", file=out)
-    if daemon is None:
-        print("daemon       not running (searches load the index in their own process)",
-              file=out)
-    else:
-        last = (time.strftime("%H:%M:%S", time.localtime(daemon["last_update"]))
-                if daemon["last_update"] else "none yet")
-        print(f"daemon       pid {daemon['pid']}, {daemon['state']}, watching by "
-              f"{daemon['watcher']}, {daemon['pending']} changes pending, last update {last}",
-              file=out)
-        if daemon["last_error"]:
-            print(f"             last error: {printable(str(daemon['last_error']))}", file=out)
+        lines.append(f"warnings     {status.files_with_syntax_errors} files with syntax errors")
+    lines.append(f"adapter      {_adapter_words(status.adapter, status.model_id)}")
+    lines += _daemon_lines(daemon)
     if status.skipped:
-        print("left out", file=out)
-        for reason, count in sorted(status.skipped.items(), key=lambda kv: -kv[1]):
-            print(f"             {count:>6} {reason}", file=out)
-    return EXIT_OK
+        lines.append("left out      (`codeseek status --skipped` lists the files)")
+        lines += [f"             {count:>6} {reason}"
+                  for reason, count in sorted(status.skipped.items(), key=lambda kv: -kv[1])]
+    return "".join(line + "\n" for line in lines)
+
+
+def _daemon_lines(daemon: dict[str, Any] | None) -> list[str]:
+    if daemon is None:
+        return ["daemon       not running (searches load the index in their own process)"]
+    last = (time.strftime("%H:%M:%S", time.localtime(daemon["last_update"]))
+            if daemon["last_update"] else "none yet")
+    state, watcher = daemon["state"], daemon["watcher"]
+    doing = (f"watching for changes ({watcher})" if state == "watching"
+             else f"{state} (file watcher: {watcher})")
+    pending = daemon["pending"]
+    lines = [f"daemon       pid {daemon['pid']}, {doing}, {pending} "
+             f"{'change' if pending == 1 else 'changes'} pending, last update {last}"]
+    if daemon["last_error"]:
+        lines.append(f"             last error: {printable(str(daemon['last_error']))}")
+    return lines
 
 
 def _adapter_words(adapter: dict[str, Any] | None, model_id: str | None) -> str:
@@ -510,8 +683,7 @@ def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
 # -- eval and tune -----------------------------------------------------------------
 
 
-def _add_check_parsers(commands: Any) -> None:
-    """The parsers of ``eval`` and ``tune``."""
+def _eval_parser(commands: Any) -> None:
     evaluate = commands.add_parser(
         "eval", help="measure how well search finds this repository's held-out docstrings",
         description="Recall checks: hold out a share of the documented units, search for each "
@@ -523,6 +695,9 @@ def _add_check_parsers(commands: Any) -> None:
     evaluate.add_argument("--html", metavar="FILE",
                           help="also write a small self-contained HTML report to FILE")
     _common_index_options(evaluate)
+
+
+def _tune_parser(commands: Any) -> None:
     tune = commands.add_parser(
         "tune", help="adapt search to this repository with a query adapter",
         description="Train a query-side adapter on the training share of the repository's "
@@ -624,6 +799,9 @@ def main(argv: Sequence[str] | None = None, out: TextIO | None = None,
     os.environ.setdefault("TOKENIZERS_PARALLELISM", "false")
     try:
         return COMMANDS[args.command](args, out, err)
+    except UsageError as exc:
+        print(f"error: {printable(str(exc))}", file=err)
+        return EXIT_USAGE
     except CodeseekError as exc:
         print(f"error: {printable(str(exc))}", file=err)  # it may quote a file name
         return EXIT_ERROR

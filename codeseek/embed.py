@@ -18,6 +18,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import sys
 import tempfile
 from collections.abc import Callable, Sequence
 from functools import lru_cache
@@ -36,6 +37,7 @@ Progress = Callable[[int], None]
 DEFAULT_MODEL_NAME = "all-MiniLM-L6-v2"
 FAKE_DIM = 256
 _ONNX_INPUTS = ("input_ids", "attention_mask", "token_type_ids")
+EXPORT_NOTICE = "codeseek: preparing the embedding model for this machine (once, about 10 s)"
 
 
 @runtime_checkable
@@ -263,10 +265,17 @@ def export_onnx(folder: Path, target: Path) -> None:
     except ImportError as exc:
         raise ModelUnavailable("exporting the model to ONNX needs torch and transformers; "
                                "run scripts/setup.sh") from exc
+    from transformers.utils import logging as transformers_logging
+
+    bars = transformers_logging.is_progress_bar_enabled()
+    transformers_logging.disable_progress_bar()  # its "Loading weights" bar says nothing here
     try:
         model = AutoModel.from_pretrained(str(folder), attn_implementation="eager")
     except Exception as exc:
         raise ModelUnavailable(f"model folder {folder} cannot be loaded: {exc}") from exc
+    finally:
+        if bars:
+            transformers_logging.enable_progress_bar()
     model.eval()
 
     class _Hidden(torch.nn.Module):
@@ -313,6 +322,8 @@ class OnnxEmbedder:
         self.batch_size = batch_size
         graph = onnx_path(cache_dir, fingerprint)
         if not graph.exists():
+            # the one slow first step: say what it is (stderr, so JSON output stays clean)
+            print(EXPORT_NOTICE, file=sys.stderr, flush=True)
             export_onnx(folder, graph)
         try:
             import onnxruntime

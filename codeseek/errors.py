@@ -19,6 +19,8 @@ where they are raised, with ``raise ... from exc``.
     ├── ModelMismatch            the index was built with another model
     ├── UnsupportedLanguage      a language name codeseek does not know
     ├── InvalidQuery             an empty query or a bad filter
+    ├── UsageError               a command-line value or combination that cannot be used
+    │                            (the command line exits with status 2)
     ├── InvalidSplit             a held-out share outside (0, 1], or a split other than
     │                            the one the index's query adapter was trained on
     ├── TooFewExamples           too few documented units (or too small a batch) to check
@@ -75,6 +77,10 @@ class UnsupportedLanguage(CodeseekError):
 
 class InvalidQuery(CodeseekError):
     """The query or one of its filters cannot be used."""
+
+
+class UsageError(CodeseekError):
+    """A command-line value, or a combination of them, that cannot be used."""
 
 
 class InvalidSplit(CodeseekError):

@@ -20,10 +20,12 @@ content hash, and picks up where the last one stopped.
 from __future__ import annotations
 
 import hashlib
+import os
 import time
 from collections.abc import Callable, Iterable
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass, field
+from pathlib import Path
 
 from codeseek.config import Settings
 from codeseek.embed import Embedder
@@ -261,6 +263,7 @@ class Updater:
                             self.tally.files_removed += 1
                         if skipped is not None:
                             self.store.replace_skipped(skipped)
+                            self.store.set_manifest(repo=repository_record(self.settings.repo))
                     bump_generation(self.store)
                 self.sync_vectors()
         self.backfill()
@@ -344,6 +347,12 @@ def _batches(changes: list[FileChange]) -> list[list[FileChange]]:
 def may_have_changed(source: SourceFile, row: FileRow | None) -> bool:
     """Whether a file's size or mtime differ from what the store recorded."""
     return row is None or row.size != source.size or row.mtime_ns != source.mtime_ns
+
+
+def repository_record(repo: Path) -> str:
+    """How the manifest records the repository an index was built for (``repo``):
+    the path as text, undecodable bytes written as ``\\xNN``."""
+    return os.fsencode(repo).decode("utf-8", "backslashreplace")
 
 
 def bump_generation(store: Store) -> None:

@@ -23,11 +23,11 @@ import pathspec
 from codeseek.adapter import QueryAdapter
 from codeseek.embed import Embedder
 from codeseek.errors import InvalidQuery
+from codeseek.filtering import check_files_pattern, language_name, unit_kind
 from codeseek.hits import SearchHit
-from codeseek.languages import spec_by_name
 from codeseek.locks import ReadWriteLock
 from codeseek.store import Store, StoredUnit
-from codeseek.units import KINDS, CodeUnit, split_identifier
+from codeseek.units import CodeUnit, split_identifier
 from codeseek.vectors import VectorIndex, exact_search
 
 # The served fusion: each side's scores standardised over its candidates, then weighted
@@ -61,12 +61,16 @@ class Filters:
     kinds: tuple[str, ...] = ()
 
     def validate(self) -> None:
-        """Raise a clear error for an unknown language or kind."""
-        for language in self.languages:
-            spec_by_name(language)
-        for kind in self.kinds:
-            if kind not in KINDS:
-                raise InvalidQuery(f"unknown kind {kind!r}; choose one of: {', '.join(KINDS)}")
+        """Raise a clear error for an unknown language or unit, or an unusable pattern."""
+        self.normalised()
+
+    def normalised(self) -> Filters:
+        """The same filters in the stored names: ``Python`` -> ``python``, ``struct`` ->
+        ``class`` (:mod:`codeseek.filtering`); raises a clear error for a bad value."""
+        for pattern in self.paths:
+            check_files_pattern(pattern)
+        return Filters(tuple(dict.fromkeys(language_name(x) for x in self.languages)),
+                       self.paths, tuple(dict.fromkeys(unit_kind(x) for x in self.kinds)))
 
     @property
     def active(self) -> bool:
@@ -218,8 +222,7 @@ class Searcher:
     def search_many(self, queries: Sequence[str], k: int = 10,
                     filters: Filters | None = None) -> list[list[SearchHit]]:
         """The k best units for each query (queries are embedded in one batch)."""
-        filters = filters or Filters()
-        filters.validate()
+        filters = (filters or Filters()).normalised()
         if k <= 0:
             raise InvalidQuery(f"-k must be at least 1, not {k}")
         for query in queries:
@@ -299,8 +302,7 @@ def _hit(query: str, rank: int, score: float, similarity: float | None,
 def similar_units(searcher: Searcher, unit_id: int, k: int,
                   filters: Filters | None = None) -> list[SearchHit]:
     """The k units nearest to one unit's own vector ("more like this"), within filters."""
-    filters = filters or Filters()
-    filters.validate()
+    filters = (filters or Filters()).normalised()
     if k <= 0:
         raise InvalidQuery(f"-k must be at least 1, not {k}")
     with searcher.lock.read():

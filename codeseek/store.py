@@ -346,6 +346,11 @@ class Store:
         """Files left out by the latest scan, counted by reason."""
         return dict(self._query("SELECT reason, COUNT(*) FROM skipped GROUP BY reason"))
 
+    def skipped_files(self) -> list[tuple[str, str]]:
+        """(path, reason) of every file the latest scan left out, by path."""
+        return [(str(path), str(reason)) for path, reason in
+                self._query("SELECT path, reason FROM skipped ORDER BY path")]
+
     def counts(self) -> dict[str, int]:
         """How many files and units the index holds."""
         files = self._query("SELECT COUNT(*) FROM files")[0][0]

@@ -366,7 +366,8 @@ def test_cli_eval_errors(indexed: Path, tmp_path: Path) -> None:
     empty.mkdir()
     code, _, err = run_cli("eval", str(empty), "--backend", "fake")
     assert (code, err) == (1, f"error: no index at {empty / '.codeseek'}; "
-                              "build one with `codeseek index`\n")
+                              "build one with `codeseek index`; for an index built "
+                              "elsewhere, give --index-dir DIR or set CODESEEK_INDEX_DIR\n")
     target = tmp_path / "no" / "such" / "report.html"
     code, _, err = run_cli("eval", str(indexed), "--backend", "fake", "--html", str(target))
     assert (code, err) == (1, f"error: {target}: cannot write the report: the folder "

@@ -13,6 +13,7 @@ import base64
 import io
 import json
 import os
+import shutil
 import sqlite3
 import subprocess
 import sys
@@ -23,8 +24,10 @@ import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
+from codeseek.api import Index
 from codeseek.cli import main
 from codeseek.display import printable
+from codeseek.errors import InvalidQuery
 
 
 def run_cli(*argv: str) -> tuple[int, str, str]:
@@ -434,6 +437,48 @@ def test_an_uncreatable_cache_dir(indexed_copy: Path, tmp_path: Path,
                "directory); set CODESEEK_CACHE_DIR to a folder you can write\n")
 
 
+@pytest.mark.parametrize(("pattern", "reason"), [
+    ("[", "a '[' is never closed"),
+    ("src/[ab", "a '[' is never closed"),
+    ("[]", "a '[' is never closed"),
+    ("!", "'!' needs a pattern after it"),
+    ("\\", "a '\\' at the end escapes nothing"),
+    ("a\\", "a '\\' at the end escapes nothing"),
+    ("#notes", "a leading '#' makes it a comment; write '\\#' for the character"),
+    ("", "it is empty"),
+])
+def test_a_malformed_files_pattern_is_one_line(fake_index: object, sample_copy: Path,
+                                               pattern: str, reason: str) -> None:
+    for option in ("--files", "--path"):
+        code, out, err = run_cli("search", "fare", "--repo", str(sample_copy), "--backend",
+                              "fake", option, pattern)
+        assert (code, out) == (2, ""), pattern
+        assert err == f"error: invalid file pattern '{pattern}': {reason}\n"
+
+
+def test_the_library_refuses_a_malformed_pattern_too(fake_index: Index) -> None:
+    with pytest.raises(InvalidQuery, match="never closed"):
+        fake_index.search("fare", paths=["["])
+
+
+@pytest.mark.skipif(shutil.which("git") is None, reason="needs git")
+def test_git_matches_nothing_with_an_unclosed_bracket(tmp_path: Path) -> None:
+    """Refusing '[' loses nothing: as an ignore pattern, git matches no file with it."""
+    for name in ("[", "a", "[a"):
+        (tmp_path / name).write_text("x\n", encoding="utf-8")
+    (tmp_path / ".gitignore").write_text("[\n[a\n", encoding="utf-8")
+    env = {"PATH": os.environ.get("PATH", ""), "HOME": str(tmp_path),
+           "GIT_CONFIG_NOSYSTEM": "1", "GIT_CONFIG_GLOBAL": os.devnull}
+    subprocess.run(["git", "init", "-q", "."], cwd=tmp_path, env=env, check=True)
+    # reference: git ls-files --others --exclude-standard (what git does not ignore)
+    listed = subprocess.run(["git", "ls-files", "--others", "--exclude-standard", "-z"],
+                            cwd=tmp_path, env=env, capture_output=True, text=True,
+                            check=True).stdout
+    assert {p for p in listed.split("\0") if p} == {"[", "a", "[a", ".gitignore"}
+
+
+
+
 # == the daemon: requests, locks, sockets, first build ==
 
 
@@ -472,13 +517,14 @@ def _write_tree(root: bytes, names: list[bytes], start: int) -> None:
 
 
 def _check_run(argv: list[str]) -> None:
-    """One command: exit 0 and nothing on stderr, or exactly one ``error: ...`` line."""
+    """One command: exit 0 and nothing on stderr, or exactly one ``error: ...`` line
+    with status 1 (or 2 for a usage error, such as an empty query)."""
     code, out, err = run_cli(*argv)
     out.encode("utf-8")  # nothing that cannot be written to a UTF-8 terminal or pipe
     if code == 0:
         assert err == "", (argv, err)
     else:
-        assert code == 1, (argv, code, err)
+        assert code in (1, 2), (argv, code, err)
         assert len(err.splitlines()) == 1 and err.startswith("error: "), (argv, err)
         err.encode("utf-8")
 

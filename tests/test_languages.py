@@ -75,7 +75,7 @@ def test_every_grammar_wheel_is_a_declared_dependency() -> None:
 
 def test_readme_names_every_language() -> None:
     readme = (PROJECT / "README.md").read_text(encoding="utf-8")
-    row = next(line for line in readme.splitlines() if line.startswith("| `--lang L`"))
+    row = next(line for line in readme.splitlines() if line.startswith("| `--language L`"))
     listed = re.findall(r"`([a-z]+)`", row.split("|")[2])
     assert sorted(listed) == language_names()
 

@@ -99,3 +99,19 @@ def test_hnsw_recall_on_real_vectors(sample_index: Index) -> None:
         # reference: numpy brute-force cosine search
         agree += len(ann & {label for label, _ in exact_search(query, labels, matrix, 10)})
     assert agree / (10 * len(queries)) >= 0.99
+
+
+def test_the_first_export_says_what_it_does(tmp_path: Path,
+                                            capfd: pytest.CaptureFixture[str]) -> None:
+    """A fresh cache: one line of ours on stderr, not the library's loading bar."""
+    from codeseek.embed import EXPORT_NOTICE
+
+    settings = load_settings(SAMPLE_REPO).with_changes(cache_dir=tmp_path / "cache")
+    load_embedder(settings)
+    out, err = capfd.readouterr()
+    assert out == ""
+    assert err == EXPORT_NOTICE + "\n"
+    assert EXPORT_NOTICE == ("codeseek: preparing the embedding model for this machine "
+                             "(once, about 10 s)")
+    load_embedder(settings)  # exported: nothing more to say
+    assert capfd.readouterr() == ("", "")

@@ -772,7 +772,7 @@ def test_filter_set_cycles_and_removes() -> None:
     assert filters.cycled("lang", ["go", "rust"]).languages == ()
     assert filters.removed(0).chips == (("lang", "rust"),)
     assert filters.added(("kind", "class")) == filters
-    with pytest.raises(InvalidQuery, match="unknown kind 'macro'"):
+    with pytest.raises(InvalidQuery, match="unknown unit 'macro'"):
         filters.added(("kind", "macro"))
 
 
