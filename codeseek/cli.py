@@ -535,7 +535,7 @@ def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         record = status.to_json()
         record["daemon"] = daemon
         if skipped is not None:
-            record["skipped_files"] = [{"path": p, "reason": r} for p, r in skipped]
+            record["skipped_files"] = [{**json_path(p), "reason": r} for p, r in skipped]
         out.write(json.dumps(record, ensure_ascii=False) + "\n")
     elif skipped is not None:
         out.write(format_skipped(skipped))

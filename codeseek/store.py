@@ -348,7 +348,7 @@ class Store:
 
     def skipped_files(self) -> list[tuple[str, str]]:
         """(path, reason) of every file the latest scan left out, by path."""
-        return [(str(path), str(reason)) for path, reason in
+        return [(from_column(path), str(reason)) for path, reason in
                 self._query("SELECT path, reason FROM skipped ORDER BY path")]
 
     def counts(self) -> dict[str, int]:

@@ -218,6 +218,24 @@ def test_non_utf8_names_index_and_every_other_file_too(latin1_repo: Path, tmp_pa
     assert ": 0 added, 0 changed, 0 removed, 0 embedded," in again  # nothing seen as new
 
 
+def test_a_skipped_file_with_a_non_utf8_name_is_listed_escaped(latin1_repo: Path) -> None:
+    python = os.fsencode(latin1_repo / "python")
+    with open(os.path.join(python, b"notes\xe9.txt"), "wb") as handle:
+        handle.write(b"not source\n")
+    index_quietly(latin1_repo)
+    code, out, err = run_cli("status", str(latin1_repo), "--skipped")
+    assert code == 0, err
+    assert "python/notes\\xe9.txt  no supported language\n" in out
+    code, out, err = run_cli("status", str(latin1_repo), "--skipped", "--json")
+    assert code == 0, err
+    out.encode("utf-8")
+    listed = [record for record in json.loads(out)["skipped_files"]
+              if record["path"] == "python/notes\\xe9.txt"]
+    assert listed == [{"path": "python/notes\\xe9.txt",
+                       "path_bytes": base64.b64encode(b"python/notes\xe9.txt").decode("ascii"),
+                       "reason": "no supported language"}]
+
+
 def test_a_hit_in_a_non_utf8_file_is_shown_escaped_and_json_stays_utf8(latin1_repo: Path
                                                                       ) -> None:
     index_quietly(latin1_repo)
