@@ -220,6 +220,9 @@ class ScriptedSearcher:
         self.finished.append(query)
         return [fake_hit(query)]
 
+    def neighbours(self, unit_id: int, k: int = 10, **filters: Sequence[str]) -> list[SearchHit]:
+        return [fake_hit(f"near {unit_id}")]
+
     def queries(self) -> list[str]:
         """The searches the user's typing asked for (not the start-up warm-up)."""
         return [query for query in self.calls if query != WARM_UP_QUERY]
@@ -637,7 +640,8 @@ async def test_repository_text_is_shown_escaped_never_obeyed(tmp_path: Path) -> 
         assert "\\u202e.py:2" in shown["hit"]
         assert "def unlock():" in shown["code"]  # the code's own lines, numbered from 2
         await pilot.press("f3")  # the neighbours chip names the unit, escaped too
-        await pilot.pause()
+        await wait_until(pilot, lambda: app.shown is not None
+                         and app.shown.label.startswith("neighbours of "))
         assert escaped in plain(app.query_one(FilterStrip))
         assert "\x1b" not in plain(app.query_one(FilterStrip))
 
