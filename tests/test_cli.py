@@ -301,3 +301,19 @@ def test_neighbours_and_a_query_together_are_refused(indexed: Path) -> None:
     assert code == 1
     assert err == ("error: give a QUERY, --batch FILE or --neighbours PATH:NAME, "
                    "only one\n")
+
+
+def test_neighbours_of_a_name_two_units_share_asks_for_a_line(sample_copy: Path) -> None:
+    (sample_copy / "python" / "shifts.py").write_text(
+        "class Morning:\n    def run(self):\n        return 1\n\n\n"
+        "class Evening:\n    def run(self):\n        return 2\n", encoding="utf-8")
+    assert run_cli("index", str(sample_copy), "--backend", "fake", "-q")[0] == 0
+    code, _, err = run_cli("search", "--neighbours", "python/shifts.py:run", "--repo",
+                           str(sample_copy), "--backend", "fake")
+    assert code == 1
+    assert err == ("error: python/shifts.py: 2 units are named 'run' (lines 2, 7); "
+                   "name one by its line, PATH:LINE\n")
+    code, out, err = run_cli("search", "--neighbours", "python/shifts.py:Evening.run",
+                             "--repo", str(sample_copy), "--backend", "fake", "--json", "-k", "1")
+    assert code == 0, err
+    assert json.loads(out)["query"] == "neighbours of Evening.run"
