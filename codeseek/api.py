@@ -29,6 +29,7 @@ from codeseek.errors import (
     IndexLocked,
     IndexNotFound,
     IndexWriteError,
+    InvalidQuery,
     InvalidSplit,
     ModelMismatch,
     RepositoryNotFound,
@@ -42,7 +43,7 @@ from codeseek.indexer import (
 )
 from codeseek.locks import ReadWriteLock
 from codeseek.scan import ScanResult, SourceFile
-from codeseek.search import DEFAULT_FUSION, Filters, Fusion, Searcher, SearchHit, similar_units
+from codeseek.search import DEFAULT_FUSION, Filters, Fusion, Searcher, SearchHit, neighbour_units
 from codeseek.store import DB_NAME, Store, unlink_all
 from codeseek.vectors import HNSW_NAME, VectorIndex
 
@@ -322,11 +323,41 @@ class Index:
             cache.add(undocumented[int(label)], vector, borrowed=True)
         return cache
 
-    def similar(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
-                paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
-        """The k units nearest to one unit's own vector ("more like this")."""
+    def has_file(self, path: str) -> bool:
+        """Whether the index holds the file at this repository-relative path."""
+        return path in self.store.file_rows()
+
+    def unit_at(self, path: str, where: str) -> int:
+        """The unit of ``path`` (repository-relative) that ``where`` names: a qualified
+        name (or a name only one unit of the file has), or a line number (the innermost
+        unit whose lines hold it); its unit id. Raises InvalidQuery when none or several
+        fit."""
+        units = self.store.units_of_file(path)
+        if not units and not self.has_file(path):
+            raise InvalidQuery(f"{path}: not a file of the index")
+        if where.isdigit():
+            line = int(where)
+            holding = [s for s in units if s.unit.start_line <= line <= s.unit.end_line]
+            if not holding:
+                raise InvalidQuery(f"{path}: no unit holds line {line}")
+            chosen = min(holding, key=lambda s: (s.unit.end_line - s.unit.start_line,
+                                                 -s.unit.start_line))
+            return chosen.id
+        named = [s for s in units if s.unit.qualname == where] or [
+            s for s in units if s.unit.name == where]
+        if not named:
+            raise InvalidQuery(f"{path}: no unit named {where!r}")
+        if len(named) > 1:
+            lines = ", ".join(str(s.unit.start_line) for s in named)
+            raise InvalidQuery(f"{path}: {len(named)} units are named {where!r} (lines {lines}); "
+                               "name one by its line, PATH:LINE")
+        return named[0].id
+
+    def neighbours(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
+                   paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
+        """The unit's neighbours: the k units whose meaning is nearest this one's."""
         filters = Filters(tuple(languages), tuple(paths), tuple(kinds))
-        return similar_units(self.searcher(), unit_id, k, filters)
+        return neighbour_units(self.searcher(), unit_id, k, filters)
 
     def skipped_files(self) -> list[tuple[str, str]]:
         """(path, reason) of every file left out of the index, by path."""

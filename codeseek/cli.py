@@ -114,6 +114,10 @@ def _search_parser(commands: Any) -> None:
     search.add_argument("--batch", metavar="FILE",
                         help="read one query per line from FILE (- for stdin); "
                              "answers in JSON Lines")
+    search.add_argument("--neighbours", metavar="PATH:NAME",
+                        help="instead of a query: the units whose meaning is nearest this "
+                             "one, named PATH:QUALNAME or PATH:LINE (the innermost unit "
+                             "holding that line)")
     _common_index_options(search)
 
 
@@ -329,6 +333,8 @@ def format_summary(summary: UpdateSummary) -> str:
 
 
 def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    if args.neighbours is not None:
+        return _search_neighbours(args, out)
     if args.batch is None and args.query is None:
         raise UsageError("give a QUERY or --batch FILE")
     if args.batch is not None and args.query is not None:
@@ -362,6 +368,55 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     else:
         _print_hits(hits, out)
     return EXIT_OK
+
+
+def _search_neighbours(args: argparse.Namespace, out: TextIO) -> int:
+    """``search --neighbours PLACE``: the unit's neighbours, printed like a search."""
+    if args.query is not None or args.batch is not None:
+        raise UsageError("give a QUERY, --batch FILE or --neighbours PATH:NAME, only one")
+    from codeseek.client import DaemonUnavailable
+
+    options = _search_filters(args)
+    hits: list[SearchHit] | None = None
+    with _open(args.repo, args, create=False) as index:
+        unit_id = _unit_of_place(index, args.neighbours)
+        client = _daemon_client(args.repo, args)
+        if client is not None:
+            try:
+                hits = client.neighbours(unit_id, args.k, **options)
+            except DaemonUnavailable:
+                hits = None  # a stale socket: answer in this process
+        if hits is None:
+            hits = index.neighbours(unit_id, args.k, **options)
+    if args.json:
+        _print_json(hits, out)
+    else:
+        _print_hits(hits, out)
+    return EXIT_OK
+
+
+def _unit_of_place(index: Index, place: str) -> int:
+    """The unit id ``PATH:QUALNAME`` or ``PATH:LINE`` names. PATH is taken from where the
+    user stands, else from the repository root (as search prints it); a colon inside PATH
+    or the name is fine (the first split naming an indexed file wins)."""
+    splits = [at for at, char in enumerate(place) if char == ":" and 0 < at < len(place) - 1]
+    if not splits:
+        raise InvalidQuery(f"--neighbours wants PATH:QUALNAME or PATH:LINE, not {place!r}")
+    root = index.settings.repo.resolve()
+    outside: str | None = None
+    for at in splits:
+        given, where = place[:at], place[at + 1:]
+        full = (Path.cwd() / given).resolve()
+        candidates = [full.relative_to(root).as_posix()] if full.is_relative_to(root) else []
+        if not full.is_relative_to(root) and (full.exists() or Path(given).is_absolute()):
+            outside = outside or given
+        candidates.append(Path(given).as_posix())
+        for relative in candidates:
+            if index.has_file(relative):
+                return index.unit_at(relative, where)
+    if outside is not None:
+        raise InvalidQuery(f"{outside}: outside the repository {root}")
+    raise InvalidQuery(f"{place[:splits[0]]}: not a file of the index")
 
 
 def _search_filters(args: argparse.Namespace) -> dict[str, list[str]]:

@@ -71,10 +71,11 @@ class DaemonClient:
         """One query's answer."""
         return self.search_many([query], k, **filters)[0]
 
-    def similar(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
-                paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
-        """The units nearest to one unit's own vector ("more like this")."""
-        response = self.request({"op": "similar", "unit_id": unit_id, "k": k,
+    def neighbours(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
+                   paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
+        """The unit's neighbours (the units whose meaning is nearest its own), found by
+        the daemon."""
+        response = self.request({"op": "neighbours", "unit_id": unit_id, "k": k,
                                  "languages": list(languages), "paths": list(paths),
                                  "kinds": list(kinds)})
         return [SearchHit(**hit) for hit in response["results"][0]]

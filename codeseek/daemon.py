@@ -12,8 +12,8 @@ line. Every message carries ``"v": PROTOCOL_VERSION``. Requests:
 
 * ``{"v": 1, "op": "search", "queries": [...], "k": 10, "languages": [],
   "paths": [], "kinds": []}`` -> ``{"v": 1, "ok": true, "results": [[hit, ...], ...]}``
-* ``{"v": 1, "op": "similar", "unit_id": 42, "k": 10, ...filters}`` -> the units
-  nearest to that unit's own vector, as ``results``
+* ``{"v": 1, "op": "neighbours", "unit_id": 42, "k": 10, ...filters}`` -> the
+  unit's neighbours (the units whose meaning is nearest its own), as ``results``
 * ``{"v": 1, "op": "status"}`` -> ``{"v": 1, "ok": true, "index": {...}, "daemon": {...}}``
 * ``{"v": 1, "op": "shutdown"}`` -> ``{"v": 1, "ok": true}``
 
@@ -220,8 +220,8 @@ class Daemon:
         try:
             if op == "search":
                 return self._search(request)
-            if op == "similar":
-                return self._similar(request)
+            if op == "neighbours":
+                return self._neighbours(request)
             if op == "status":
                 return {"v": PROTOCOL_VERSION, "ok": True, "index": self.index.status().to_json(),
                         "daemon": self.daemon_status()}
@@ -231,7 +231,7 @@ class Daemon:
             return _error(f"malformed request: {exc}")
         except CodeseekError as exc:
             return _error(str(exc), type(exc).__name__)
-        return _error(f"unknown op {op!r}; use search, similar, status or shutdown")
+        return _error(f"unknown op {op!r}; use search, neighbours, status or shutdown")
 
     def _search(self, request: dict[str, Any]) -> dict[str, Any]:
         queries = _string_list(request, "queries")
@@ -245,12 +245,12 @@ class Daemon:
         return {"v": PROTOCOL_VERSION, "ok": True,
                 "results": [[dataclasses.asdict(hit) for hit in hits] for hits in results]}
 
-    def _similar(self, request: dict[str, Any]) -> dict[str, Any]:
+    def _neighbours(self, request: dict[str, Any]) -> dict[str, Any]:
         unit_id = request.get("unit_id")
         if not isinstance(unit_id, int) or isinstance(unit_id, bool):
             raise ValueError("'unit_id' must be a whole number")
         k = _k_of(request)
-        hits = self.index.similar(
+        hits = self.index.neighbours(
             unit_id, k, languages=_string_list(request, "languages"),
             paths=_string_list(request, "paths"), kinds=_string_list(request, "kinds"))
         return {"v": PROTOCOL_VERSION, "ok": True,

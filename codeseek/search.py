@@ -44,6 +44,8 @@ DENSE_WEIGHT = 0.6
 CANDIDATES = 200
 EXACT_FILTER_LIMIT = 50_000
 SNIPPET_LINES = 8
+NEIGHBOURS_OF = "neighbours of "
+"""How a neighbours answer names what it answers: ``neighbours of QUALNAME``."""
 # common practice: drop the most frequent English function words from lexical queries
 STOPWORDS = frozenset({
     "a", "an", "and", "are", "as", "at", "be", "by", "can", "do", "does", "for", "from",
@@ -299,9 +301,10 @@ def _hit(query: str, rank: int, score: float, similarity: float | None,
     )
 
 
-def similar_units(searcher: Searcher, unit_id: int, k: int,
-                  filters: Filters | None = None) -> list[SearchHit]:
-    """The k units nearest to one unit's own vector ("more like this"), within filters."""
+def neighbour_units(searcher: Searcher, unit_id: int, k: int,
+                    filters: Filters | None = None) -> list[SearchHit]:
+    """The unit's neighbours: the k units whose meaning is nearest its own (nearest to
+    its stored vector), within filters. Each hit's query reads ``neighbours of NAME``."""
     filters = (filters or Filters()).normalised()
     if k <= 0:
         raise InvalidQuery(f"-k must be at least 1, not {k}")
@@ -316,7 +319,7 @@ def similar_units(searcher: Searcher, unit_id: int, k: int,
         nearest = searcher.dense(matrix[0], max(CANDIDATES, k * 3) + 1, pool)
         ranked = [(other, cosine) for other, cosine in nearest if other != unit_id][:k]
         units = searcher.store.units_by_ids([other for other, _ in ranked])
-        label = f"like {own.unit.qualname}"
+        label = f"{NEIGHBOURS_OF}{own.unit.qualname}"
         hits: list[SearchHit] = []
         for other, cosine in ranked:
             if other in units:

@@ -394,6 +394,14 @@ class Store:
         for row in rows:
             yield _stored_unit(row)
 
+    def units_of_file(self, path: str) -> list[StoredUnit]:
+        """The stored units of one file (its repository-relative path), in source order."""
+        rows = self._query(
+            f"SELECT {self._UNIT_COLUMNS} FROM units u JOIN files f ON f.id=u.file_id "
+            "WHERE f.path=? ORDER BY u.start_line, u.id", (path,)
+        )
+        return [_stored_unit(row) for row in rows]
+
     def filtered_ids(self, languages: Sequence[str], kinds: Sequence[str]) -> list[int]:
         """Unit ids of the given languages and kinds (empty sequence: any)."""
         where: list[str] = []

@@ -598,3 +598,100 @@ def test_readme_cli_reference_matches_help() -> None:
     documented = {line.split("`")[1].split()[1] for line in reference.splitlines()
                   if line.startswith("### `codeseek ")}
     assert documented == set(subparsers.choices)
+
+
+# -- search --neighbours --------------------------------------------------------------
+
+
+REFUND = "python/kestrune/billing/payments.py"
+
+
+def _neighbour_places(indexed: Path, unit_qualname: str, k: int,
+                      **filters: list[str]) -> list[tuple[str, int, str]]:
+    """The reference: the library's own neighbours of the unit with that qualified name."""
+    from codeseek.api import open_index
+    from codeseek.embed import FakeEmbedder
+
+    with open_index(indexed, embedder=FakeEmbedder()) as index:
+        unit = next(s for s in index.store.units_of_file(REFUND)
+                    if s.unit.qualname == unit_qualname)
+        return [(h.path, h.start_line, h.qualname)
+                for h in index.neighbours(unit.id, k, **filters)]
+
+
+def test_neighbours_of_a_named_unit_print_like_a_search(indexed: Path) -> None:
+    code, out, err = run_cli("search", "--neighbours", f"{REFUND}:PaymentService.issue_refund",
+                             "--repo", str(indexed), "--backend", "fake", "--json", "-k", "5")
+    assert code == 0, err
+    records = [json.loads(line) for line in out.splitlines()]
+    assert [r["rank"] for r in records] == [1, 2, 3, 4, 5]
+    assert {r["query"] for r in records} == {"neighbours of PaymentService.issue_refund"}
+    assert [(r["path"], r["start_line"], r["qualname"]) for r in records] == _neighbour_places(
+        indexed, "PaymentService.issue_refund", 5)
+    assert "PaymentService.issue_refund" not in [r["qualname"] for r in records]
+    code, plain, err = run_cli("search", "--neighbours", f"{REFUND}:issue_refund",
+                               "--repo", str(indexed), "--backend", "fake", "-k", "5")
+    assert code == 0, err
+    assert plain.startswith(f" 1. {records[0]['qualname']}  [")
+
+
+def test_neighbours_of_a_line_take_the_innermost_unit(indexed: Path,
+                                                      monkeypatch: pytest.MonkeyPatch) -> None:
+    # line 110 is inside issue_refund (104-...), itself inside class PaymentService
+    monkeypatch.chdir(indexed / "python" / "kestrune")  # PATH from where the user stands
+    code, out, err = run_cli("search", "--neighbours", "billing/payments.py:110", "--json",
+                             "--backend", "fake", "--lang", "go", "-k", "3")
+    assert code == 0, err
+    records = [json.loads(line) for line in out.splitlines()]
+    assert {r["query"] for r in records} == {"neighbours of PaymentService.issue_refund"}
+    assert {r["language"] for r in records} == {"go"}
+    assert [(r["path"], r["start_line"], r["qualname"]) for r in records] == _neighbour_places(
+        indexed, "PaymentService.issue_refund", 3, languages=["go"])
+
+
+@pytest.mark.parametrize(("place", "message"), [
+    (f"{REFUND}:no_such_unit", f"{REFUND}: no unit named 'no_such_unit'"),
+    (f"{REFUND}:99999", f"{REFUND}: no unit holds line 99999"),
+    ("python/kestrune/nowhere.py:run", "python/kestrune/nowhere.py: not a file of the index"),
+    ("issue_refund", "--neighbours wants PATH:QUALNAME or PATH:LINE, not 'issue_refund'"),
+])
+def test_neighbours_of_an_unknown_unit_is_a_one_line_error(indexed: Path, place: str,
+                                                           message: str) -> None:
+    code, out, err = run_cli("search", "--neighbours", place, "--repo", str(indexed),
+                             "--backend", "fake")
+    assert (code, out) == (1, "")
+    assert err == f"error: {message}\n"
+
+
+def test_neighbours_of_a_path_outside_the_repository(indexed: Path, tmp_path: Path,
+                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    (tmp_path / "elsewhere.py").write_text("def run():\n    pass\n", encoding="utf-8")
+    monkeypatch.chdir(tmp_path)
+    code, out, err = run_cli("search", "--neighbours", "elsewhere.py:run", "--repo",
+                             str(indexed), "--backend", "fake")
+    assert (code, out) == (1, "")
+    assert err == f"error: elsewhere.py: outside the repository {indexed.resolve()}\n"
+
+
+def test_neighbours_and_a_query_together_are_refused(indexed: Path) -> None:
+    code, _, err = run_cli("search", "refund", "--neighbours", f"{REFUND}:issue_refund",
+                           "--repo", str(indexed), "--backend", "fake")
+    assert code == 2  # a usage error
+    assert err == ("error: give a QUERY, --batch FILE or --neighbours PATH:NAME, "
+                   "only one\n")
+
+
+def test_neighbours_of_a_name_two_units_share_asks_for_a_line(sample_copy: Path) -> None:
+    (sample_copy / "python" / "shifts.py").write_text(
+        "class Morning:\n    def run(self):\n        return 1\n\n\n"
+        "class Evening:\n    def run(self):\n        return 2\n", encoding="utf-8")
+    assert run_cli("index", str(sample_copy), "--backend", "fake", "-q")[0] == 0
+    code, _, err = run_cli("search", "--neighbours", "python/shifts.py:run", "--repo",
+                           str(sample_copy), "--backend", "fake")
+    assert code == 1
+    assert err == ("error: python/shifts.py: 2 units are named 'run' (lines 2, 7); "
+                   "name one by its line, PATH:LINE\n")
+    code, out, err = run_cli("search", "--neighbours", "python/shifts.py:Evening.run",
+                             "--repo", str(sample_copy), "--backend", "fake", "--json", "-k", "1")
+    assert code == 0, err
+    assert json.loads(out)["query"] == "neighbours of Evening.run"

@@ -228,8 +228,8 @@ def test_oversized_request_is_refused(daemon: Daemon) -> None:
     (b'{"v": 1, "op": "read_file", "path": "/etc/passwd"}\n', "unknown op"),
     (b'{"v": 1, "op": "search", "queries": "x"}\n', "'queries' must be a list"),
     (b'{"v": 1, "op": "search", "queries": ["x"], "k": 0}\n', "'k' must be"),
-    (b'{"v": 1, "op": "similar", "unit_id": "7"}\n', "'unit_id' must be"),
-    (b'{"v": 1, "op": "similar", "unit_id": 999999}\n', "no longer in the index"),
+    (b'{"v": 1, "op": "neighbours", "unit_id": "7"}\n', "'unit_id' must be"),
+    (b'{"v": 1, "op": "neighbours", "unit_id": 999999}\n', "no longer in the index"),
 ])
 def test_bad_requests_get_clear_errors(daemon: Daemon, line: bytes, words: str) -> None:
     response = json.loads(raw_exchange(daemon.index.settings.index_dir / SOCKET_NAME, line))
@@ -252,6 +252,17 @@ def test_fuzzed_requests_never_break_the_daemon(daemon: Daemon, payload: bytes) 
     for hits in response.get("results", []):
         for hit in hits:  # only indexed text is ever served
             assert (daemon.index.settings.repo / hit["path"]).is_file()
+
+
+def test_the_neighbours_op_answers_as_the_library(daemon: Daemon, client: DaemonClient) -> None:
+    own = daemon.index.search("issue refund", 1)[0]
+    served = client.neighbours(own.unit_id, 6, languages=["python"])
+    assert [h.unit_id for h in served] == [
+        h.unit_id for h in daemon.index.neighbours(own.unit_id, 6, languages=["python"])]
+    assert served and {h.query for h in served} == {f"neighbours of {own.qualname}"}
+    # the op's old name is gone, and the error names the ops there are
+    response = daemon.handle_line(b'{"v": 1, "op": "similar", "unit_id": 1}')
+    assert response["error"] == "unknown op 'similar'; use search, neighbours, status or shutdown"
 
 
 def test_paths_outside_the_repository_serve_nothing(client: DaemonClient) -> None:

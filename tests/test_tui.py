@@ -30,7 +30,7 @@ from codeseek.api import Index, IndexStatus
 from codeseek.errors import InvalidQuery
 from codeseek.search import Filters
 from codeseek.tui.app import WARM_UP_QUERY, CodeseekApp, Request, _ProgressReport, _Stopped
-from codeseek.tui.backend import LocalIndexer, similar_hits
+from codeseek.tui.backend import LocalIndexer, neighbour_hits
 from codeseek.tui.editor import editor_command
 from codeseek.tui.filters import FilterSet, query_words, take_chips
 from codeseek.tui.keys import KEYS
@@ -220,6 +220,9 @@ class ScriptedSearcher:
         self.finished.append(query)
         return [fake_hit(query)]
 
+    def neighbours(self, unit_id: int, k: int = 10, **filters: Sequence[str]) -> list[SearchHit]:
+        return [fake_hit(f"near {unit_id}")]
+
     def queries(self) -> list[str]:
         """The searches the user's typing asked for (not the start-up warm-up)."""
         return [query for query in self.calls if query != WARM_UP_QUERY]
@@ -356,14 +359,14 @@ async def test_typed_filters_become_chips_and_narrow_the_hits(index: Index,
     async with app.run_test(size=(120, 40)) as pilot:
         await ask(pilot, app, "decode packet")
         assert {h.language for h in app.hits} > {"go"}
-        await pilot.press(*" lang:go ")  # typed: the word becomes a chip at the space
+        await pilot.press(*" language=go ")  # typed: the word becomes a chip at the space
         await answered(pilot, app, "decode packet")
         assert app.query_one(QueryLine).value == "decode packet "
         assert app.filter_set.languages == ("go",)
-        assert "[lang:go ✕]" in plain(app.query_one(FilterStrip))
+        assert "[language=go ✕]" in plain(app.query_one(FilterStrip))
         assert app.hits and {h.language for h in app.hits} == {"go"}
         assert len(app.hits) < app.k
-        await pilot.press("ctrl+t")  # next kind: function
+        await pilot.press("f5")  # next unit kind: function
         await answered(pilot, app, "decode packet")
         assert {(h.language, h.kind) for h in app.hits} == {("go", "function")}
         expected = index.search("decode packet", app.k, languages=["go"], kinds=["function"])
@@ -378,18 +381,18 @@ async def test_typed_filters_become_chips_and_narrow_the_hits(index: Index,
 async def test_a_chip_is_removed_by_click_and_by_backspace(index: Index, repo: Path) -> None:
     app = make_app(index, repo)
     async with app.run_test(size=(120, 40)) as pilot:
-        app.query_one(QueryLine).value = "lang:python kind:method path:billing/ "
+        app.query_one(QueryLine).value = "language=python unit=method files=billing/ "
         await pilot.pause()
-        assert app.filter_set.chips == (("lang", "python"), ("kind", "method"),
-                                        ("path", "billing/"))
+        assert app.filter_set.chips == (("language", "python"), ("unit", "method"),
+                                        ("files", "billing/"))
         assert app.query_one(QueryLine).value == ""
         await pilot.press("backspace")  # empty line: drops the newest chip
-        assert app.filter_set.chips == (("lang", "python"), ("kind", "method"))
+        assert app.filter_set.chips == (("language", "python"), ("unit", "method"))
         strip = plain(app.query_one(FilterStrip))
-        column = strip.index("[kind:method")
+        column = strip.index("[unit=method")
         await pilot.click(FilterStrip, offset=(1 + column + 2, 0))  # padding 1
         await pilot.pause()
-        assert app.filter_set.chips == (("lang", "python"),)
+        assert app.filter_set.chips == (("language", "python"),)
 
 
 @in_loop
@@ -397,12 +400,12 @@ async def test_filters_that_match_nothing_suggest_removing_one(index: Index,
                                                               repo: Path) -> None:
     app = make_app(index, repo)
     async with app.run_test() as pilot:
-        app.query_one(QueryLine).value = "refund path:nowhere/ "
+        app.query_one(QueryLine).value = "refund files=nowhere/ "
         await answered(pilot, app, "refund")
         assert app.hits == []
         notice = plain(app.query_one("#notice-text"))
         assert "No matches for “refund”." in notice
-        assert "Filters in use: path:nowhere/. Remove one to widen the search" in notice
+        assert "Filters in use: files=nowhere/. Remove one to widen the search" in notice
         assert app.query_one(Notice).display and not app.query_one(HitList).display
 
 
@@ -412,7 +415,7 @@ async def test_an_unknown_language_is_a_one_line_message(index: Index, repo: Pat
 
     app = make_app(index, repo)
     async with app.run_test() as pilot:
-        await pilot.press(*"lang:cobol ")
+        await pilot.press(*"language=cobol ")
         assert app.filter_set.chips == ()
         names = ", ".join(language_names())
         assert app.messages == [f"unknown language 'cobol'; choose one of: {names}"]
@@ -427,11 +430,24 @@ async def test_language_cycling_follows_the_index(index: Index, repo: Path) -> N
         order = sorted(counts, key=lambda name: (-counts[name], name))
         seen = []
         for _ in order:
-            await pilot.press("ctrl+l")
+            await pilot.press("f4")
             seen.append(app.filter_set.languages)
-        await pilot.press("ctrl+l")
+        await pilot.press("f4")
         assert seen == [(name,) for name in order]
         assert app.filter_set.languages == ()
+
+
+@in_loop
+async def test_clearing_the_query_drops_the_hit_count_from_the_title(index: Index,
+                                                                     repo: Path) -> None:
+    app = make_app(index, repo)
+    async with app.run_test() as pilot:
+        await ask(pilot, app, "issue refund")
+        pane = app.query_one("#hits-pane")
+        assert pane.border_title == f"hits · {len(app.hits)}"
+        app.query_one(QueryLine).value = ""
+        await wait_until(pilot, lambda: app.query_one(Notice).display)
+        assert pane.border_title == "hits"
 
 
 # -- acting on a hit -----------------------------------------------------------------------
@@ -504,21 +520,62 @@ async def test_copy_puts_path_and_line_on_the_clipboard(index: Index, repo: Path
     app = make_app(index, repo)
     async with app.run_test() as pilot:
         await ask(pilot, app, "issue refund")
-        await pilot.press("ctrl+y")
+        await pilot.press("f2")
         assert app.clipboard == f"{REFUND_PATH}:{REFUND_LINE}"
-        assert app.messages == [f"copied {REFUND_PATH}:{REFUND_LINE}"]
+        await wait_until(pilot, lambda: bool(app.messages))
+        assert app.messages == [f"copied {REFUND_PATH}:{REFUND_LINE} through the terminal "
+                                "(OSC 52)"]
+
+
+def test_osc52_and_its_wrappings_for_a_multiplexer() -> None:
+    import base64
+
+    from codeseek.tui.clipboard import copy_commands, osc52, passthrough
+
+    # xterm's control sequences: OSC 52 ; Pc ; Pd BEL, Pd the base64 of the text
+    encoded = base64.b64encode("src/ä.py:3".encode()).decode()
+    assert osc52("src/ä.py:3") == f"\x1b]52;c;{encoded}\x07"
+    # tmux hands on a DCS "tmux;" string with every ESC inside doubled; screen a plain DCS
+    assert passthrough("x", {"TMUX": "/tmp/tmux-1/default,7,0"}) == (
+        "\x1bPtmux;\x1b\x1b]52;c;eA==\x07\x1b\\")
+    assert passthrough("x", {"STY": "12.pts-0.host"}) == "\x1bP\x1b]52;c;eA==\x07\x1b\\"
+    assert passthrough("x", {}) is None
+    assert copy_commands({"TMUX": "t"}, "linux")[0] == ["tmux", "load-buffer", "-w", "-"]
+    assert copy_commands({"DISPLAY": ":0"}, "linux")[0][0] == "xclip"
+    assert copy_commands({}, "darwin") == [["pbcopy"]]
+    assert copy_commands({}, "linux") == []
 
 
 @in_loop
-async def test_more_like_this_searches_by_the_units_own_vector(index: Index,
-                                                               repo: Path) -> None:
+async def test_copy_also_runs_the_desktops_copy_command(index: Index, repo: Path,
+                                                        tmp_path: Path) -> None:
+    tools = tmp_path / "bin"
+    tools.mkdir()
+    record = tmp_path / "copied.txt"
+    fake = tools / "xclip"  # a stand-in: keeps what it reads and its arguments
+    fake.write_text(f'#!/bin/sh\necho "$@" > "{record}.args"\ncat > "{record}"\n',
+                    encoding="utf-8")
+    fake.chmod(0o755)
+    app = make_app(index, repo, env={"DISPLAY": ":0", "PATH": f"{tools}:/usr/bin:/bin"})
+    async with app.run_test() as pilot:
+        await ask(pilot, app, "issue refund")
+        await pilot.press("f2")
+        await wait_until(pilot, lambda: bool(app.messages))
+        assert app.messages == [f"copied {REFUND_PATH}:{REFUND_LINE} (with xclip)"]
+    assert record.read_text(encoding="utf-8") == f"{REFUND_PATH}:{REFUND_LINE}"
+    assert Path(f"{record}.args").read_text(encoding="utf-8") == "-selection clipboard\n"
+
+
+@in_loop
+async def test_neighbours_search_by_the_units_own_vector(index: Index,
+                                                         repo: Path) -> None:
     app = make_app(index, repo)
     async with app.run_test(size=(120, 40)) as pilot:
         await ask(pilot, app, "issue refund")
         source = app.hits[0]
-        await pilot.press("ctrl+n")
-        await answered(pilot, app, f"like {source.qualname}")
-        assert f"[like:{source.qualname} ✕]" in plain(app.query_one(FilterStrip))
+        await pilot.press("f3")
+        await answered(pilot, app, f"neighbours of {source.qualname}")
+        assert f"[near={source.qualname} ✕]" in plain(app.query_one(FilterStrip))
         # reference: brute-force cosine over every stored vector
         model = index.searcher().embedder
         labels, matrix = index.store.unit_vectors(model.model_id, model.dim)
@@ -531,21 +588,86 @@ async def test_more_like_this_searches_by_the_units_own_vector(index: Index,
         assert got[:5] == order[:5]
         assert [h.similarity for h in app.hits] == sorted(
             (h.similarity for h in app.hits), reverse=True)
-        await pilot.press("x")  # in the hit list: drop every filter and the like-mode
+        await pilot.press("x")  # in the hit list: drop every filter and the neighbours
         await answered(pilot, app, "issue refund")
 
 
-def test_more_like_this_respects_filters(fake_index: Index) -> None:
+def test_neighbours_respect_filters(fake_index: Index) -> None:
     hit = fake_index.search("issue refund", 1)[0]
-    found = similar_hits(fake_index, hit, 10, Filters(("go",), (), ()))
+    found = neighbour_hits(fake_index, hit, 10, Filters(("go",), (), ()))
     assert found and {h.language for h in found} == {"go"}
-    assert all(h.query == f"like {hit.qualname}" for h in found)
+    assert all(h.query == f"neighbours of {hit.qualname}" for h in found)
 
 
-def test_more_like_this_needs_a_searcher_that_can() -> None:
-    hit = fake_hit("x")
-    with pytest.raises(InvalidQuery, match="cannot search by a unit's vector"):
-        similar_hits(ScriptedSearcher(), hit, 5, Filters())
+HOSTILE = "\x1b]0;owned\x07\x1b[2J"
+"""What a cloned repository may hold in a name, a doc or code: set the title, clear."""
+
+
+class HostileSearcher(ScriptedSearcher):
+    """Answers with one unit whose name, path, doc and code hold terminal escapes."""
+
+    def __init__(self, path: str) -> None:
+        super().__init__()
+        self.path = path
+
+    def search(self, query: str, k: int = 10, **filters: Sequence[str]) -> list[SearchHit]:
+        hit = fake_hit(query)
+        return [dataclasses.replace(
+            hit, path=self.path, qualname=f"Dock{HOSTILE}.unlock", name="unlock",
+            doc_summary=f"Unlock a dock{HOSTILE}. Then more.", start_line=2, end_line=3)]
+
+
+@in_loop
+async def test_repository_text_is_shown_escaped_never_obeyed(tmp_path: Path) -> None:
+    name = f"dock{HOSTILE}\u202e.py"
+    (tmp_path / name).write_text(f"# header\ndef unlock():\n    return '{HOSTILE}'\n",
+                                 encoding="utf-8")
+    app = make_app(HostileSearcher(name), tmp_path)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await ask(pilot, app, "unlock")
+        shown = {
+            "hit": option_texts(app)[0],
+            "head": reader_text(app),
+            "code": code_text(app),
+            "title": str(app.query_one(Reader).border_title),
+            "chips": plain(app.query_one(FilterStrip)),
+        }
+        escaped = HOSTILE.replace("\x1b", "\\x1b").replace("\x07", "\\x07")
+        for where, text in shown.items():
+            assert "\x1b" not in text and "\x07" not in text and "\u202e" not in text, where
+        for where in ("hit", "head", "code", "title"):
+            assert escaped in shown[where], where
+        assert "\\u202e.py:2" in shown["hit"]
+        assert "def unlock():" in shown["code"]  # the code's own lines, numbered from 2
+        await pilot.press("f3")  # the neighbours chip names the unit, escaped too
+        await wait_until(pilot, lambda: app.shown is not None
+                         and app.shown.label.startswith("neighbours of "))
+        assert escaped in plain(app.query_one(FilterStrip))
+        assert "\x1b" not in plain(app.query_one(FilterStrip))
+
+
+def test_the_reader_counts_lines_as_the_parser_does(tmp_path: Path) -> None:
+    # a form feed, a file separator and a line separator end no line for tree-sitter
+    # (it counts "\n" only; Python's str.splitlines would break at each of them)
+    (tmp_path / "m.py").write_text("a = 1\f\n\x1c b = 2\n# \u2028 c\ndef run():\n    pass\n",
+                                   encoding="utf-8")
+    hit = dataclasses.replace(fake_hit("x"), path="m.py", start_line=4, end_line=5)
+    source = SourceCache(tmp_path).unit(hit)
+    assert source.code == "def run():\n    pass"
+    from codeseek.languages import spec_for_path
+    from codeseek.parse import parse_source
+
+    path = tmp_path / "m.py"
+    spec = spec_for_path("m.py")
+    assert spec is not None
+    parsed = parse_source("m.py", path.read_bytes(), spec)
+    assert [(u.qualname, u.start_line) for u in parsed.units] == [("run", 4)]
+    # a lone carriage return ends a Python line (as Python's own tokenizer says)
+    path.write_bytes(b"a = 1\rb = 2\ndef run():\n    pass\n")
+    parsed = parse_source("m.py", path.read_bytes(), spec)
+    assert [(u.qualname, u.start_line) for u in parsed.units] == [("run", 3)]
+    hit = dataclasses.replace(hit, start_line=3, end_line=4)
+    assert SourceCache(tmp_path).unit(hit).code == "def run():\n    pass"
 
 
 # -- the index line and building ---------------------------------------------------------
@@ -684,7 +806,8 @@ async def test_reindex_without_a_builder_says_why(repo: Path) -> None:
     app = make_app(ScriptedSearcher(), repo)
     async with app.run_test() as pilot:
         await pilot.press("ctrl+r")
-        assert app.messages == ["this searcher keeps its index up to date by itself"]
+        assert app.messages == ["a running `codeseek watch` keeps this index up to date by "
+                                "itself; nothing to rebuild here"]
         assert not app.indexing
 
 
@@ -711,6 +834,68 @@ async def test_help_lists_every_bound_key(index: Index, repo: Path) -> None:
         await pilot.press("q")
         assert not isinstance(app.screen, KeyList)
         assert app.query_one(QueryLine).value == ""
+
+
+@in_loop
+async def test_help_explains_the_marks_on_the_screen(index: Index, repo: Path) -> None:
+    app = make_app(index, repo)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await pilot.press("f1")
+        assert isinstance(app.screen, KeyList)
+        sections = dict(app.screen.sections())
+    rows = dict(sections["On the screen"])
+    marks = " ".join(rows)
+    assert score_bar(0.6) in marks and "words" in rows and "❱ 104" in rows
+    assert "near=NAME" in rows
+    assert "how near its meaning is to the query" in rows[score_bar(0.6)]
+    assert "matched the query's words only" in rows["words"]
+    assert "shares a word with the query" in rows["❱ 104"]
+
+
+# Line-editing keys of a terminal's line editor (GNU readline's emacs mode, from its
+# manual's "Commands For Moving", "Commands For Manipulating The History", "Commands For
+# Changing Text" and "Killing And Yanking"; the list is from memory).
+LINE_EDITING_KEYS = {"ctrl+a", "ctrl+b", "ctrl+d", "ctrl+e", "ctrl+f", "ctrl+h", "ctrl+k",
+                     "ctrl+l", "ctrl+n", "ctrl+p", "ctrl+t", "ctrl+u", "ctrl+w", "ctrl+y"}
+
+
+def test_keys_that_reach_the_query_line_leave_line_editing_alone() -> None:
+    from textual.widgets import Input
+
+    reaching = {name for key in KEYS if key.where in ("anywhere", "query")
+                for name in key.keys.split(",")}
+    input_keys = {name for binding in Input.BINDINGS
+                  for name in binding.key.split(",")}  # type: ignore[union-attr]
+    assert reaching & LINE_EDITING_KEYS == set()
+    assert reaching & input_keys <= {"enter", "backspace"}  # taken over on purpose, in KEYS
+
+
+@in_loop
+async def test_line_editing_keys_in_the_query_line_run_no_action(index: Index,
+                                                                 repo: Path) -> None:
+    app = make_app(index, repo)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await ask(pilot, app, "issue refund")
+        app.query_one(QueryLine).focus()
+        for key in ("ctrl+y", "ctrl+n", "ctrl+l", "ctrl+t"):
+            await pilot.press(key)
+        await pilot.pause()
+        assert app.clipboard == "" and app.messages == []
+        assert app._near is None and app.filter_set.chips == ()
+        assert app.query_one(QueryLine).value == "issue refund"
+        # their actions live on function keys and on letters of the hit list
+        await pilot.press("f4")
+        assert app.filter_set.languages != ()
+        await pilot.press("ctrl+g", "down")
+        await wait_until(pilot, lambda: app.focused is app.query_one(HitList))
+        await pilot.press("u")
+        assert app.filter_set.kinds == ("function",)
+        await pilot.press("x")
+        await answered(pilot, app, "issue refund")
+        selected = app.selected_hit
+        assert selected is not None
+        await pilot.press("n")
+        await answered(pilot, app, f"neighbours of {selected.qualname}")
 
 
 def _binding(key: str) -> Any:
@@ -754,26 +939,31 @@ async def test_ctrl_q_quits_from_the_query_line(index: Index, repo: Path) -> Non
 
 
 def test_take_chips_only_takes_finished_words() -> None:
-    assert take_chips("retry lang:go ") == ("retry ", [("lang", "go")])
-    assert take_chips("kind:method retry upload") == ("retry upload", [("kind", "method")])
-    assert take_chips("retry lang:go") == ("retry lang:go", [])
-    assert take_chips("path:a/b/ lang:rust x") == ("x", [("path", "a/b/"), ("lang", "rust")])
-    assert take_chips("catalog:go ") == ("catalog:go ", [])
-    assert query_words("retry lang:g") == "retry"
-    assert query_words("retry lang:go now") == "retry lang:go now"
+    assert take_chips("retry language=go ") == ("retry ", [("language", "go")])
+    assert take_chips("unit=method retry upload") == ("retry upload", [("unit", "method")])
+    assert take_chips("retry language=go") == ("retry language=go", [])
+    assert take_chips("files=a/b/ language=rust x") == (
+        "x", [("files", "a/b/"), ("language", "rust")])
+    assert take_chips("catalog=go ") == ("catalog=go ", [])
+    assert query_words("retry language=g") == "retry"
+    assert query_words("retry language=go now") == "retry language=go now"
+    # the colon words of other tools are plain query words here
+    assert take_chips("lang:go kind:method path:src/ x") == (
+        "lang:go kind:method path:src/ x", [])
 
 
 def test_filter_set_cycles_and_removes() -> None:
-    filters = FilterSet().added(("kind", "class"))
-    filters = filters.cycled("lang", ["go", "rust"])
-    assert filters.chips == (("kind", "class"), ("lang", "go"))
-    filters = filters.cycled("lang", ["go", "rust"])
+    filters = FilterSet().added(("unit", "class"))
+    filters = filters.cycled("language", ["go", "rust"])
+    assert filters.chips == (("unit", "class"), ("language", "go"))
+    filters = filters.cycled("language", ["go", "rust"])
     assert filters.languages == ("rust",)
-    assert filters.cycled("lang", ["go", "rust"]).languages == ()
-    assert filters.removed(0).chips == (("lang", "rust"),)
-    assert filters.added(("kind", "class")) == filters
+    assert filters.cycled("language", ["go", "rust"]).languages == ()
+    assert filters.removed(0).chips == (("language", "rust"),)
+    assert filters.added(("unit", "class")) == filters
+    assert filters.kinds == ("class",)
     with pytest.raises(InvalidQuery, match="unknown unit 'macro'"):
-        filters.added(("kind", "macro"))
+        filters.added(("unit", "macro"))
 
 
 def test_score_cells() -> None:
@@ -946,6 +1136,90 @@ async def test_no_color_keeps_the_marks_visible(monkeypatch: pytest.MonkeyPatch,
         style = app.query_one(HitList).get_component_styles("option-list--option-highlighted")
         assert style.text_style.reverse
         assert f"❱ {REFUND_LINE}" in code_text(app)
+        assert code_colours(app.query_one("#reader-code", Static).content) == {}
+
+
+# -- the reader's colours ----------------------------------------------------------------
+
+
+def code_colours(renderable: Any) -> dict[str, set[str]]:
+    """The colours a renderable is drawn in (truecolor), with the text drawn in each."""
+    from rich.console import Console
+
+    console = Console(width=120, color_system="truecolor", file=io.StringIO())
+    found: dict[str, set[str]] = {}
+    for segment in console.render(renderable):
+        color = segment.style.color if segment.style is not None else None
+        if color is not None and segment.text.strip():
+            found.setdefault(color.get_truecolor().hex, set()).add(segment.text.strip())
+    return found
+
+
+def _relative_luminance(colour: str) -> float:
+    # WCAG 2.1, "relative luminance" (sRGB channels linearised, then weighted)
+    channels = [int(colour.lstrip("#")[i:i + 2], 16) / 255 for i in (0, 2, 4)]
+    linear = [c / 12.92 if c <= 0.04045 else ((c + 0.055) / 1.055) ** 2.4 for c in channels]
+    return 0.2126 * linear[0] + 0.7152 * linear[1] + 0.0722 * linear[2]
+
+
+def contrast(first: str, second: str) -> float:
+    """WCAG 2.1's contrast ratio, (L1 + 0.05) / (L2 + 0.05)."""
+    high, low = sorted((_relative_luminance(first), _relative_luminance(second)), reverse=True)
+    return (high + 0.05) / (low + 0.05)
+
+
+def test_the_code_style_is_codeseeks_own_and_no_shipped_one() -> None:
+    from pygments.styles import get_all_styles, get_style_by_name
+
+    from codeseek.tui.theme import (
+        CODE_TOKENS,
+        DARK_PALETTE,
+        LIGHT_PALETTE,
+        HarbourCodeDark,
+        HarbourCodeLight,
+    )
+
+    for style, palette in ((HarbourCodeDark, DARK_PALETTE), (HarbourCodeLight, LIGHT_PALETTE)):
+        assert style.__module__ == "codeseek.tui.theme"
+        ours = {token: style.style_for_token(token)["color"] for token in CODE_TOKENS}
+        assert {f"#{colour}" for colour in ours.values()} <= set(palette.values())
+        for name in get_all_styles():  # every style pygments ships (and any installed)
+            shipped = get_style_by_name(name)
+            assert shipped is not style
+            same = [token for token in CODE_TOKENS
+                    if shipped.style_for_token(token)["color"] == ours[token]]
+            assert len(same) <= 2, (name, same)
+        for token, colour in ours.items():  # readable on its own background
+            assert contrast(f"#{colour}", style.background_color) >= 4.5, token
+
+
+def test_the_reader_draws_code_in_the_palette(tmp_path: Path) -> None:
+    from codeseek.tui.render import UnitSource, reader_code
+    from codeseek.tui.theme import DARK_PALETTE, LIGHT_PALETTE, code_look
+
+    hit = dataclasses.replace(fake_hit("x"), path="m.py")
+    source = UnitSource('def run(n):\n    """Doc."""\n    return n + 1  # one more\n', 1)
+    for dark, palette in ((True, DARK_PALETTE), (False, LIGHT_PALETTE)):
+        drawn = code_colours(reader_code(hit, source, "run", code_look(dark, no_color=False)))
+        assert set(drawn) <= set(palette.values()), drawn
+        assert "def" in drawn[palette["teal"]] and "# one more" in drawn[palette["grey"]]
+        assert "❱" in drawn[palette["amber"]]  # the row marker too
+    plain_look = code_look(True, no_color=True)
+    assert code_colours(reader_code(hit, source, "run", plain_look)) == {}
+
+
+@in_loop
+async def test_a_light_terminal_gets_the_light_theme(index: Index, repo: Path) -> None:
+    from codeseek.tui.theme import LIGHT_PALETTE
+
+    app = make_app(index, repo, env={"COLORFGBG": "0;15"})
+    async with app.run_test(size=(120, 40)) as pilot:
+        await ask(pilot, app, "issue refund")
+        assert app.theme == "codeseek-harbour-light" and not app.current_theme.dark
+        drawn = code_colours(app.query_one("#reader-code", Static).content)
+        assert drawn and set(drawn) <= set(LIGHT_PALETTE.values())
+    dark = make_app(index, repo, env={"COLORFGBG": "15;0"})
+    assert dark.theme == "codeseek-harbour"
 
 
 # -- through a running daemon ---------------------------------------------------------------
@@ -968,9 +1242,9 @@ async def test_the_ui_searches_through_a_running_daemon(index: Index, repo: Path
             assert [h.unit_id for h in app.hits] == [
                 h.unit_id for h in index.search("issue refund", app.k)]
             assert daemon.queries_served >= 1
-            liked = searcher.similar(app.hits[0].unit_id, 5)
-            assert [h.unit_id for h in liked] == [
-                h.unit_id for h in index.similar(app.hits[0].unit_id, 5)]
+            near = searcher.neighbours(app.hits[0].unit_id, 5)
+            assert [h.unit_id for h in near] == [
+                h.unit_id for h in index.neighbours(app.hits[0].unit_id, 5)]
             assert searcher.status().units == index.status().units
             assert searcher.service_state().startswith(f"daemon {os.getpid()} · watching")
     finally:

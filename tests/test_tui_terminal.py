@@ -58,6 +58,13 @@ class Terminal:
     def keys(self, *keys: str, literal: bool = False) -> None:
         self._tmux("send-keys", "-t", "ui", *(["-l"] if literal else []), *keys)
 
+    def buffer(self) -> str:
+        """The newest tmux paste buffer ("" when there is none)."""
+        assert TMUX is not None
+        done = subprocess.run([TMUX, "-L", self.socket, "show-buffer"], capture_output=True,
+                              text=True, check=False)
+        return done.stdout
+
     def screen(self) -> str:
         return self._tmux("capture-pane", "-p", "-t", "ui")
 
@@ -141,3 +148,15 @@ def test_a_repository_without_an_index_is_built_from_the_ui(terminal: Terminal,
     assert terminal.exit_status() == 0
     assert "Traceback" not in terminal.screen()
     assert (sample_copy / ".codeseek").is_dir()
+
+
+def test_copy_reaches_the_multiplexers_clipboard(terminal: Terminal, indexed: Path) -> None:
+    # tmux keeps an application's own OSC 52 to itself unless set-clipboard is on
+    # (its default is "external"); the copy must still land in a tmux buffer
+    terminal.start(codeseek_ui(), cwd=indexed)
+    ask(terminal)
+    terminal.keys("F2")
+    terminal.wait_for(lambda s: "copied" in s, "the copy notice")
+    assert terminal.buffer() == TOP_PLACE
+    terminal.keys("C-q")
+    assert terminal.exit_status() == 0

@@ -1,10 +1,11 @@
 """The terminal UI of codeseek (``codeseek ui``).
 
 A thin textual layer over anything that answers ``search(query, k, languages=,
-paths=, kinds=)`` and ``status()``: the in-process :class:`~codeseek.api.Index`
-or a client of the background service. :class:`~codeseek.tui.app.CodeseekApp`
-takes that searcher in its constructor. Names are imported on first use, so
-importing this package does not import textual.
+paths=, kinds=)``, ``neighbours(unit_id, k, ...)`` and ``status()``: the
+in-process :class:`~codeseek.api.Index` or a client of the background service.
+:class:`~codeseek.tui.app.CodeseekApp` takes that searcher in its constructor.
+Names are imported on first use, so importing this package does not import
+textual.
 """
 
 from __future__ import annotations

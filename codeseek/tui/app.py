@@ -33,18 +33,29 @@ from textual.widgets import Button, Footer, Input, Label, OptionList
 from textual.widgets.option_list import Option
 from textual.worker import get_current_worker
 
+from codeseek.display import printable
 from codeseek.errors import CodeseekError, ConfigError, IndexNotFound
 from codeseek.languages import language_names
-from codeseek.search import SearchHit
+from codeseek.search import NEIGHBOURS_OF, SearchHit
 from codeseek.tui.backend import (
     IndexBuilder,
     SearchBackend,
     close_searcher,
+    neighbour_hits,
     service_state,
-    similar_hits,
 )
+from codeseek.tui.clipboard import copy_with_command, passthrough
 from codeseek.tui.editor import editor_command
-from codeseek.tui.filters import Chip, FilterSet, kind_choices, query_words, take_chips
+from codeseek.tui.filters import (
+    LANGUAGE,
+    UNIT,
+    Chip,
+    FilterSet,
+    chip_text,
+    kind_choices,
+    query_words,
+    take_chips,
+)
 from codeseek.tui.keys import bindings_for
 from codeseek.tui.render import (
     SourceCache,
@@ -54,7 +65,7 @@ from codeseek.tui.render import (
     reader_header,
 )
 from codeseek.tui.screens import KeyList
-from codeseek.tui.theme import HARBOUR
+from codeseek.tui.theme import HARBOUR, HARBOUR_LIGHT, code_look, light_background
 from codeseek.tui.widgets import FilterStrip, HitList, IndexLine, Notice, QueryLine, Reader
 
 if TYPE_CHECKING:
@@ -74,17 +85,17 @@ STAGES = {"scan": "scanning files", "parse": "parsing", "embed": "embedding", "s
 
 @dataclass(frozen=True)
 class Request:
-    """One search: the query text (or a unit to find more like), filters, and its serial."""
+    """One search: the query text (or a unit whose neighbours to find), filters, serial."""
 
     serial: int
     query: str
     filters: FilterSet
-    like: SearchHit | None = None
+    near: SearchHit | None = None
 
     @property
     def label(self) -> str:
-        """What the hits answer: the query, or ``like NAME``."""
-        return f"like {self.like.qualname}" if self.like is not None else self.query
+        """What the hits answer: the query, or ``neighbours of NAME``."""
+        return f"{NEIGHBOURS_OF}{self.near.qualname}" if self.near is not None else self.query
 
 
 @dataclass(frozen=True)
@@ -136,7 +147,7 @@ class CodeseekApp(App[int]):
         self.locations: list[str] = []
         self.index_status: IndexStatus | None = None
         self.indexing = False
-        self._like: SearchHit | None = None
+        self._near: SearchHit | None = None
         self._reading: tuple[SearchHit, str] | None = None
         self._hits_wanted = False  # the user left the query line before the hits came
         self._serial = 0
@@ -147,7 +158,8 @@ class CodeseekApp(App[int]):
         self._index_thread: threading.Thread | None = None
         self._sources = SourceCache(self.repo)
         self.register_theme(HARBOUR)
-        self.theme = HARBOUR.name
+        self.register_theme(HARBOUR_LIGHT)
+        self.theme = (HARBOUR_LIGHT if light_background(self.env) else HARBOUR).name
 
     # -- layout -------------------------------------------------------------------------
 
@@ -205,8 +217,8 @@ class CodeseekApp(App[int]):
         self.query_one(Notice).show(Content.assemble(
             ("Ask in plain words what the code does", "bold"),
             ", e.g. “where do we retry failed uploads” or “parse the config file”.\n",
-            "Type ", ("lang:go", "$cs-chip"), ", ", ("kind:method", "$cs-chip"), " or ",
-            ("path:src/", "$cs-chip"), " and a space to filter. ",
+            "Type ", ("language=go", "$cs-chip"), ", ", ("unit=method", "$cs-chip"), " or ",
+            ("files=src/", "$cs-chip"), " and a space to filter. ",
             ("f1", "$cs-key"), " lists every key.",
         ))
 
@@ -225,7 +237,7 @@ class CodeseekApp(App[int]):
         ), offer_build=True)
 
     def _notice_no_hits(self, label: str) -> None:
-        chips = [f"{field}:{value}" for field, value in self.filter_set.chips]
+        chips = [printable(chip_text(chip)) for chip in self.filter_set.chips]
         if self.indexing and self.index_status is None:
             advice = "The index is still being built; its units appear when they are stored."
         elif not chips:
@@ -234,10 +246,11 @@ class CodeseekApp(App[int]):
             advice = (f"Filters in use: {'  '.join(chips)}. Remove one to widen the search: "
                       "click its ✕, press backspace on an empty query line, or ctrl+g for all.")
         self.query_one(Notice).show(Content.assemble(
-            (f"No matches for “{label}”.", "bold"), "\n", advice))
+            (f"No matches for “{printable(label)}”.", "bold"), "\n", advice))
 
     def _notice_error(self, error: Exception) -> None:
-        self.query_one(Notice).show(Content.assemble(("⚠ ", "$error bold"), str(error)))
+        self.query_one(Notice).show(Content.assemble(("⚠ ", "$error bold"),
+                                                     printable(str(error))))
 
     # -- searching --------------------------------------------------------------------------
 
@@ -252,7 +265,7 @@ class CodeseekApp(App[int]):
             self._add_chips(chips)
             event.input.value = rest
             return
-        self._like = None
+        self._near = None
         self._schedule()
 
     def _schedule(self) -> None:
@@ -280,15 +293,16 @@ class CodeseekApp(App[int]):
     def _launch(self) -> None:
         self._timer = None
         query = query_words(self.query_one(QueryLine).value)
-        request = Request(self._serial, query, self.filter_set, self._like)
-        self.query_one(FilterStrip).show(self.filter_set, self._like)
+        request = Request(self._serial, query, self.filter_set, self._near)
+        self.query_one(FilterStrip).show(self.filter_set, self._near)
         if self.searcher is None:
             self._notice_no_index()
             self._show_list(False)
             return
-        if not query and self._like is None:
+        if not query and self._near is None:
             self.hits = []
             self.shown = None
+            self._title_hits(None)
             self._notice_start()
             self._show_list(False)
             return
@@ -310,8 +324,8 @@ class CodeseekApp(App[int]):
             return IndexNotFound("no index yet; press ctrl+r to build it")
         filters = request.filters
         try:
-            if request.like is not None:
-                return similar_hits(searcher, request.like, self.k, filters.as_filters())
+            if request.near is not None:
+                return neighbour_hits(searcher, request.near, self.k, filters.as_filters())
             return searcher.search(request.query, self.k, languages=filters.languages,
                                    paths=filters.paths, kinds=filters.kinds)
         except (CodeseekError, OSError) as exc:
@@ -332,6 +346,7 @@ class CodeseekApp(App[int]):
         if isinstance(outcome, Exception):
             self.hits = []
             self.shown = None
+            self._title_hits(None)
             if isinstance(outcome, IndexNotFound):
                 self._notice_no_index()
             else:
@@ -344,8 +359,7 @@ class CodeseekApp(App[int]):
         self.hits = hits
         hit_list = self.query_one(HitList)
         hit_list.set_options([Option(hit_prompt(hit)) for hit in hits])
-        pane = self.query_one("#hits-pane")
-        pane.border_title = f"hits · {len(hits)}" if hits else "hits"
+        self._title_hits(len(hits) if hits else None)
         self.shown = Shown(request.serial, request.label, len(hits), time.perf_counter())
         self.shown_log.append(request.label)
         if not hits:
@@ -359,6 +373,11 @@ class CodeseekApp(App[int]):
             hit_list.focus()
         self._hits_wanted = False
 
+    def _title_hits(self, count: int | None) -> None:
+        """The hit pane's title: ``hits · N`` while N hits are listed, else ``hits``."""
+        pane = self.query_one("#hits-pane")
+        pane.border_title = f"hits · {count}" if count is not None else "hits"
+
     @on(OptionList.OptionHighlighted, "#hits")
     def _hit_highlighted(self, event: OptionList.OptionHighlighted) -> None:
         hit = self.selected_hit
@@ -367,15 +386,16 @@ class CodeseekApp(App[int]):
 
     def _show_reader(self, hit: SearchHit) -> None:
         reader = self.query_one(Reader)
-        query = self.shown.label if self.shown is not None and self._like is None else ""
+        query = self.shown.label if self.shown is not None and self._near is None else ""
         if self._reading == (hit, query):
             return
         self._reading = (hit, query)
         source = self._sources.unit(hit)
         reader.query_one("#reader-head").update(reader_header(hit))  # type: ignore[attr-defined]
+        look = code_look(dark=self.current_theme.dark, no_color=self.no_color)
         reader.query_one("#reader-code").update(  # type: ignore[attr-defined]
-            reader_code(hit, source, query))
-        reader.border_title = f"reader · {hit.path}:{hit.start_line}"
+            reader_code(hit, source, query, look))
+        reader.border_title = Content(f"reader · {self._place(hit)}")
         reader.scroll_home(animate=False)
 
     @property
@@ -428,7 +448,7 @@ class CodeseekApp(App[int]):
         if status is None:
             line.show("no index yet")
         elif isinstance(status, Exception):
-            line.show(Content.assemble(("⚠ ", "$error"), str(status)))
+            line.show(Content.assemble(("⚠ ", "$error"), printable(str(status))))
         else:
             self.index_status = status
             if self.repo is None:
@@ -441,7 +461,8 @@ class CodeseekApp(App[int]):
     def action_reindex(self) -> None:
         """Build or refresh the index on a background thread."""
         if self.builder is None:
-            self.notify("this searcher keeps its index up to date by itself", timeout=4)
+            self.notify("a running `codeseek watch` keeps this index up to date by itself; "
+                        "nothing to rebuild here", timeout=4)
             return
         if self.indexing:
             self.notify("the index is already being built", timeout=3)
@@ -492,7 +513,7 @@ class CodeseekApp(App[int]):
 
     def _searcher_changed(self) -> None:
         self._refresh_status()
-        if query_words(self.query_one(QueryLine).value) or self._like is not None:
+        if query_words(self.query_one(QueryLine).value) or self._near is not None:
             self._rerun()
         elif not self.hits:
             self._notice_start()
@@ -509,7 +530,8 @@ class CodeseekApp(App[int]):
         self.indexing = False
         self.query_one(IndexLine).progress(None, None)
         if isinstance(outcome, Exception):
-            self.notify(str(outcome), title="indexing failed", severity="error", timeout=8)
+            self.notify(printable(str(outcome)), title="indexing failed", severity="error",
+                        timeout=8, markup=False)
         else:
             self.notify(f"indexed {outcome.files:,} files, {outcome.units:,} units: "
                         f"{outcome.added:,} added, {outcome.changed:,} changed, "
@@ -523,8 +545,8 @@ class CodeseekApp(App[int]):
             try:
                 self.filter_set = self.filter_set.added(chip)
             except CodeseekError as exc:
-                self.notify(str(exc), severity="error", timeout=6)
-        self.query_one(FilterStrip).show(self.filter_set, self._like)
+                self.notify(printable(str(exc)), severity="error", timeout=6, markup=False)
+        self.query_one(FilterStrip).show(self.filter_set, self._near)
 
     def action_cycle_language(self) -> None:
         """Filter by the next language of the index."""
@@ -533,15 +555,15 @@ class CodeseekApp(App[int]):
             choices = sorted(counts, key=lambda name: (-counts[name], name))
         else:
             choices = list(language_names())
-        self._set_filters(self.filter_set.cycled("lang", choices))
+        self._set_filters(self.filter_set.cycled(LANGUAGE, choices))
 
-    def action_cycle_kind(self) -> None:
-        """Filter by the next kind."""
-        self._set_filters(self.filter_set.cycled("kind", kind_choices()))
+    def action_cycle_unit(self) -> None:
+        """Filter by the next unit kind."""
+        self._set_filters(self.filter_set.cycled(UNIT, kind_choices()))
 
     def action_clear_filters(self) -> None:
-        """Remove every filter and leave "more like this"."""
-        self._like = None
+        """Remove every filter and leave the neighbours."""
+        self._near = None
         self._set_filters(FilterSet())
 
     def action_drop_filter(self, position: int) -> None:
@@ -549,15 +571,15 @@ class CodeseekApp(App[int]):
         if 0 <= position < len(self.filter_set.chips):
             self._set_filters(self.filter_set.removed(position))
 
-    def action_drop_like(self) -> None:
-        """Leave "more like this" and search the query line again."""
-        self._like = None
+    def action_drop_near(self) -> None:
+        """Leave the neighbours and search the query line again."""
+        self._near = None
         self._rerun()
 
     def action_drop_last_filter(self) -> None:
-        """Remove the newest filter (or leave "more like this")."""
-        if self._like is not None:
-            self.action_drop_like()
+        """Remove the newest filter (or leave the neighbours)."""
+        if self._near is not None:
+            self.action_drop_near()
         elif self.filter_set.chips:
             self._set_filters(self.filter_set.removed(-1))
 
@@ -568,7 +590,8 @@ class CodeseekApp(App[int]):
     # -- acting on the selected hit ------------------------------------------------------------
 
     def _place(self, hit: SearchHit) -> str:
-        return f"{hit.path}:{hit.start_line}"
+        """``path:line``, safe to show and to paste (control characters escaped)."""
+        return f"{printable(hit.path)}:{hit.start_line}"
 
     def _need_hit(self) -> SearchHit | None:
         hit = self.selected_hit
@@ -577,17 +600,35 @@ class CodeseekApp(App[int]):
         return hit
 
     def action_copy_place(self) -> None:
-        """Copy path:line of the selected hit."""
+        """Copy path:line of the selected hit: through the terminal (OSC 52, wrapped for
+        tmux or screen), and with the multiplexer's or the desktop's copy command."""
         hit = self._need_hit()
-        if hit is not None:
-            self.copy_to_clipboard(self._place(hit))
-            self.notify(f"copied {self._place(hit)}", timeout=3)
+        if hit is None:
+            return
+        place = self._place(hit)
+        self.copy_to_clipboard(place)  # OSC 52 to the terminal, and the app's own clipboard
+        wrapped = passthrough(place, self.env)
+        driver = getattr(self, "_driver", None)
+        if wrapped is not None and driver is not None:
+            driver.write(wrapped)
+        self._copy_worker(place)
 
-    def action_similar(self) -> None:
-        """More like this: search by the selected unit's own vector."""
+    @work(thread=True, group="copy", exit_on_error=False)
+    def _copy_worker(self, place: str) -> None:
+        self._to_screen(self._copied, place, copy_with_command(place, self.env))
+
+    def _copied(self, place: str, command: str | None) -> None:
+        if command is not None:
+            self.notify(f"copied {place} (with {command})", timeout=3, markup=False)
+        else:
+            self.notify(f"copied {place} through the terminal (OSC 52)", timeout=3,
+                        markup=False)
+
+    def action_neighbours(self) -> None:
+        """The neighbours of the selected unit: the units whose meaning is nearest it."""
         hit = self._need_hit()
         if hit is not None:
-            self._like = hit
+            self._near = hit
             self._rerun()
             self.query_one(HitList).focus()
 
@@ -612,8 +653,8 @@ class CodeseekApp(App[int]):
             self._fall_back(place, f"cannot start {command[0]}: {exc.strerror or exc}")
             return
         if status != 0:
-            self.notify(f"{command[0]} ended with status {status}", severity="warning",
-                        timeout=4)
+            self.notify(f"{printable(command[0])} ended with status {status}",
+                        severity="warning", timeout=4, markup=False)
 
     def _run_editor(self, command: list[str]) -> int:
         try:
@@ -627,7 +668,8 @@ class CodeseekApp(App[int]):
     def _fall_back(self, place: str, reason: str) -> None:
         """No editor: show the place now and print it when the UI ends."""
         self.locations.append(place)
-        self.notify(f"{reason}; {place} is printed when you quit", timeout=6)
+        self.notify(f"{printable(reason)}; {place} is printed when you quit", timeout=6,
+                    markup=False)
 
     # -- moving around -----------------------------------------------------------------------
 

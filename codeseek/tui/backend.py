@@ -1,12 +1,10 @@
-"""What the UI talks to: the searcher seam, the optional index builder, "more like this".
+"""What the UI talks to: the searcher seam, the optional index builder, the neighbours.
 
 The app needs only a :class:`SearchBackend`: the in-process
 :class:`~codeseek.api.Index` is one, and a client of the background service
-offers the same two methods. Anything more is optional and found by name:
+offers the same three methods (``search``, ``neighbours``, ``status``).
+Anything more is optional and found by name:
 
-* ``similar(unit_id, k, languages=, paths=, kinds=)``: "more like this" done by
-  the searcher itself; without it, :func:`similar_hits` uses the searcher's
-  ``searcher()`` (the in-process index) to search by the unit's own vector.
 * ``service_state()``: a few words on the background service and the file
   watcher, shown in the index line.
 * ``close()``: called when the UI swaps searchers or quits.
@@ -25,7 +23,6 @@ from typing import TYPE_CHECKING, Protocol, cast, runtime_checkable
 
 import numpy as np
 
-from codeseek.errors import InvalidQuery
 from codeseek.indexer import ProgressCallback, UpdateSummary
 from codeseek.search import Filters, SearchHit
 
@@ -44,6 +41,11 @@ class SearchBackend(Protocol):
     def search(self, query: str, k: int = 10, *, languages: Sequence[str] = (),
                paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
         """The k best units for a query."""
+        ...
+
+    def neighbours(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
+                   paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
+        """The unit's neighbours: the k units whose meaning is nearest its own."""
         ...
 
     def status(self) -> IndexStatus:
@@ -151,18 +153,15 @@ class LocalIndexer:
             return index.update(progress=progress)
 
 
-# -- more like this --------------------------------------------------------------------
+# -- the neighbours -------------------------------------------------------------------
 
 
-def similar_hits(searcher: object, hit: SearchHit, k: int, filters: Filters) -> list[SearchHit]:
-    """The k units nearest to ``hit``'s own vector, within the filters (the library's
-    ``similar``, in process or through the daemon)."""
-    own = getattr(searcher, "similar", None)
-    if not callable(own):
-        raise InvalidQuery("this searcher cannot search by a unit's vector")
-    found: list[SearchHit] = own(hit.unit_id, k, languages=filters.languages,
-                                 paths=filters.paths, kinds=filters.kinds)
-    return found
+def neighbour_hits(searcher: SearchBackend, hit: SearchHit, k: int,
+                   filters: Filters) -> list[SearchHit]:
+    """``hit``'s neighbours: the k units whose meaning is nearest it, within the filters
+    (the library's ``neighbours``, in process or through the daemon)."""
+    return searcher.neighbours(hit.unit_id, k, languages=filters.languages,
+                               paths=filters.paths, kinds=filters.kinds)
 
 
 # -- the background service ------------------------------------------------------------
@@ -181,10 +180,11 @@ class DaemonSearcher:
         return self.client.search_many([query], k, languages=languages, paths=paths,
                                        kinds=kinds)[0]
 
-    def similar(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
-                paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
-        """The units nearest to one unit's own vector, found by the daemon."""
-        return self.client.similar(unit_id, k, languages=languages, paths=paths, kinds=kinds)
+    def neighbours(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
+                   paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
+        """The unit's neighbours, found by the daemon."""
+        return self.client.neighbours(unit_id, k, languages=languages, paths=paths,
+                                      kinds=kinds)
 
     def status(self) -> IndexStatus:
         """The index's status, as the daemon reports it."""

@@ -1,8 +1,8 @@
 """Filters as the UI holds them: an ordered set of chips, typed as words of the query.
 
-Typing ``lang:go``, ``kind:method`` or ``path:billing/`` in the query line
-followed by a space turns the word into a chip (the same three filters as
-``codeseek search --lang/--kind/--path``). Chips keep the order they were
+Typing ``language=go``, ``unit=method`` or ``files=billing/`` in the query
+line followed by a space turns the word into a chip (the same three filters as
+``codeseek search --language/--unit/--files``). Chips keep the order they were
 added in, so "remove the last one" means what the user expects.
 """
 
@@ -15,14 +15,18 @@ from dataclasses import dataclass
 from codeseek.search import Filters
 from codeseek.units import KINDS
 
-FIELDS = ("lang", "kind", "path")
-"""Chip names, as typed in the query line."""
+LANGUAGE = "language"
+FILES = "files"
+UNIT = "unit"
+FIELDS = (LANGUAGE, UNIT, FILES)
+"""Chip names, as typed in the query line (``NAME=VALUE``)."""
 
-_TOKEN = re.compile(r"(?<!\S)(lang|kind|path):(\S+)(?=\s)")
-_PARTIAL = re.compile(r"(?<!\S)(lang|kind|path):\S*$")
+_NAMES = "|".join(FIELDS)
+_TOKEN = re.compile(rf"(?<!\S)({_NAMES})=(\S+)(?=\s)")
+_PARTIAL = re.compile(rf"(?<!\S)({_NAMES})=\S*$")
 
 Chip = tuple[str, str]
-"""(field, value), e.g. ("lang", "go")."""
+"""(field, value), e.g. ("language", "go")."""
 
 
 @dataclass(frozen=True)
@@ -37,17 +41,17 @@ class FilterSet:
     @property
     def languages(self) -> tuple[str, ...]:
         """Language names."""
-        return self._values("lang")
+        return self._values(LANGUAGE)
 
     @property
     def kinds(self) -> tuple[str, ...]:
         """Unit kinds."""
-        return self._values("kind")
+        return self._values(UNIT)
 
     @property
     def paths(self) -> tuple[str, ...]:
         """Gitignore-style path patterns."""
-        return self._values("path")
+        return self._values(FILES)
 
     def as_filters(self) -> Filters:
         """The library's filter record."""
@@ -99,6 +103,11 @@ def take_chips(text: str) -> tuple[str, list[Chip]]:
 def query_words(text: str) -> str:
     """The query to search for: the text without a filter word still being typed."""
     return _PARTIAL.sub("", text).strip()
+
+
+def chip_text(chip: Chip) -> str:
+    """A chip as typed: ``language=go``."""
+    return f"{chip[0]}={chip[1]}"
 
 
 def kind_choices() -> tuple[str, ...]:

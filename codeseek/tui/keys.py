@@ -3,6 +3,11 @@
 A key is bound in one place (``where``): ``anywhere``, the ``query`` line, the
 ``hits`` list, the ``reader`` or the ``help`` screen. The help screen lists
 this table, so a key cannot be bound without being documented.
+
+Keys bound ``anywhere`` also reach the query line, so they keep clear of the
+usual line-editing keys of a terminal's line editor (``ctrl+a/e/b/f/n/p``,
+``ctrl+d/h/k/u/w/y/t/l``): the actions of the UI that would have taken a
+control key are on function keys (and single letters in the hit list).
 """
 
 from __future__ import annotations
@@ -47,14 +52,14 @@ KEYS: tuple[Key, ...] = (
     Key("anywhere", "slash", "to_query", "query", "go to the query line (outside it)"),
     Key("anywhere", "ctrl+o", "open_hit", "open",
         "open the selected unit in $VISUAL or $EDITOR at its line", show=True),
-    Key("anywhere", "ctrl+y", "copy_place", "copy",
+    Key("anywhere", "f2", "copy_place", "copy",
         "copy path:line of the selected unit", show=True),
-    Key("anywhere", "ctrl+n", "similar", "similar",
-        "more like this: units whose meaning is nearest the selected one", show=True),
-    Key("anywhere", "ctrl+l", "cycle_language", "lang",
+    Key("anywhere", "f3", "neighbours", "neighbours",
+        "neighbours: the units whose meaning is nearest the selected one", show=True),
+    Key("anywhere", "f4", "cycle_language", "language",
         "filter by the next language of the index (then none)", show=True),
-    Key("anywhere", "ctrl+t", "cycle_kind", "kind",
-        "filter by the next kind: function, method, class (then none)", show=True),
+    Key("anywhere", "f5", "cycle_unit", "unit",
+        "filter by the next unit kind: function, method, class (then none)", show=True),
     Key("anywhere", "ctrl+g", "clear_filters", "unfilter", "remove every filter"),
     Key("anywhere", "ctrl+r", "reindex", "reindex",
         "build or refresh the index in the background", show=True),
@@ -71,9 +76,9 @@ KEYS: tuple[Key, ...] = (
     Key("hits", "end", "last", "last", "last hit"),
     Key("hits", "enter,o", "app.open_hit", "open", "open the hit in your editor"),
     Key("hits", "y", "app.copy_place", "copy", "copy path:line"),
-    Key("hits", "m", "app.similar", "similar", "more like this"),
-    Key("hits", "l", "app.cycle_language", "lang", "next language filter"),
-    Key("hits", "t", "app.cycle_kind", "kind", "next kind filter"),
+    Key("hits", "n", "app.neighbours", "neighbours", "the selected unit's neighbours"),
+    Key("hits", "l", "app.cycle_language", "language", "next language filter"),
+    Key("hits", "u", "app.cycle_unit", "unit", "next unit filter"),
     Key("hits", "x", "app.clear_filters", "unfilter", "remove every filter"),
     Key("hits", "tab", "app.focus_next", "reader", "go to the reader"),
     Key("hits", "escape,slash,i", "app.to_query", "query", "back to the query line"),
@@ -95,9 +100,19 @@ MOUSE_HELP: tuple[tuple[str, str], ...] = (
 )
 
 TYPED_FILTERS: tuple[tuple[str, str], ...] = (
-    ("lang:NAME ", "only this language, e.g. lang:go"),
-    ("kind:KIND ", "only function, method or class"),
-    ("path:GLOB ", "only files matching a gitignore-style pattern, e.g. path:billing/"),
+    ("language=NAME ", "only this language, e.g. language=go"),
+    ("unit=KIND ", "only functions, methods or classes, e.g. unit=method"),
+    ("files=GLOB ", "only files matching a gitignore-style pattern, e.g. files=billing/"),
+)
+
+SCREEN_HELP: tuple[tuple[str, str], ...] = (
+    ("▰▰▰▱▱", "the match bar of a hit: how near its meaning is to the query "
+              "(the cosine of the two, one cell a fifth)"),
+    ("words", "in place of the bar: the hit matched the query's words only, "
+              "not its meaning"),
+    ("❱ 104", "the row marker in the reader: this line shares a word with the query"),
+    ("near=NAME", "the chip while the neighbours of NAME are listed (✕ or backspace "
+                  "leaves them)"),
 )
 
 

@@ -2,7 +2,9 @@
 
 Every function is pure (apart from :class:`SourceCache` reading files), so the
 look of a hit, the reader's header, the lines that matched and the index line
-can be tested without running the app.
+can be tested without running the app. Repository text (names, paths, docs,
+code) passes through :mod:`codeseek.display` on its way to the screen, so a
+control character in it is shown escaped, never obeyed.
 """
 
 from __future__ import annotations
@@ -14,12 +16,18 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from rich.console import Group, RenderableType
+from rich.console import Console, ConsoleOptions, Group, RenderableType, RenderResult
+from rich.measure import Measurement
+from rich.segment import Segment
+from rich.style import Style
 from rich.syntax import Syntax
 from rich.text import Text
 from textual.content import Content
 
+from codeseek.display import printable, printable_block
+from codeseek.languages import spec_for_path
 from codeseek.search import STOPWORDS, SearchHit
+from codeseek.tui.theme import CodeLook, code_look
 from codeseek.units import split_identifier
 
 if TYPE_CHECKING:
@@ -27,7 +35,6 @@ if TYPE_CHECKING:
 
 BAR_CELLS = 5
 PREVIEW_MAX_LINES = 400
-CODE_THEME = "gruvbox-dark"
 _WORD = re.compile(r"[A-Za-z0-9_]+")
 _SCOPE_SPLIT = re.compile(r"\.|::")
 
@@ -53,7 +60,7 @@ def score_cells(hit: SearchHit) -> str:
 
 def first_doc_line(hit: SearchHit) -> str:
     """The doc's first sentence (or what fits of it)."""
-    return hit.doc_summary.split(". ")[0].strip()
+    return printable(hit.doc_summary.split(". ")[0].strip())
 
 
 def hit_prompt(hit: SearchHit) -> Content:
@@ -61,9 +68,9 @@ def hit_prompt(hit: SearchHit) -> Content:
     doc = first_doc_line(hit)
     return Content.assemble(
         (score_cells(hit), "$cs-bar"), " ",
-        (hit.qualname, "$cs-name bold"),
+        (printable(hit.qualname), "$cs-name bold"),
         (f"  {hit.kind} · {hit.language}", "$cs-meta"), "\n",
-        "  ", (f"{hit.path}:{hit.start_line}", "$cs-place"),
+        "  ", (f"{printable(hit.path)}:{hit.start_line}", "$cs-place"),
         (f"  {doc}" if doc else "", "$cs-doc italic"),
     )
 
@@ -73,18 +80,20 @@ def hit_prompt(hit: SearchHit) -> Content:
 
 def scope_chain(hit: SearchHit) -> list[str]:
     """Where the unit sits: folders, the file, then the enclosing classes and functions."""
-    folders = [part for part in hit.path.split("/") if part]
-    scopes = [part for part in _SCOPE_SPLIT.split(hit.qualname) if part][:-1]
+    folders = [printable(part) for part in hit.path.split("/") if part]
+    scopes = [printable(part) for part in _SCOPE_SPLIT.split(hit.qualname) if part][:-1]
     return folders + scopes
 
 
 def reader_header(hit: SearchHit) -> Content:
     """The reader's header: name, kind, place, scope chain and doc."""
     return Content.assemble(
-        (hit.qualname, "$cs-name bold"), (f"  {hit.kind} · {hit.language}", "$cs-meta"), "\n",
-        (f"{hit.path}:{hit.start_line}-{hit.end_line}", "$cs-place"), "\n",
+        (printable(hit.qualname), "$cs-name bold"),
+        (f"  {hit.kind} · {hit.language}", "$cs-meta"), "\n",
+        (f"{printable(hit.path)}:{hit.start_line}-{hit.end_line}", "$cs-place"), "\n",
         ("in ", "$cs-meta"), (" › ".join(scope_chain(hit)), "$cs-scope"),
-        ("\n" + hit.doc_summary if hit.doc_summary else "", "$cs-doc italic"),
+        ("\n" + printable_block(hit.doc_summary) if hit.doc_summary else "",
+         "$cs-doc italic"),
     )
 
 
@@ -126,26 +135,39 @@ class SourceCache:
         self.keep = keep
         self._files: dict[str, tuple[int, list[str]]] = {}
 
-    def _lines(self, path: Path) -> list[str] | None:
+    def _lines(self, path: Path, cr_newlines: bool) -> list[str] | None:
         try:
             stamp = path.stat().st_mtime_ns
         except OSError:
             return None
-        cached = self._files.get(str(path))
+        key = f"{path}\0{cr_newlines}"
+        cached = self._files.get(key)
         if cached is not None and cached[0] == stamp:
             return cached[1]
         try:
-            lines = path.read_text(encoding="utf-8", errors="replace").splitlines()
+            text = path.read_text(encoding="utf-8", errors="replace")
         except OSError:
             return None
+        # lines end where the parser ends them: at "\n" (and at a lone "\r" in a language
+        # where it ends a line); str.splitlines would also break at form feeds, "\x1c" to
+        # "\x1e", "\x85" and "\u2028", and the reader would show the wrong lines
+        text = text.replace("\r\n", "\n")
+        if cr_newlines:
+            text = text.replace("\r", "\n")
+        lines = text.split("\n")
+        if lines[-1] == "":
+            lines.pop()
         if len(self._files) >= self.keep:
             self._files.pop(next(iter(self._files)))
-        self._files[str(path)] = (stamp, lines)
+        self._files[key] = (stamp, lines)
         return lines
 
     def unit(self, hit: SearchHit) -> UnitSource:
         """The unit's lines from its file; the indexed first lines if the file changed."""
-        lines = self._lines(self.repo / hit.path) if self.repo is not None else None
+        spec = spec_for_path(hit.path)
+        cr_newlines = spec is not None and spec.cr_newlines
+        lines = (self._lines(self.repo / hit.path, cr_newlines) if self.repo is not None
+                 else None)
         if lines is None or hit.end_line > len(lines) or hit.start_line < 1:
             return UnitSource(hit.snippet, hit.start_line,
                               "the file changed or is gone; showing the indexed first lines")
@@ -156,17 +178,46 @@ class SourceCache:
         return UnitSource("\n".join(lines[hit.start_line - 1 : end]), hit.start_line, note)
 
 
-def reader_code(hit: SearchHit, source: UnitSource, query: str) -> RenderableType:
-    """Highlighted code with line numbers; lines sharing a word with the query are marked."""
+ROW_MARK = "❱ "
+"""What rich's Syntax draws before a highlighted line."""
+
+
+class MarkedCode:
+    """A Syntax whose row marker is drawn in the given style (rich draws it red)."""
+
+    def __init__(self, syntax: Syntax, mark: Style) -> None:
+        self.syntax = syntax
+        self.mark = mark
+
+    def __rich_console__(self, console: Console, options: ConsoleOptions) -> RenderResult:
+        for segment in console.render(self.syntax, options):
+            if segment.text == ROW_MARK and not segment.control:
+                yield Segment(ROW_MARK, self.mark)
+            else:
+                yield segment
+
+    def __rich_measure__(self, console: Console, options: ConsoleOptions) -> Measurement:
+        return Measurement.get(console, options, self.syntax)
+
+
+def reader_code(hit: SearchHit, source: UnitSource, query: str,
+                look: CodeLook | None = None) -> RenderableType:
+    """Highlighted code with line numbers; lines sharing a word with the query are marked.
+
+    Control characters in the code are shown escaped (tabs and newlines kept), so the
+    line numbers stay those of the file. ``look``: default codeseek's dark style."""
+    look = look if look is not None else code_look(dark=True, no_color=False)
+    code = printable_block(source.code)
     syntax = Syntax(
-        source.code, Syntax.guess_lexer(hit.path, source.code), theme=CODE_THEME,
+        code, Syntax.guess_lexer(hit.path, code), theme=look.syntax,
         line_numbers=True, start_line=source.first_line,
-        highlight_lines=matching_lines(source.code, source.first_line, query),
+        highlight_lines=matching_lines(code, source.first_line, query),
         word_wrap=False, background_color="default",
     )
+    marked = MarkedCode(syntax, look.mark)
     if not source.note:
-        return syntax
-    return Group(syntax, Text(f"… {source.note}", style="italic"))
+        return marked
+    return Group(marked, Text(f"… {printable(source.note)}", style="italic"))
 
 
 # -- the index line ------------------------------------------------------------------
@@ -185,8 +236,8 @@ def when(timestamp: float | None, now: float | None = None) -> str:
 
 def index_summary(status: IndexStatus, service: str) -> str:
     """The index line when idle: repository, counts, freshness and the service state."""
-    return (f"{repo_label(status.repo)} · {status.units:,} units · {status.files:,} files · "
-            f"updated {when(status.updated_at)} · {service}")
+    return (f"{printable(repo_label(status.repo))} · {status.units:,} units · "
+            f"{status.files:,} files · updated {when(status.updated_at)} · {service}")
 
 
 def repo_label(repo: str | os.PathLike[str]) -> str:

@@ -10,14 +10,21 @@ from textual.containers import Grid, VerticalScroll
 from textual.screen import ModalScreen
 from textual.widgets import Static
 
-from codeseek.tui.keys import MOUSE_HELP, PLACES, TYPED_FILTERS, bindings_for, keys_for
+from codeseek.tui.keys import (
+    MOUSE_HELP,
+    PLACES,
+    SCREEN_HELP,
+    TYPED_FILTERS,
+    bindings_for,
+    keys_for,
+)
 
 Section = tuple[str, list[tuple[str, str]]]
 """A heading and its (keys, what they do) rows."""
 
 
 class KeyList(ModalScreen[None]):
-    """Every key, grouped by where it works; the typed filters; the mouse."""
+    """Every key, grouped by where it works; the typed filters; the marks; the mouse."""
 
     BINDINGS: ClassVar[list[BindingType]] = bindings_for("help")
 
@@ -33,13 +40,14 @@ class KeyList(ModalScreen[None]):
                         yield Static(text, classes="key-what", markup=False)
 
     def sections(self) -> list[Section]:
-        """The whole list: keys by place, then typed filters, then the mouse."""
+        """The whole list: keys by place, typed filters, the screen's marks, the mouse."""
         sections: list[Section] = []
         for where, title in PLACES.items():
             rows = [(" ".join(self._display(name) for name in key.keys.split(",")), key.help)
                     for key in keys_for(where)]
             sections.append((title, rows))
         sections.append(("Typed in the query line", list(TYPED_FILTERS)))
+        sections.append(("On the screen", list(SCREEN_HELP)))
         sections.append(("Mouse", list(MOUSE_HELP)))
         return sections
 

@@ -15,14 +15,15 @@ from textual.containers import Horizontal, Vertical, VerticalScroll
 from textual.content import Content
 from textual.widgets import Button, Input, OptionList, ProgressBar, Static
 
-from codeseek.tui.filters import FilterSet
+from codeseek.display import printable
+from codeseek.tui.filters import FilterSet, chip_text
 from codeseek.tui.keys import bindings_for
 
 if TYPE_CHECKING:
     from codeseek.search import SearchHit
 
 PLACEHOLDER = "ask in plain words, e.g. where do we retry failed uploads"
-FILTER_HINT = "type lang:go  kind:method  path:src/  to filter"
+FILTER_HINT = "type language=go  unit=method  files=src/  to filter"
 
 
 class QueryLine(Input):
@@ -37,20 +38,22 @@ class QueryLine(Input):
 class FilterStrip(Static):
     """The active filters as chips, each with a ✕ that removes it."""
 
-    def show(self, filters: FilterSet, like: SearchHit | None) -> None:
-        """Render the chips (or a hint when there are none)."""
+    def show(self, filters: FilterSet, near: SearchHit | None) -> None:
+        """Render the chips (or a hint when there are none); ``near``: the unit whose
+        neighbours are listed."""
         parts: list[Content | str | tuple[str, str]] = [("filters ", "$cs-meta")]
-        if like is not None:
-            parts.append(_chip(f"like:{like.qualname}", "app.drop_like"))
-        for position, (field, value) in enumerate(filters.chips):
-            parts.append(_chip(f"{field}:{value}", f"app.drop_filter({position})"))
+        if near is not None:
+            parts.append(_chip(f"near={near.qualname}", "app.drop_near"))
+        for position, chip in enumerate(filters.chips):
+            parts.append(_chip(chip_text(chip), f"app.drop_filter({position})"))
         if len(parts) == 1:
             parts.append((FILTER_HINT, "$cs-meta italic"))
         self.update(Content.assemble(*parts))
 
 
 def _chip(label: str, action: str) -> Content:
-    chip = Content.assemble(("[", "$cs-meta"), (label, "$cs-chip bold"), " ✕", ("]", "$cs-meta"))
+    chip = Content.assemble(("[", "$cs-meta"), (printable(label), "$cs-chip bold"), " ✕",
+                            ("]", "$cs-meta"))
     return chip.stylize(f"@click={action}") + " "
 
 
