@@ -4,8 +4,10 @@
 ``daemon.lock`` in the index folder for its whole life (a second daemon on the
 same index is refused), listens on ``daemon.sock`` (mode 0600; a connection
 from another user is refused; a socket left by a crashed daemon is replaced),
-indexes the repository, then keeps it fresh with a :class:`~codeseek.watch.Watcher`.
-The model is loaded once; queries are answered while indexing goes on.
+starts watching, indexes the repository, then applies what changed meanwhile and
+keeps it fresh with a :class:`~codeseek.watch.Watcher` (so an edit made during the
+first build is never missed). The model is loaded once; queries are answered while
+indexing goes on.
 
 The protocol is JSON Lines: one request object per line, one response per
 line. Every message carries ``"v": PROTOCOL_VERSION``. Requests:
@@ -103,15 +105,20 @@ class Daemon:
     # -- lifecycle -------------------------------------------------------------------
 
     def start(self) -> None:
-        """Take the lock, listen, index, then watch. Returns once watching."""
+        """Take the lock, listen, watch, index, then apply what changed meanwhile.
+
+        Returns once watching. The watcher collects changes from before the first
+        build starts, so a file written during the build is applied right after it.
+        """
         self._take_lock()
         self._listen()
+        self.watcher.observe()
         self.state = "indexing"
         self.log(f"codeseek: indexing {self.index.settings.repo}")
         summary = self.index.update()
         self.log(f"codeseek: {summary.files} files, {summary.units} units indexed "
                  f"({summary.embedded} embedded, {summary.seconds:.1f} s)")
-        self.watcher.start()
+        self.watcher.start()  # applies what arrived during the build first
         self.state = "watching"
         self.log(f"codeseek: watching ({self.watcher.state.mode}); queries on {self.socket_path}")
 

@@ -204,9 +204,18 @@ class Watcher:
 
     # -- lifecycle -------------------------------------------------------------------
 
+    def observe(self) -> None:
+        """Start collecting changes; they are applied once :meth:`start` runs the worker.
+
+        The daemon calls this before its first build, so that nothing written
+        during the build is missed.
+        """
+        if self._observer is None:
+            self._observer = self._start_observer()
+
     def start(self) -> None:
-        """Start the observer and the worker thread."""
-        self._observer = self._start_observer()
+        """Start the observer (unless observing already) and the worker thread."""
+        self.observe()
         self._worker = threading.Thread(target=self._run, name="codeseek-watch", daemon=True)
         self._worker.start()
 
