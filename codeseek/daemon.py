@@ -136,9 +136,9 @@ class Daemon:
         if self._server is not None:
             self._server.shutdown()
             self._server.server_close()
-        with suppress(FileNotFoundError):
-            self.socket_path.unlink()
-        if self._lock_handle is not None:
+        if self._lock_handle is not None:  # only the lock's owner made the socket
+            with suppress(FileNotFoundError):
+                self.socket_path.unlink()
             self._lock_handle.close()
             self._lock_handle = None
         self.state = "stopped"
@@ -305,7 +305,9 @@ def run_foreground(index: Index, log: Log, *, poll: bool = False) -> None:
         daemon.start()
         daemon.wait()
     finally:
+        began = daemon.state != "starting"  # "starting": refused, nothing to stop
         daemon.stop()
         for sig, handler in previous.items():
             signal.signal(sig, handler)
-        log("codeseek: stopped")
+        if began:
+            log("codeseek: stopped")

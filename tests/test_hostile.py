@@ -9,6 +9,7 @@ read-only folders; a property-based sweep over random bytes.
 
 from __future__ import annotations
 
+import json
 import os
 import subprocess
 import sys
@@ -18,7 +19,7 @@ from pathlib import Path
 
 import pytest
 
-from codeseek.client import DaemonClient, DaemonUnavailable
+from codeseek.client import SOCKET_NAME, DaemonClient, DaemonUnavailable
 from codeseek.errors import CodeseekError
 
 # == the index folder: nothing written outside the repository and its index ==
@@ -166,6 +167,25 @@ def test_an_edit_during_the_first_build_is_applied_after_it(sample_copy: Path,
     finally:
         running.stop()
     assert "Traceback" not in running.log()
+
+
+def test_a_refused_second_watch_leaves_the_running_daemon_its_socket(
+        daemon_process: DaemonProcess, tmp_path: Path) -> None:
+    repo, index_dir = daemon_process.repo, daemon_process.index_dir
+    command = [sys.executable, "-m", "codeseek"]
+    env = daemon_env(tmp_path / "cache")
+    second = subprocess.run([*command, "watch", str(repo), "--backend", "fake"], env=env,
+                            capture_output=True, text=True, timeout=120, check=False)
+    assert second.returncode == 1
+    assert (index_dir / SOCKET_NAME).exists()
+    status = subprocess.run([*command, "status", str(repo), "--json"], env=env,
+                            capture_output=True, text=True, timeout=120, check=True)
+    assert json.loads(status.stdout)["daemon"]["pid"] == daemon_process.process.pid
+    assert daemon_state(index_dir) == "watching"
+    # the refused one says why, and nothing else (it never started, so it never stopped)
+    assert second.stderr == (
+        f"error: a codeseek daemon (pid {daemon_process.process.pid}) already watches the "
+        f"index at {index_dir}; stop it first or use it as it is\n")
 
 
 
