@@ -13,7 +13,7 @@ import json
 import os
 import sys
 import time
-from collections.abc import Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
@@ -270,17 +270,9 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         raise InvalidQuery("give a QUERY or --batch FILE")
     if args.batch is not None and args.query is not None:
         raise InvalidQuery("give a QUERY or --batch FILE, not both")
-    from codeseek.client import DaemonUnavailable
-
     queries = _read_batch(args.batch) if args.batch is not None else [args.query]
     options = {"languages": args.lang, "paths": args.path, "kinds": args.kind}
-    results: list[list[SearchHit]] | None = None
-    client = _daemon_client(args.repo, args)
-    if client is not None and queries:
-        try:
-            results = client.search_many(queries, args.k, **options)
-        except DaemonUnavailable:
-            results = None  # a stale socket: answer in this process
+    results: Iterable[list[SearchHit]] | None = _daemon_answers(args, queries, options, err)
     if results is None:
         with _open(args.repo, args, create=False) as index:
             results = index.search_many(queries, args.k, **options) if queries else []
@@ -288,12 +280,35 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         for hits in results:
             _print_json(hits, out)
         return EXIT_OK
-    hits = results[0]
+    hits = next(iter(results))
     if args.json:
         _print_json(hits, out)
     else:
         _print_hits(hits, out)
     return EXIT_OK
+
+
+def _daemon_answers(args: argparse.Namespace, queries: list[str], options: dict[str, Any],
+                    err: TextIO) -> Iterator[list[SearchHit]] | None:
+    """The running daemon's answers, read as they arrive; None: answer in this process.
+
+    The daemon takes what the in-process search takes (the client splits a batch
+    to fit its limits). It is passed over only when none listens (no socket, or a
+    crashed daemon's), or, said on stderr, for a query too large for any request;
+    a daemon that listens but fails is an error.
+    """
+    from codeseek.client import DaemonUnavailable, TooLargeForDaemon
+
+    client = _daemon_client(args.repo, args)
+    if client is None or not queries:
+        return None
+    try:
+        return client.search_stream(queries, args.k, **options)
+    except TooLargeForDaemon as exc:
+        print(f"codeseek: {exc}; answering in this process", file=err)
+    except DaemonUnavailable:
+        pass  # nobody listens on the socket: no daemon runs
+    return None
 
 
 def _read_batch(source: str) -> list[str]:

@@ -43,6 +43,9 @@ from typing import Any
 from codeseek.api import Index
 from codeseek.client import (
     CLIENT_TIMEOUT,
+    MAX_K,
+    MAX_QUERIES,
+    MAX_REQUEST_BYTES,
     PROTOCOL_VERSION,
     SOCKET_NAME,
 )
@@ -50,9 +53,6 @@ from codeseek.errors import CodeseekError, IndexLocked
 from codeseek.watch import RECONCILE_SECONDS, Watcher
 
 LOCK_NAME = "daemon.lock"
-MAX_REQUEST_BYTES = 64 * 1024
-MAX_QUERIES = 1000
-MAX_K = 1000
 
 Log = Callable[[str], None]
 
@@ -73,9 +73,9 @@ def _string_list(request: dict[str, Any], key: str) -> list[str]:
 
 def _k_of(request: dict[str, Any]) -> int:
     k = request.get("k", 10)
-    if not isinstance(k, int) or isinstance(k, bool) or not 1 <= k <= MAX_K:
-        raise ValueError(f"'k' must be a whole number from 1 to {MAX_K}")
-    return k
+    if not isinstance(k, int) or isinstance(k, bool) or k > MAX_K:
+        raise ValueError(f"'k' must be a whole number up to {MAX_K}")
+    return k  # below 1: the index refuses it with the same words as in process
 
 
 class Daemon:
