@@ -19,9 +19,16 @@ line. Every message carries ``"v": PROTOCOL_VERSION``. Requests:
 * ``{"v": 1, "op": "status"}`` -> ``{"v": 1, "ok": true, "index": {...}, "daemon": {...}}``
 * ``{"v": 1, "op": "shutdown"}`` -> ``{"v": 1, "ok": true}``
 
-An error is ``{"v": 1, "ok": false, "error": "...", "kind": "InvalidQuery"}``.
-A request line over :data:`MAX_REQUEST_BYTES` is refused and the connection closed.
-The daemon only ever returns what the index holds; it reads no file on request.
+An error is ``{"v": 1, "ok": false, "error": "...", "kind": "InvalidQuery"}``, its
+message one line. Every request line gets one answer, whatever it holds: text
+that is not UTF-8 or not JSON, nesting too deep to parse, a whole number outside
+64 bits or a lone surrogate in the text (outside path patterns, which may name
+files whose names are not UTF-8) are malformed requests; an unexpected failure
+is answered as a ``DaemonError`` and logged on one line. A request line over
+:data:`MAX_REQUEST_BYTES` is refused and the connection closed; the limits
+(:data:`MAX_REQUEST_BYTES`, :data:`MAX_QUERIES`, :data:`MAX_K`) live in
+:mod:`codeseek.client`, which splits a batch to fit them. The daemon only ever
+returns what the index holds; it reads no file on request.
 """
 
 from __future__ import annotations
@@ -34,6 +41,7 @@ import signal
 import socket
 import socketserver
 import struct
+import sys
 import threading
 import time
 from collections.abc import Callable
@@ -49,10 +57,13 @@ from codeseek.client import (
     PROTOCOL_VERSION,
     SOCKET_NAME,
 )
+from codeseek.display import printable
 from codeseek.errors import CodeseekError, IndexLocked
 from codeseek.watch import RECONCILE_SECONDS, Watcher
 
 LOCK_NAME = "daemon.lock"
+INT64 = range(-(2**63), 2**63)  # what SQLite and the index's ids can hold
+UNCHECKED_TEXT = frozenset({"paths"})  # patterns may name files whose names are not UTF-8
 
 Log = Callable[[str], None]
 
@@ -61,7 +72,42 @@ Log = Callable[[str], None]
 
 
 def _error(message: str, kind: str = "ProtocolError") -> dict[str, Any]:
-    return {"v": PROTOCOL_VERSION, "ok": False, "error": message, "kind": kind}
+    return {"v": PROTOCOL_VERSION, "ok": False, "error": " ".join(message.splitlines()),
+            "kind": kind}
+
+
+def _check_values(request: dict[str, Any]) -> None:
+    """Refuse what no field can use: a whole number outside 64 bits, a lone surrogate.
+
+    Walks the request without recursion (it may nest as deep as the parser allows).
+    """
+    for key, value in request.items():
+        stack = [key, value]
+        while stack:
+            item = stack.pop()
+            if isinstance(item, dict):
+                stack.extend(item.keys())
+                stack.extend(item.values())
+            elif isinstance(item, list):
+                stack.extend(item)
+            elif isinstance(item, int) and not isinstance(item, bool) and item not in INT64:
+                raise ValueError(f"{_name(key)} holds a whole number outside 64 bits")
+            elif (isinstance(item, str) and key not in UNCHECKED_TEXT
+                  and not _is_unicode(item)):
+                raise ValueError(f"{_name(key)} holds a lone surrogate (text that is not "
+                                 "valid Unicode)")
+
+
+def _name(key: str) -> str:
+    return f"'{printable(key)[:40]}'"
+
+
+def _is_unicode(text: str) -> bool:
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return False
+    return True
 
 
 def _string_list(request: dict[str, Any], key: str) -> list[str]:
@@ -178,6 +224,9 @@ class Daemon:
             daemon_threads = True
             request_queue_size = 128  # many clients may connect at once
 
+            def handle_error(self, request: Any, client_address: Any) -> None:
+                daemon._log_unexpected("serving a connection")  # one line, no traceback
+
         old_umask = os.umask(0o177)
         try:
             server = Server(str(self.socket_path), Handler)
@@ -215,11 +264,31 @@ class Daemon:
     def handle_line(self, line: bytes) -> dict[str, Any]:
         """The response to one request line (never raises)."""
         try:
+            return self._answer(line)
+        except Exception:  # noqa: BLE001 - one bad request must not take the daemon down
+            return _error(self._log_unexpected("answering a request"), "DaemonError")
+
+    def _log_unexpected(self, doing: str) -> str:
+        """Log the exception being handled on one line; return the line."""
+        exc = sys.exc_info()[1]
+        message = printable(f"the daemon failed {doing}: unexpected "
+                            f"{type(exc).__name__}: {exc}")
+        self.log(f"error: {message}")
+        return message
+
+    def _answer(self, line: bytes) -> dict[str, Any]:
+        try:
             request = json.loads(line.decode("utf-8"))
         except (UnicodeDecodeError, ValueError):
             return _error("malformed request: not a JSON object on one line")
+        except RecursionError:
+            return _error("malformed request: nested too deeply")
         if not isinstance(request, dict):
             return _error("malformed request: not a JSON object on one line")
+        try:
+            _check_values(request)
+        except ValueError as exc:
+            return _error(f"malformed request: {exc}")
         if request.get("v") != PROTOCOL_VERSION:
             return _error(f"unsupported protocol version {request.get('v')!r}; "
                           f"this daemon speaks {PROTOCOL_VERSION}")

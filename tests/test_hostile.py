@@ -11,15 +11,21 @@ from __future__ import annotations
 
 import json
 import os
+import socket
 import subprocess
 import sys
 import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
+from typing import Any
 
 import pytest
+from hypothesis import HealthCheck, given, settings
+from hypothesis import strategies as st
 
+from codeseek import FakeEmbedder, open_index
 from codeseek.client import SOCKET_NAME, DaemonClient, DaemonUnavailable
+from codeseek.daemon import Daemon
 from codeseek.errors import CodeseekError
 
 # == the index folder: nothing written outside the repository and its index ==
@@ -186,6 +192,131 @@ def test_a_refused_second_watch_leaves_the_running_daemon_its_socket(
     assert second.stderr == (
         f"error: a codeseek daemon (pid {daemon_process.process.pid}) already watches the "
         f"index at {index_dir}; stop it first or use it as it is\n")
+
+
+@pytest.fixture
+def served(sample_copy: Path) -> Iterator[tuple[Daemon, list[str]]]:
+    """An in-process daemon and the lines it logs."""
+    index = open_index(sample_copy, create=True, embedder=FakeEmbedder())
+    messages: list[str] = []
+    running = Daemon(index, log=messages.append, reconcile_seconds=3600)
+    running.start()
+    yield running, messages
+    running.stop()
+    index.close()
+
+
+def daemon_exchange(path: Path, payload: bytes) -> list[dict[str, Any]]:
+    """Send request lines on one connection; the answers, one per line."""
+    with socket.socket(socket.AF_UNIX, socket.SOCK_STREAM) as sock:
+        sock.settimeout(30)
+        sock.connect(str(path))
+        sock.sendall(payload)
+        sock.shutdown(socket.SHUT_WR)
+        chunks = []
+        while chunk := sock.recv(1 << 16):
+            chunks.append(chunk)
+    return [json.loads(line) for line in b"".join(chunks).splitlines()]
+
+
+@pytest.mark.parametrize("line, message", [
+    (b'{"v": 1, "op": "search", "queries": ["refund \\ud800 a rider"]}',
+     "malformed request: 'queries' holds a lone surrogate (text that is not valid Unicode)"),
+    (b'{"v": 1, "op": "search", "queries": ["refund"], "kinds": ["\\udfff"]}',
+     "malformed request: 'kinds' holds a lone surrogate (text that is not valid Unicode)"),
+    (b'{"v": 1, "op": "similar", "unit_id": 9223372036854775808}',  # 2**63
+     "malformed request: 'unit_id' holds a whole number outside 64 bits"),
+    (b'{"v": 1, "op": "similar", "unit_id": -9223372036854775809}',
+     "malformed request: 'unit_id' holds a whole number outside 64 bits"),
+    (b'{"v": 1, "op": "search", "queries": ["refund"], "k": 18446744073709551616}',
+     "malformed request: 'k' holds a whole number outside 64 bits"),
+    (b"[" * 30_000 + b"]" * 30_000, "malformed request: nested too deeply"),
+    (b'{"v": 1, "op": "search", "x": ' + b'{"a": ' * 30_000 + b"1" + b"}" * 30_001,
+     "malformed request: nested too deeply"),
+])
+def test_bad_values_get_an_error_answer_and_the_daemon_serves_on(
+        served: tuple[Daemon, list[str]], capfd: pytest.CaptureFixture[str],
+        line: bytes, message: str) -> None:
+    daemon, logged = served
+    path = daemon.index.settings.index_dir / SOCKET_NAME
+    first, status = daemon_exchange(path, line + b'\n{"v": 1, "op": "status"}\n')
+    assert first == {"v": 1, "ok": False, "error": message, "kind": "ProtocolError"}
+    assert status["ok"] and status["daemon"]["state"] == "watching"  # the same connection
+    assert "Traceback" not in capfd.readouterr().err
+    assert not [m for m in logged if m.startswith("error")]
+
+
+def test_a_path_pattern_may_hold_undecodable_bytes(served: tuple[Daemon, list[str]]) -> None:
+    # a file name that is not UTF-8 reaches Python as lone surrogates (surrogateescape);
+    # a pattern naming one is matched, as in process, not refused
+    daemon, _ = served
+    answer, = daemon_exchange(daemon.index.settings.index_dir / SOCKET_NAME,
+                              b'{"v": 1, "op": "search", "queries": ["refund"], '
+                              b'"paths": ["caf\\udce9/*"]}\n')
+    assert answer == {"v": 1, "ok": True, "results": [[]]}
+
+
+def test_an_unexpected_failure_is_one_error_line(served: tuple[Daemon, list[str]],
+                                                 capfd: pytest.CaptureFixture[str],
+                                                 monkeypatch: pytest.MonkeyPatch) -> None:
+    daemon, logged = served
+
+    def broken(*args: object, **kwargs: object) -> None:
+        raise RuntimeError("the gears slipped\nat dock 7")
+
+    monkeypatch.setattr(daemon.index, "search_many", broken)
+    path = daemon.index.settings.index_dir / SOCKET_NAME
+    first, status = daemon_exchange(path, b'{"v": 1, "op": "search", "queries": ["x"]}\n'
+                                          b'{"v": 1, "op": "status"}\n')
+    expected = ("the daemon failed answering a request: unexpected RuntimeError: "
+                "the gears slipped\\nat dock 7")
+    assert first == {"v": 1, "ok": False, "error": expected, "kind": "DaemonError"}
+    assert status["ok"]
+    assert logged[-1] == f"error: {expected}"
+    assert "Traceback" not in capfd.readouterr().err
+
+
+# Request lines for the sweep: raw bytes, JSON-like token soup (with the values that
+# once broke the daemon), deep nesting, and well-formed requests of random text
+# (lone surrogates included). Never a shutdown: the daemon must outlive the sweep.
+REQUEST_TOKENS = [b"{", b"}", b"[", b"]", b":", b",", b" ", b"\n", b'"v"', b"1", b"0", b"-1",
+                  b'"op"', b'"search"', b'"similar"', b'"status"', b'"queries"', b'"k"',
+                  b'"unit_id"', b'"languages"', b'"paths"', b'"kinds"', b'"refund"', b'""',
+                  b'"\\ud800"', b'"\\udc80x"', b'"\\u0000"', b"9223372036854775808",
+                  b"-9223372036854775809", b"1e999", b"NaN", b"Infinity", b"null", b"true",
+                  b"\xff", b"\x00", b"\xed\xa0\x80"]
+any_text = st.text(st.characters(exclude_categories=()), max_size=12)
+request_lines = st.one_of(
+    st.binary(max_size=400),
+    st.lists(st.sampled_from(REQUEST_TOKENS), max_size=80).map(b"".join),
+    st.tuples(st.integers(1, 40_000), st.sampled_from([b"[]", b"{}"])).map(
+        lambda depth_pair: depth_pair[1][:1] * depth_pair[0] + depth_pair[1][1:] * depth_pair[0]),
+    st.fixed_dictionaries(
+        {"v": st.just(1), "op": st.sampled_from(["search", "similar", "status", "nope"])},
+        optional={"queries": st.lists(any_text, max_size=3), "k": st.integers(),
+                  "unit_id": st.integers(), "languages": st.lists(any_text, max_size=2),
+                  "paths": st.lists(any_text, max_size=2),
+                  "kinds": st.lists(any_text, max_size=2)},
+    ).map(lambda request: json.dumps(request).encode()),
+)
+
+
+@settings(max_examples=200, deadline=None,
+          suppress_health_check=[HealthCheck.function_scoped_fixture])
+@given(lines=st.lists(request_lines, min_size=1, max_size=4))
+def test_random_request_lines_get_one_answer_each_and_no_traceback(
+        daemon_process: DaemonProcess, lines: list[bytes]) -> None:
+    payload = b"\n".join(lines) + b"\n"
+    answers = daemon_exchange(daemon_process.index_dir / SOCKET_NAME, payload)
+    assert len(answers) == payload.count(b"\n")  # one answer per line
+    for answer in answers:
+        assert answer["v"] == 1 and isinstance(answer["ok"], bool)
+        if not answer["ok"]:
+            assert answer["error"] and "\n" not in answer["error"]
+            assert answer["kind"] != "DaemonError"  # only foreseen errors, none unexpected
+    assert daemon_state(daemon_process.index_dir) == "watching"
+    log = daemon_process.log()
+    assert "Traceback" not in log and "error:" not in log
 
 
 
