@@ -644,3 +644,34 @@ def test_a_socket_nobody_listens_on_is_searched_without(fake_index: Index,
                          "--repo", str(fake_index.settings.repo))
     assert code == 0 and err == ""
     assert json.loads(out.splitlines()[0])["rank"] == 1
+
+
+# -- the log -------------------------------------------------------------------------------
+
+
+def test_the_log_names_the_updated_paths(fake_index: Index) -> None:
+    from codeseek.watch import Watcher
+
+    logged: list[str] = []
+    watcher = Watcher(fake_index, log=logged.append)  # applied by hand: one batch each
+    repo = fake_index.settings.repo
+    folder = repo / "python" / "harbour"
+    folder.mkdir()
+    for name in ("a", "b", "c", "d", "e"):
+        (folder / f"{name}.py").write_text(
+            f'def moor_{name}():\n    """Moor boat {name}."""\n', encoding="utf-8")
+    assert watcher.apply({f"python/harbour/{name}.py" for name in "abcde"})
+    assert logged[-1].startswith("codeseek: updated python/harbour/a.py, python/harbour/b.py, "
+                                 "python/harbour/c.py and 2 more: +5 ~0 -0 units (")
+    (folder / "a.py").unlink()
+    (folder / "b.py").write_text('def moor_b():\n    """Moor boat bee."""\n', encoding="utf-8")
+    assert watcher.apply({"python/harbour/a.py", "python/harbour/b.py"})
+    assert logged[-1].startswith(
+        "codeseek: updated python/harbour/a.py and python/harbour/b.py: +0 ~1 -1 units (")
+    (folder / "c.py").write_text('def moor_c():\n    """Moor boat sea."""\n', encoding="utf-8")
+    assert watcher.apply({""})  # the reconcile names what it found, not "the whole tree"
+    assert logged[-1].startswith("codeseek: updated python/harbour/c.py: +0 ~1 -0 units (")
+    odd = folder / "bell\x1b[2J.py"  # a name that would clear the screen, shown escaped
+    odd.write_text('def ring():\n    """Ring."""\n', encoding="utf-8")
+    assert watcher.apply({"python/harbour/bell\x1b[2J.py"})
+    assert logged[-1].startswith("codeseek: updated python/harbour/bell\\x1b[2J.py: +1 ~0 -0")
