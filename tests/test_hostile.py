@@ -276,6 +276,27 @@ def test_an_unexpected_failure_is_one_error_line(served: tuple[Daemon, list[str]
     assert "Traceback" not in capfd.readouterr().err
 
 
+def test_a_failure_outside_a_request_is_one_log_line(served: tuple[Daemon, list[str]],
+                                                     capfd: pytest.CaptureFixture[str],
+                                                     monkeypatch: pytest.MonkeyPatch) -> None:
+    daemon, logged = served
+
+    def broken(handler: object) -> None:
+        raise RuntimeError("the dock gate jammed")
+
+    monkeypatch.setattr(daemon, "_serve_connection", broken)
+    with socket.socket(socket.AF_UNIX, socket.SOCK_STREAM) as sock:
+        sock.settimeout(30)
+        sock.connect(str(daemon.index.settings.index_dir / SOCKET_NAME))
+        assert sock.recv(1 << 16) == b""  # closed, with no answer
+    daemon_wait(lambda: bool(logged) and logged[-1].startswith("error"), "the log line")
+    assert logged[-1] == ("error: the daemon failed serving a connection: unexpected "
+                          "RuntimeError: the dock gate jammed")
+    monkeypatch.undo()
+    assert daemon_state(daemon.index.settings.index_dir) == "watching"
+    assert "Traceback" not in capfd.readouterr().err
+
+
 # Request lines for the sweep: raw bytes, JSON-like token soup (with the values that
 # once broke the daemon), deep nesting, and well-formed requests of random text
 # (lone surrogates included). Never a shutdown: the daemon must outlive the sweep.
