@@ -6,15 +6,16 @@ daemon costs little more than starting Python. The protocol is described in
 :mod:`codeseek.daemon`.
 
 A search through the daemon takes the same inputs as one in process: a batch
-goes in as many requests as the daemon's limits need (:data:`MAX_QUERIES`
-queries, about :data:`HITS_PER_REQUEST` hits and :data:`REQUEST_BYTES` a
-request), the answers are read as they arrive, one request after another on
-one connection, and nothing caps their size. Only a single query larger than
-a whole request (:data:`MAX_REQUEST_BYTES`) does not fit; it raises
-:class:`TooLargeForDaemon` before anything is sent. A daemon that is listening
-but fails (breaks off, times out, answers garbage) raises
-:class:`~codeseek.errors.DaemonError`; only "no daemon listens" is
-:class:`DaemonUnavailable`, which callers answer in process.
+goes in as many requests as it takes to keep each one small (at most
+:data:`QUERIES_PER_REQUEST` queries, about :data:`HITS_PER_REQUEST` hits and
+:data:`REQUEST_BYTES`, all within the daemon's limits), the answers are read
+as they arrive, one request after another on one connection, and nothing caps
+their size. Only a single query larger than a whole request
+(:data:`MAX_REQUEST_BYTES`) does not fit; it raises :class:`TooLargeForDaemon`
+before anything is sent. A daemon that is listening but fails (breaks off,
+times out, answers garbage) raises :class:`~codeseek.errors.DaemonError`; only
+"no daemon listens" is :class:`DaemonUnavailable`, which callers answer in
+process.
 """
 
 from __future__ import annotations
@@ -38,7 +39,9 @@ MAX_REQUEST_BYTES = 16 * 1024 * 1024  # one request line
 MAX_QUERIES = 1000  # queries in one search request
 MAX_K = 2**31 - 1  # no index holds this many units, so a larger k has the same answer
 
-# How much the client puts in one request, so that each answer stays a few MB.
+# How much the client puts in one request, so that each answer stays a few MB and
+# comes well within CLIENT_TIMEOUT, even from a real model on a busy machine.
+QUERIES_PER_REQUEST = 250
 REQUEST_BYTES = 1024 * 1024
 HITS_PER_REQUEST = 10_000
 
@@ -183,8 +186,8 @@ def search_requests(queries: Sequence[str], k: int,
     Raises TooLargeForDaemon when one query alone is larger than a request may be.
     """
     sent_k = min(k, MAX_K)  # a k beyond every unit of the index has the same answer
-    per_request = MAX_QUERIES if sent_k < 1 else max(1, min(MAX_QUERIES,
-                                                            HITS_PER_REQUEST // sent_k))
+    most = min(QUERIES_PER_REQUEST, MAX_QUERIES)
+    per_request = most if sent_k < 1 else max(1, min(most, HITS_PER_REQUEST // sent_k))
     base: dict[str, Any] = {"op": "search", "queries": [], "k": sent_k, **filters}
     overhead = len(json.dumps({"v": PROTOCOL_VERSION, **base})) + 1  # + the newline
     requests: list[dict[str, Any]] = []

@@ -565,7 +565,13 @@ def test_the_cli_takes_the_same_inputs_with_and_without_a_daemon(
 
 
 def test_a_batch_is_split_to_fit_the_daemons_limits() -> None:
-    from codeseek.client import HITS_PER_REQUEST, MAX_QUERIES, REQUEST_BYTES, search_requests
+    from codeseek.client import (
+        HITS_PER_REQUEST,
+        MAX_QUERIES,
+        QUERIES_PER_REQUEST,
+        REQUEST_BYTES,
+        search_requests,
+    )
 
     filters: dict[str, list[str]] = {"languages": [], "paths": [], "kinds": []}
     queries = [f"query {n} " + "é" * (n % 50) for n in range(2500)]
@@ -573,10 +579,10 @@ def test_a_batch_is_split_to_fit_the_daemons_limits() -> None:
         requests = search_requests(queries, k, filters)
         assert [q for request in requests for q in request["queries"]] == queries  # in order
         for request in requests:
-            assert len(request["queries"]) <= MAX_QUERIES
+            assert len(request["queries"]) <= min(QUERIES_PER_REQUEST, MAX_QUERIES)
             assert len(request["queries"]) * request["k"] <= max(HITS_PER_REQUEST, request["k"])
             assert len(json.dumps({"v": 1, **request})) + 1 <= REQUEST_BYTES
-    assert len(search_requests(queries, 10, filters)) == 3
+    assert len(search_requests(queries, 10, filters)) == 2500 // QUERIES_PER_REQUEST
     assert search_requests(queries, 2**40, filters)[0]["k"] == 2**31 - 1
     big = "x" * (2 * REQUEST_BYTES)  # one query over the usual size goes alone, whole
     assert [r["queries"] for r in search_requests(["a", big, "b"], 10, filters)] == \
