@@ -14,7 +14,7 @@ import json
 import os
 import sys
 import time
-from collections.abc import Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
@@ -343,26 +343,17 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         raise UsageError("the query is empty; type what you are looking for")
     if args.k < 1:
         raise UsageError(f"-k must be at least 1, not {args.k}")
-    from codeseek.client import DaemonUnavailable
-
     lines = _read_batch(args.batch) if args.batch is not None else [_query_text(args.query)]
     queries = [line for line in lines if line]
     options = _search_filters(args)
-    results: list[list[SearchHit]] | None = None
-    client = _daemon_client(args.repo, args)
-    if client is not None and queries:
-        _open(args.repo, args, create=False).close()  # the same checks as in process
-        try:
-            results = client.search_many(queries, args.k, **options)
-        except DaemonUnavailable:
-            results = None  # a stale socket: answer in this process
+    results: Iterable[list[SearchHit]] | None = _daemon_answers(args, queries, options, err)
     if results is None:
         with _open(args.repo, args, create=False) as index:
             results = index.search_many(queries, args.k, **options) if queries else []
     if args.batch is not None:
         _print_batch(lines, results, out)
         return EXIT_OK
-    hits = results[0]
+    hits = next(iter(results))
     if args.json:
         _print_json(hits, out)
     else:
@@ -417,6 +408,30 @@ def _unit_of_place(index: Index, place: str) -> int:
     if outside is not None:
         raise InvalidQuery(f"{outside}: outside the repository {root}")
     raise InvalidQuery(f"{place[:splits[0]]}: not a file of the index")
+
+
+def _daemon_answers(args: argparse.Namespace, queries: list[str], options: dict[str, Any],
+                    err: TextIO) -> Iterator[list[SearchHit]] | None:
+    """The running daemon's answers, read as they arrive; None: answer in this process.
+
+    The daemon takes what the in-process search takes (the client splits a batch
+    to fit its limits). It is passed over only when none listens (no socket, or a
+    crashed daemon's), or, said on stderr, for a query too large for any request;
+    a daemon that listens but fails is an error.
+    """
+    from codeseek.client import DaemonUnavailable, TooLargeForDaemon
+
+    client = _daemon_client(args.repo, args)
+    if client is None or not queries:
+        return None
+    _open(args.repo, args, create=False).close()  # the same checks as in process
+    try:
+        return client.search_stream(queries, args.k, **options)
+    except TooLargeForDaemon as exc:
+        print(f"codeseek: {exc}; answering in this process", file=err)
+    except DaemonUnavailable:
+        pass  # nobody listens on the socket: no daemon runs
+    return None
 
 
 def _search_filters(args: argparse.Namespace) -> dict[str, list[str]]:
@@ -485,7 +500,7 @@ def no_hits_record(query: str) -> dict[str, object]:
     return {"query": query, "rank": None, "hits": 0}
 
 
-def _print_batch(lines: Sequence[str], results: Sequence[Sequence[SearchHit]],
+def _print_batch(lines: Sequence[str], results: Iterable[Sequence[SearchHit]],
                  out: TextIO) -> None:
     """Every line's hits in line order; a line without any, one :func:`no_hits_record`."""
     answers = iter(results)

@@ -4,31 +4,63 @@ ask a running ``codeseek watch`` instead of loading the index themselves.
 It imports nothing heavy (no numpy, no model), so a search through the
 daemon costs little more than starting Python. The protocol is described in
 :mod:`codeseek.daemon`.
+
+A search through the daemon takes the same inputs as one in process: a batch
+goes in as many requests as it takes to keep each one small (at most
+:data:`QUERIES_PER_REQUEST` queries, about :data:`HITS_PER_REQUEST` hits and
+:data:`REQUEST_BYTES`, all within the daemon's limits), the answers are read
+as they arrive, one request after another on one connection, and nothing caps
+their size. Only a single query larger than a whole request
+(:data:`MAX_REQUEST_BYTES`) does not fit; it raises :class:`TooLargeForDaemon`
+before anything is sent. A daemon that is listening but fails (breaks off,
+times out, answers garbage) raises :class:`~codeseek.errors.DaemonError`; only
+"no daemon listens" is :class:`DaemonUnavailable`, which callers answer in
+process.
 """
 
 from __future__ import annotations
 
 import json
 import socket
-from collections.abc import Sequence
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
 from codeseek import errors
-from codeseek.errors import CodeseekError
+from codeseek.errors import CodeseekError, DaemonError
 from codeseek.hits import SearchHit
 
 PROTOCOL_VERSION = 1
 SOCKET_NAME = "daemon.sock"
 CLIENT_TIMEOUT = 30.0
 
+# The daemon's limits (codeseek.daemon enforces them; the client fits its requests to them).
+MAX_REQUEST_BYTES = 16 * 1024 * 1024  # one request line
+MAX_QUERIES = 1000  # queries in one search request
+MAX_K = 2**31 - 1  # no index holds this many units, so a larger k has the same answer
+
+# How much the client puts in one request, so that each answer stays a few MB and
+# comes well within CLIENT_TIMEOUT, even from a real model on a busy machine.
+QUERIES_PER_REQUEST = 250
+REQUEST_BYTES = 1024 * 1024
+HITS_PER_REQUEST = 10_000
+
 
 class DaemonUnavailable(Exception):
-    """No daemon answers on this index's socket (the caller works without it)."""
+    """No daemon listens on this index's socket (the caller works without it)."""
+
+
+class TooLargeForDaemon(DaemonUnavailable):
+    """One query does not fit in a daemon request; the caller answers it in process
+    (and says why)."""
 
 
 class DaemonClient:
-    """Talks to a running daemon; every call raises DaemonUnavailable if none answers."""
+    """Talks to a running daemon.
+
+    Every call raises :class:`DaemonUnavailable` if no daemon listens, and
+    :class:`~codeseek.errors.DaemonError` if one listens but fails to answer.
+    """
 
     def __init__(self, index_dir: Path, timeout: float = CLIENT_TIMEOUT) -> None:
         self.socket_path = index_dir / SOCKET_NAME
@@ -36,36 +68,38 @@ class DaemonClient:
 
     def request(self, message: dict[str, Any]) -> dict[str, Any]:
         """Send one request and return the response (errors re-raised as CodeseekError)."""
+        connection = self.connect()
+        try:
+            return connection.exchange(message)
+        finally:
+            connection.close()
+
+    def connect(self) -> Connection:
+        """A connection to the daemon, for one request after another."""
         if not self.socket_path.exists():
             raise DaemonUnavailable(str(self.socket_path))
-        sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
-        sock.settimeout(self.timeout)
-        try:
-            sock.connect(str(self.socket_path))
-            sock.sendall(json.dumps({"v": PROTOCOL_VERSION, **message}).encode() + b"\n")
-            data = sock.makefile("rb").readline()
-        except OSError as exc:
-            raise DaemonUnavailable(f"{self.socket_path}: {exc}") from exc
-        finally:
-            sock.close()
-        if not data:
-            raise DaemonUnavailable(f"{self.socket_path}: no answer")
-        response: dict[str, Any] = json.loads(data)
-        if not response.get("ok"):
-            error_type = getattr(errors, str(response.get("kind")), None)
-            if isinstance(error_type, type) and issubclass(error_type, CodeseekError):
-                raise error_type(response.get("error", "daemon error"))
-            raise CodeseekError(f"the daemon refused the request: {response.get('error')}")
-        return response
+        return Connection(self.socket_path, self.timeout)
+
+    def search_stream(self, queries: Sequence[str], k: int = 10, *,
+                      languages: Sequence[str] = (), paths: Sequence[str] = (),
+                      kinds: Sequence[str] = ()) -> Iterator[list[SearchHit]]:
+        """Each query's answer in order, read as the daemon sends them.
+
+        Connects at once: DaemonUnavailable and TooLargeForDaemon come from this
+        call, before any answer; a failure later in the batch is a DaemonError.
+        Each request is answered from one committed state of the index, so a batch
+        sent in several requests may straddle an update, as separate searches would.
+        """
+        requests = search_requests(queries, k, {"languages": list(languages),
+                                                "paths": list(paths), "kinds": list(kinds)})
+        return _answers(self.connect(), requests)
 
     def search_many(self, queries: Sequence[str], k: int = 10, *,
                     languages: Sequence[str] = (), paths: Sequence[str] = (),
                     kinds: Sequence[str] = ()) -> list[list[SearchHit]]:
         """The daemon's answers, as the in-process search would give them."""
-        response = self.request({"op": "search", "queries": list(queries), "k": k,
-                                 "languages": list(languages), "paths": list(paths),
-                                 "kinds": list(kinds)})
-        return [[SearchHit(**hit) for hit in hits] for hits in response["results"]]
+        return list(self.search_stream(queries, k, languages=languages, paths=paths,
+                                       kinds=kinds))
 
     def search(self, query: str, k: int = 10, **filters: Sequence[str]) -> list[SearchHit]:
         """One query's answer."""
@@ -87,3 +121,107 @@ class DaemonClient:
     def shutdown(self) -> None:
         """Ask the daemon to stop."""
         self.request({"op": "shutdown"})
+
+
+class Connection:
+    """One connection to the daemon: requests sent one after another, each answer
+    read whole, however long its line."""
+
+    def __init__(self, socket_path: Path, timeout: float) -> None:
+        self.socket_path = socket_path
+        self.timeout = timeout
+        sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+        sock.settimeout(timeout)
+        try:
+            sock.connect(str(socket_path))
+        except (FileNotFoundError, ConnectionRefusedError) as exc:
+            sock.close()  # a socket file nobody listens on: a crashed daemon's
+            raise DaemonUnavailable(f"{socket_path}: {exc.strerror}") from exc
+        except OSError as exc:
+            sock.close()
+            raise self._failed(exc) from exc
+        self._sock = sock
+        self._reader = sock.makefile("rb")
+
+    def close(self) -> None:
+        """Close the connection."""
+        self._reader.close()
+        self._sock.close()
+
+    def exchange(self, message: dict[str, Any]) -> dict[str, Any]:
+        """Send one request and read its answer (an error answer is raised)."""
+        try:
+            self._sock.sendall(json.dumps({"v": PROTOCOL_VERSION, **message}).encode() + b"\n")
+            data = self._reader.readline()
+        except OSError as exc:
+            raise self._failed(exc) from exc
+        if not data.endswith(b"\n"):
+            raise self._failed("it closed the connection" if not data else
+                               "its answer broke off")
+        try:
+            response = json.loads(data)
+        except (ValueError, RecursionError) as exc:
+            raise self._failed("its answer is not JSON") from exc
+        if not isinstance(response, dict):
+            raise self._failed("its answer is not a JSON object")
+        if not response.get("ok"):
+            error_type = getattr(errors, str(response.get("kind")), None)
+            if isinstance(error_type, type) and issubclass(error_type, CodeseekError):
+                raise error_type(response.get("error", "daemon error"))
+            raise CodeseekError(f"the daemon refused the request: {response.get('error')}")
+        return response
+
+    def _failed(self, reason: OSError | str) -> DaemonError:
+        if isinstance(reason, TimeoutError):
+            reason = f"no answer within {self.timeout:.0f} s"
+        elif isinstance(reason, OSError):
+            reason = reason.strerror or type(reason).__name__
+        return DaemonError(f"the codeseek daemon on {self.socket_path} failed to answer "
+                           f"({reason}); see its log, or stop it to search without it")
+
+
+def search_requests(queries: Sequence[str], k: int,
+                    filters: dict[str, list[str]]) -> list[dict[str, Any]]:
+    """The search requests that carry a batch within the daemon's limits, in order.
+
+    Raises TooLargeForDaemon when one query alone is larger than a request may be.
+    """
+    sent_k = min(k, MAX_K)  # a k beyond every unit of the index has the same answer
+    most = min(QUERIES_PER_REQUEST, MAX_QUERIES)
+    per_request = most if sent_k < 1 else max(1, min(most, HITS_PER_REQUEST // sent_k))
+    base: dict[str, Any] = {"op": "search", "queries": [], "k": sent_k, **filters}
+    overhead = len(json.dumps({"v": PROTOCOL_VERSION, **base})) + 1  # + the newline
+    requests: list[dict[str, Any]] = []
+    chunk: list[str] = []
+    size = overhead
+    for query in queries:
+        cost = len(json.dumps(query)) + 2  # ASCII JSON (non-ASCII escaped) and ", "
+        if overhead + cost > MAX_REQUEST_BYTES:
+            raise TooLargeForDaemon(
+                f"a query of {len(query.encode('utf-8', 'surrogatepass')):,} bytes is "
+                f"larger than a daemon request may be ({MAX_REQUEST_BYTES:,} bytes)")
+        if chunk and (len(chunk) >= per_request or size + cost > REQUEST_BYTES):
+            requests.append({**base, "queries": chunk})
+            chunk, size = [], overhead
+        chunk.append(query)
+        size += cost
+    if chunk:
+        requests.append({**base, "queries": chunk})
+    return requests
+
+
+def _answers(connection: Connection, requests: list[dict[str, Any]]
+             ) -> Iterator[list[SearchHit]]:
+    try:
+        for request in requests:
+            results = connection.exchange(request).get("results")
+            if not isinstance(results, list) or len(results) != len(request["queries"]):
+                raise connection._failed("its answer does not match the request")
+            for hits in results:
+                try:
+                    answer = [SearchHit(**hit) for hit in hits]
+                except TypeError as exc:
+                    raise connection._failed("its answer holds hits of another form") from exc
+                yield answer
+    finally:
+        connection.close()

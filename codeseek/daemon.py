@@ -4,8 +4,10 @@
 ``daemon.lock`` in the index folder for its whole life (a second daemon on the
 same index is refused), listens on ``daemon.sock`` (mode 0600; a connection
 from another user is refused; a socket left by a crashed daemon is replaced),
-indexes the repository, then keeps it fresh with a :class:`~codeseek.watch.Watcher`.
-The model is loaded once; queries are answered while indexing goes on.
+starts watching, indexes the repository, then applies what changed meanwhile and
+keeps it fresh with a :class:`~codeseek.watch.Watcher` (so an edit made during the
+first build is never missed). The model is loaded once; queries are answered while
+indexing goes on.
 
 The protocol is JSON Lines: one request object per line, one response per
 line. Every message carries ``"v": PROTOCOL_VERSION``. Requests:
@@ -17,9 +19,16 @@ line. Every message carries ``"v": PROTOCOL_VERSION``. Requests:
 * ``{"v": 1, "op": "status"}`` -> ``{"v": 1, "ok": true, "index": {...}, "daemon": {...}}``
 * ``{"v": 1, "op": "shutdown"}`` -> ``{"v": 1, "ok": true}``
 
-An error is ``{"v": 1, "ok": false, "error": "...", "kind": "InvalidQuery"}``.
-A request line over :data:`MAX_REQUEST_BYTES` is refused and the connection closed.
-The daemon only ever returns what the index holds; it reads no file on request.
+An error is ``{"v": 1, "ok": false, "error": "...", "kind": "InvalidQuery"}``, its
+message one line. Every request line gets one answer, whatever it holds: text
+that is not UTF-8 or not JSON, nesting too deep to parse, a whole number outside
+64 bits or a lone surrogate in the text (outside path patterns, which may name
+files whose names are not UTF-8) are malformed requests; an unexpected failure
+is answered as a ``DaemonError`` and logged on one line. A request line over
+:data:`MAX_REQUEST_BYTES` is refused and the connection closed; the limits
+(:data:`MAX_REQUEST_BYTES`, :data:`MAX_QUERIES`, :data:`MAX_K`) live in
+:mod:`codeseek.client`, which splits a batch to fit them. The daemon only ever
+returns what the index holds; it reads no file on request.
 """
 
 from __future__ import annotations
@@ -32,6 +41,7 @@ import signal
 import socket
 import socketserver
 import struct
+import sys
 import threading
 import time
 from collections.abc import Callable
@@ -41,16 +51,19 @@ from typing import Any
 from codeseek.api import Index
 from codeseek.client import (
     CLIENT_TIMEOUT,
+    MAX_K,
+    MAX_QUERIES,
+    MAX_REQUEST_BYTES,
     PROTOCOL_VERSION,
     SOCKET_NAME,
 )
+from codeseek.display import printable
 from codeseek.errors import CodeseekError, IndexLocked
 from codeseek.watch import RECONCILE_SECONDS, Watcher
 
 LOCK_NAME = "daemon.lock"
-MAX_REQUEST_BYTES = 64 * 1024
-MAX_QUERIES = 1000
-MAX_K = 1000
+INT64 = range(-(2**63), 2**63)  # what SQLite and the index's ids can hold
+UNCHECKED_TEXT = frozenset({"paths"})  # patterns may name files whose names are not UTF-8
 
 Log = Callable[[str], None]
 
@@ -59,7 +72,42 @@ Log = Callable[[str], None]
 
 
 def _error(message: str, kind: str = "ProtocolError") -> dict[str, Any]:
-    return {"v": PROTOCOL_VERSION, "ok": False, "error": message, "kind": kind}
+    return {"v": PROTOCOL_VERSION, "ok": False, "error": " ".join(message.splitlines()),
+            "kind": kind}
+
+
+def _check_values(request: dict[str, Any]) -> None:
+    """Refuse what no field can use: a whole number outside 64 bits, a lone surrogate.
+
+    Walks the request without recursion (it may nest as deep as the parser allows).
+    """
+    for key, value in request.items():
+        stack = [key, value]
+        while stack:
+            item = stack.pop()
+            if isinstance(item, dict):
+                stack.extend(item.keys())
+                stack.extend(item.values())
+            elif isinstance(item, list):
+                stack.extend(item)
+            elif isinstance(item, int) and not isinstance(item, bool) and item not in INT64:
+                raise ValueError(f"{_name(key)} holds a whole number outside 64 bits")
+            elif (isinstance(item, str) and key not in UNCHECKED_TEXT
+                  and not _is_unicode(item)):
+                raise ValueError(f"{_name(key)} holds a lone surrogate (text that is not "
+                                 "valid Unicode)")
+
+
+def _name(key: str) -> str:
+    return f"'{printable(key)[:40]}'"
+
+
+def _is_unicode(text: str) -> bool:
+    try:
+        text.encode("utf-8")
+    except UnicodeEncodeError:
+        return False
+    return True
 
 
 def _string_list(request: dict[str, Any], key: str) -> list[str]:
@@ -71,9 +119,9 @@ def _string_list(request: dict[str, Any], key: str) -> list[str]:
 
 def _k_of(request: dict[str, Any]) -> int:
     k = request.get("k", 10)
-    if not isinstance(k, int) or isinstance(k, bool) or not 1 <= k <= MAX_K:
-        raise ValueError(f"'k' must be a whole number from 1 to {MAX_K}")
-    return k
+    if not isinstance(k, int) or isinstance(k, bool) or k > MAX_K:
+        raise ValueError(f"'k' must be a whole number up to {MAX_K}")
+    return k  # below 1: the index refuses it with the same words as in process
 
 
 class Daemon:
@@ -103,15 +151,20 @@ class Daemon:
     # -- lifecycle -------------------------------------------------------------------
 
     def start(self) -> None:
-        """Take the lock, listen, index, then watch. Returns once watching."""
+        """Take the lock, listen, watch, index, then apply what changed meanwhile.
+
+        Returns once watching. The watcher collects changes from before the first
+        build starts, so a file written during the build is applied right after it.
+        """
         self._take_lock()
         self._listen()
+        self.watcher.observe()
         self.state = "indexing"
         self.log(f"codeseek: indexing {self.index.settings.repo}")
         summary = self.index.update()
         self.log(f"codeseek: {summary.files} files, {summary.units} units indexed "
                  f"({summary.embedded} embedded, {summary.seconds:.1f} s)")
-        self.watcher.start()
+        self.watcher.start()  # applies what arrived during the build first
         self.state = "watching"
         self.log(f"codeseek: watching ({self.watcher.state.mode}); queries on {self.socket_path}")
 
@@ -129,9 +182,9 @@ class Daemon:
         if self._server is not None:
             self._server.shutdown()
             self._server.server_close()
-        with suppress(FileNotFoundError):
-            self.socket_path.unlink()
-        if self._lock_handle is not None:
+        if self._lock_handle is not None:  # only the lock's owner made the socket
+            with suppress(FileNotFoundError):
+                self.socket_path.unlink()
             self._lock_handle.close()
             self._lock_handle = None
         self.state = "stopped"
@@ -171,6 +224,9 @@ class Daemon:
             daemon_threads = True
             request_queue_size = 128  # many clients may connect at once
 
+            def handle_error(self, request: Any, client_address: Any) -> None:
+                daemon._log_unexpected("serving a connection")  # one line, no traceback
+
         old_umask = os.umask(0o177)
         try:
             server = Server(str(self.socket_path), Handler)
@@ -208,11 +264,31 @@ class Daemon:
     def handle_line(self, line: bytes) -> dict[str, Any]:
         """The response to one request line (never raises)."""
         try:
+            return self._answer(line)
+        except Exception:  # noqa: BLE001 - one bad request must not take the daemon down
+            return _error(self._log_unexpected("answering a request"), "DaemonError")
+
+    def _log_unexpected(self, doing: str) -> str:
+        """Log the exception being handled on one line; return the line."""
+        exc = sys.exc_info()[1]
+        message = printable(f"the daemon failed {doing}: unexpected "
+                            f"{type(exc).__name__}: {exc}")
+        self.log(f"error: {message}")
+        return message
+
+    def _answer(self, line: bytes) -> dict[str, Any]:
+        try:
             request = json.loads(line.decode("utf-8"))
         except (UnicodeDecodeError, ValueError):
             return _error("malformed request: not a JSON object on one line")
+        except RecursionError:
+            return _error("malformed request: nested too deeply")
         if not isinstance(request, dict):
             return _error("malformed request: not a JSON object on one line")
+        try:
+            _check_values(request)
+        except ValueError as exc:
+            return _error(f"malformed request: {exc}")
         if request.get("v") != PROTOCOL_VERSION:
             return _error(f"unsupported protocol version {request.get('v')!r}; "
                           f"this daemon speaks {PROTOCOL_VERSION}")
@@ -298,7 +374,9 @@ def run_foreground(index: Index, log: Log, *, poll: bool = False) -> None:
         daemon.start()
         daemon.wait()
     finally:
+        began = daemon.state != "starting"  # "starting": refused, nothing to stop
         daemon.stop()
         for sig, handler in previous.items():
             signal.signal(sig, handler)
-        log("codeseek: stopped")
+        if began:
+            log("codeseek: stopped")

@@ -25,7 +25,8 @@ where they are raised, with ``raise ... from exc``.
     │                            the one the index's query adapter was trained on
     ├── TooFewExamples           too few documented units (or too small a batch) to check
     │                            or tune on
-    └── ReportWriteError         the recall checks' HTML report could not be written
+    ├── ReportWriteError         the recall checks' HTML report could not be written
+    └── DaemonError              a running daemon broke off, timed out or answered garbage
 """
 
 from __future__ import annotations
@@ -93,3 +94,7 @@ class TooFewExamples(CodeseekError):
 
 class ReportWriteError(CodeseekError):
     """The HTML report of the recall checks could not be written."""
+
+
+class DaemonError(CodeseekError):
+    """A daemon listens on the index's socket but failed to answer a request."""

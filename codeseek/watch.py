@@ -27,6 +27,7 @@ from pathlib import Path
 from watchdog.events import FileSystemEvent, FileSystemEventHandler
 
 from codeseek.api import Index
+from codeseek.display import printable
 from codeseek.errors import CodeseekError
 from codeseek.indexer import UpdateSummary
 from codeseek.scan import (
@@ -204,9 +205,18 @@ class Watcher:
 
     # -- lifecycle -------------------------------------------------------------------
 
+    def observe(self) -> None:
+        """Start collecting changes; they are applied once :meth:`start` runs the worker.
+
+        The daemon calls this before its first build, so that nothing written
+        during the build is missed.
+        """
+        if self._observer is None:
+            self._observer = self._start_observer()
+
     def start(self) -> None:
-        """Start the observer and the worker thread."""
-        self._observer = self._start_observer()
+        """Start the observer (unless observing already) and the worker thread."""
+        self.observe()
         self._worker = threading.Thread(target=self._run, name="codeseek-watch", daemon=True)
         self._worker.start()
 
@@ -292,6 +302,7 @@ class Watcher:
         """Apply a batch of changed paths ("" = reconcile the whole tree)."""
         self.state.pending = len(self.queue) + len(batch)
         try:
+            before = _file_hashes(self.index)
             if "" in batch:
                 self.rules = IgnoreRules(self.index.settings.repo, self.index.settings.exclude)
                 summary = self.index.update()
@@ -315,9 +326,19 @@ class Watcher:
         if summary.added or summary.changed or summary.removed:
             self.state.last_summary = (f"+{summary.added} ~{summary.changed} "
                                        f"-{summary.removed} units")
-            self.log(f"codeseek: updated {len(batch)} paths: {self.state.last_summary} "
-                     f"({summary.seconds:.2f} s)")
+            self.log(f"codeseek: updated {describe_paths(self._changed(before, batch))}: "
+                     f"{self.state.last_summary} ({summary.seconds:.2f} s)")
         return summary
+
+    def _changed(self, before: dict[str, str], batch: set[str]) -> list[str]:
+        """The files an update added, changed or removed (else the batch's paths)."""
+        try:
+            after = _file_hashes(self.index)
+        except CodeseekError:
+            return sorted(batch)
+        changed = sorted(path for path in before.keys() | after.keys()
+                         if before.get(path) != after.get(path))
+        return changed or sorted(batch)
 
     def _save(self) -> None:
         try:
@@ -325,6 +346,21 @@ class Watcher:
         except CodeseekError as exc:
             self.state.last_error = str(exc)
             self.log(f"error: {exc}")
+
+
+def describe_paths(paths: list[str], shown: int = 3) -> str:
+    """A few paths by name for the log, then how many more (terminal-safe)."""
+    names = [printable(path) if path else "the whole tree" for path in paths[:shown]]
+    if not names:
+        return "nothing"
+    if len(paths) > shown:
+        return f"{', '.join(names)} and {len(paths) - shown} more"
+    return ", ".join(names[:-1]) + (" and " if len(names) > 1 else "") + names[-1]
+
+
+def _file_hashes(index: Index) -> dict[str, str]:
+    """Each indexed file's content hash (what tells which files an update changed)."""
+    return {path: row.sha256 for path, row in index.store.file_rows().items()}
 
 
 def _in_private_folder(rel: str, index: Index) -> bool:

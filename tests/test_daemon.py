@@ -227,7 +227,9 @@ def test_oversized_request_is_refused(daemon: Daemon) -> None:
     (b'{"v": 99, "op": "search"}\n', "unsupported protocol version"),
     (b'{"v": 1, "op": "read_file", "path": "/etc/passwd"}\n', "unknown op"),
     (b'{"v": 1, "op": "search", "queries": "x"}\n', "'queries' must be a list"),
-    (b'{"v": 1, "op": "search", "queries": ["x"], "k": 0}\n', "'k' must be"),
+    # below 1: the same words as the in-process search (codeseek.search)
+    (b'{"v": 1, "op": "search", "queries": ["x"], "k": 0}\n', "-k must be at least 1, not 0"),
+    (b'{"v": 1, "op": "search", "queries": ["x"], "k": 2147483648}\n', "'k' must be"),
     (b'{"v": 1, "op": "neighbours", "unit_id": "7"}\n', "'unit_id' must be"),
     (b'{"v": 1, "op": "neighbours", "unit_id": 999999}\n', "no longer in the index"),
 ])
@@ -525,3 +527,168 @@ def test_a_new_adapter_reaches_the_running_daemon(daemon: Daemon, client: Daemon
     assert client.status()["index"]["adapter"]["model_id"] == FakeEmbedder().model_id
     remove_adapter(index_dir)
     assert [h.unit_id for h in client.search(query, 10)] == plain
+
+
+# -- the same inputs with and without a daemon ------------------------------------------------
+
+
+def cli(*argv: str) -> tuple[int, str, str]:
+    import io
+
+    from codeseek.cli import main
+
+    out, err = io.StringIO(), io.StringIO()
+    code = main(list(argv), out=out, err=err)
+    return code, out.getvalue(), err.getvalue()
+
+
+def test_the_cli_takes_the_same_inputs_with_and_without_a_daemon(
+        daemon: Daemon, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("CODESEEK_BACKEND", "fake")  # what the daemon fixture embeds with
+    repo = str(daemon.index.settings.repo)
+    phrases = ["refund a rider", "decode the dock packet", "assign a mechanic", "fare cap",
+               "plan the van route"]
+    batch = tmp_path / "batch.txt"  # 2,500 lines: more than one request holds
+    batch.write_text("".join(f"{phrases[n % 5]} {n}\n" for n in range(2500)), encoding="utf-8")
+    words = ["refund", "rider", "dock", "packet", "mechanic", "ticket", "fare", "route", "van",
+             "station"]
+    long_query = " ".join(words[n % len(words)] for n in range(20_000))
+    assert len(long_query.encode()) > 100_000  # over a request of the old daemon (64 KB)
+    commands = {
+        "batch": ("search", "--batch", str(batch), "--repo", repo),
+        "k 5000": ("search", "refund a rider", "-k", "5000", "--json", "--repo", repo),
+        "k 5000 plain": ("search", "decode the dock packet", "-k", "5000", "--repo", repo),
+        "100 KB": ("search", long_query, "--json", "--repo", repo),
+    }
+    through_daemon = {}
+    for name, argv in commands.items():
+        served = daemon.queries_served
+        through_daemon[name] = cli(*argv)
+        assert through_daemon[name][0] == 0, through_daemon[name][2]
+        expected = 2500 if name == "batch" else 1
+        assert daemon.queries_served == served + expected, name  # the daemon answered it
+    daemon.stop()
+    assert not (daemon.index.settings.index_dir / SOCKET_NAME).exists()
+    for name, argv in commands.items():
+        assert cli(*argv) == through_daemon[name], name  # in process: the same, word for word
+    assert len(through_daemon["batch"][1].splitlines()) == 2500 * 10
+    assert len(through_daemon["k 5000"][1].splitlines()) == daemon.index.status().units
+
+
+def test_a_batch_is_split_to_fit_the_daemons_limits() -> None:
+    from codeseek.client import (
+        HITS_PER_REQUEST,
+        MAX_QUERIES,
+        QUERIES_PER_REQUEST,
+        REQUEST_BYTES,
+        search_requests,
+    )
+
+    filters: dict[str, list[str]] = {"languages": [], "paths": [], "kinds": []}
+    queries = [f"query {n} " + "é" * (n % 50) for n in range(2500)]
+    for k in (10, 5000, 2**40):
+        requests = search_requests(queries, k, filters)
+        assert [q for request in requests for q in request["queries"]] == queries  # in order
+        for request in requests:
+            assert len(request["queries"]) <= min(QUERIES_PER_REQUEST, MAX_QUERIES)
+            assert len(request["queries"]) * request["k"] <= max(HITS_PER_REQUEST, request["k"])
+            assert len(json.dumps({"v": 1, **request})) + 1 <= REQUEST_BYTES
+    assert len(search_requests(queries, 10, filters)) == 2500 // QUERIES_PER_REQUEST
+    assert search_requests(queries, 2**40, filters)[0]["k"] == 2**31 - 1
+    big = "x" * (2 * REQUEST_BYTES)  # one query over the usual size goes alone, whole
+    assert [r["queries"] for r in search_requests(["a", big, "b"], 10, filters)] == \
+        [["a"], [big], ["b"]]
+
+
+def test_a_query_too_large_for_any_request_is_answered_in_process_and_said(
+        daemon: Daemon, monkeypatch: pytest.MonkeyPatch) -> None:
+    import codeseek.client
+
+    monkeypatch.setenv("CODESEEK_BACKEND", "fake")
+    monkeypatch.setattr(codeseek.client, "MAX_REQUEST_BYTES", 2000)
+    served = daemon.queries_served
+    query = "refund a rider " * 200
+    code, out, err = cli("search", query, "--json", "--repo", str(daemon.index.settings.repo))
+    assert code == 0 and json.loads(out.splitlines()[0])["rank"] == 1
+    assert daemon.queries_served == served
+    assert err == ("codeseek: a query of 3,000 bytes is larger than a daemon request may be "
+                   "(2,000 bytes); answering in this process\n")
+
+
+def fake_daemon(path: Path, reply: bytes) -> threading.Thread:
+    """A socket that accepts one connection, reads a line, answers ``reply`` and closes."""
+    server = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    server.bind(str(path))
+    server.listen(1)
+
+    def serve() -> None:
+        with server:
+            connection, _ = server.accept()
+            with connection:
+                connection.makefile("rb").readline()
+                connection.sendall(reply)
+
+    thread = threading.Thread(target=serve, daemon=True)
+    thread.start()
+    return thread
+
+
+@pytest.mark.parametrize("reply, reason", [
+    (b"", "it closed the connection"),
+    (b'{"v": 1, "ok": true, "results": [[{"path": "x"', "its answer broke off"),
+    (b"<html>\n", "its answer is not JSON"),
+    (b'{"v": 1, "ok": true, "results": []}\n', "its answer does not match the request"),
+])
+def test_a_daemon_that_fails_is_an_error_not_a_quiet_fallback(
+        fake_index: Index, monkeypatch: pytest.MonkeyPatch, reply: bytes, reason: str) -> None:
+    monkeypatch.setenv("CODESEEK_BACKEND", "fake")
+    socket_path = fake_index.settings.index_dir / SOCKET_NAME
+    thread = fake_daemon(socket_path, reply)
+    code, out, err = cli("search", "refund a rider", "--repo", str(fake_index.settings.repo))
+    thread.join(timeout=30)
+    assert (code, out) == (1, "")
+    assert err == (f"error: the codeseek daemon on {socket_path} failed to answer ({reason}); "
+                   "see its log, or stop it to search without it\n")
+
+
+def test_a_socket_nobody_listens_on_is_searched_without(fake_index: Index,
+                                                        monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setenv("CODESEEK_BACKEND", "fake")
+    stale = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    stale.bind(str(fake_index.settings.index_dir / SOCKET_NAME))  # left by a crashed daemon
+    stale.close()
+    code, out, err = cli("search", "refund a rider", "--json",
+                         "--repo", str(fake_index.settings.repo))
+    assert code == 0 and err == ""
+    assert json.loads(out.splitlines()[0])["rank"] == 1
+
+
+# -- the log -------------------------------------------------------------------------------
+
+
+def test_the_log_names_the_updated_paths(fake_index: Index) -> None:
+    from codeseek.watch import Watcher
+
+    logged: list[str] = []
+    watcher = Watcher(fake_index, log=logged.append)  # applied by hand: one batch each
+    repo = fake_index.settings.repo
+    folder = repo / "python" / "harbour"
+    folder.mkdir()
+    for name in ("a", "b", "c", "d", "e"):
+        (folder / f"{name}.py").write_text(
+            f'def moor_{name}():\n    """Moor boat {name}."""\n', encoding="utf-8")
+    assert watcher.apply({f"python/harbour/{name}.py" for name in "abcde"})
+    assert logged[-1].startswith("codeseek: updated python/harbour/a.py, python/harbour/b.py, "
+                                 "python/harbour/c.py and 2 more: +5 ~0 -0 units (")
+    (folder / "a.py").unlink()
+    (folder / "b.py").write_text('def moor_b():\n    """Moor boat bee."""\n', encoding="utf-8")
+    assert watcher.apply({"python/harbour/a.py", "python/harbour/b.py"})
+    assert logged[-1].startswith(
+        "codeseek: updated python/harbour/a.py and python/harbour/b.py: +0 ~1 -1 units (")
+    (folder / "c.py").write_text('def moor_c():\n    """Moor boat sea."""\n', encoding="utf-8")
+    assert watcher.apply({""})  # the reconcile names what it found, not "the whole tree"
+    assert logged[-1].startswith("codeseek: updated python/harbour/c.py: +0 ~1 -0 units (")
+    odd = folder / "bell\x1b[2J.py"  # a name that would clear the screen, shown escaped
+    odd.write_text('def ring():\n    """Ring."""\n', encoding="utf-8")
+    assert watcher.apply({"python/harbour/bell\x1b[2J.py"})
+    assert logged[-1].startswith("codeseek: updated python/harbour/bell\\x1b[2J.py: +1 ~0 -0")
