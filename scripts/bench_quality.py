@@ -439,7 +439,7 @@ def candidates_table(bench: Bench, served: Served, fusion: Fusion) -> Table:
     """Served MRR when each side gives its best N candidates. The signals are taken
     max(DEPTHS) deep and cut (whole-index HNSW candidates come from one search that
     deep, a little more thorough than served search's own)."""
-    saved, evaluate.DEPTH = evaluate.DEPTH, max(DEPTHS)
+    saved, evaluate.signals.DEPTH = evaluate.signals.DEPTH, max(DEPTHS)
     try:
         deep = []
         for cases in (bench.train, bench.test):
@@ -447,7 +447,7 @@ def candidates_table(bench: Bench, served: Served, fusion: Fusion) -> Table:
             lexical = lexical_signals(cases, served.docs, sampler, protocols_for(cases, sampler))
             deep.append(full_signals(bench, cases, served.docs, lexical))
     finally:
-        evaluate.DEPTH = saved
+        evaluate.signals.DEPTH = saved
     table: Table = {
         f"best {n} of each side": tuple(  # type: ignore[misc]
             {p: Ranked(served_ranks(sig.cases, *sig.served_for(p), fusion, n))
