@@ -15,9 +15,9 @@ from codeseek.evaluate.split import Case
 from codeseek.search import CANDIDATES, DEFAULT_FUSION, Fusion, fuse
 
 DENSE_CHUNK = 256
-# How many candidates of each side the signals keep; served search fuses the best
-# CANDIDATES of them. Only scripts/bench_quality.py sets it deeper, to try other depths.
 DEPTH = CANDIDATES
+"""How many candidates of each side the signals keep unless asked; served search fuses the
+best CANDIDATES of them (scripts/bench_quality.py asks for more, to try other depths)."""
 
 
 Top = tuple[np.ndarray, np.ndarray]
@@ -70,7 +70,8 @@ class KeywordScorer(Protocol):
 
 def lexical_signals(cases: Sequence[Case], documents: KeywordScorer, sampler: PoolSampler,
                     protocols: dict[Pool, np.ndarray],
-                    progress: Progress | None = None) -> dict[Pool, Signals]:
+                    progress: Progress | None = None,
+                    depth: int = DEPTH) -> dict[Pool, Signals]:
     """BM25 ranks and candidates of each case under each protocol."""
     ranks: dict[Pool, list[int]] = {pool: [] for pool in protocols}
     tops: dict[Pool, list[Top]] = {pool: [] for pool in protocols}
@@ -83,7 +84,8 @@ def lexical_signals(cases: Sequence[Case], documents: KeywordScorer, sampler: Po
         scores[order] = found
         for pool in protocols:
             if index in wanted[pool]:
-                rank, top = _lexical_case(order, scores, case.position, pool, sampler)
+                rank, top = _lexical_case(order, scores, case.position, pool, sampler,
+                                          depth)
                 ranks[pool].append(rank)
                 tops[pool].append(top)
     if progress:
@@ -93,19 +95,20 @@ def lexical_signals(cases: Sequence[Case], documents: KeywordScorer, sampler: Po
 
 
 def _lexical_case(order: np.ndarray, scores: np.ndarray, true: int, pool: Pool,
-                  sampler: PoolSampler) -> tuple[int, Top]:
+                  sampler: PoolSampler, depth: int) -> tuple[int, Top]:
     if pool == WHOLE:
-        return rank_of_true(scores, true), _top_of(order, scores, DEPTH)
+        return rank_of_true(scores, true), _top_of(order, scores, depth)
     chosen = sampler.pool(true, int(pool))
     inside = np.zeros(len(scores), dtype=bool)
     inside[chosen] = True
     # the served path for a narrowed pool: BM25 matches in order, kept if inside the pool
-    return rank_of_true(scores[chosen], 0), _top_of(order[inside[order]], scores, DEPTH)
+    return rank_of_true(scores[chosen], 0), _top_of(order[inside[order]], scores, depth)
 
 
 def dense_signals(cases: Sequence[Case], queries: np.ndarray, documents: DocumentIndex,
                   sampler: PoolSampler, protocols: dict[Pool, np.ndarray],
-                  progress: Progress | None = None) -> dict[Pool, Signals]:
+                  progress: Progress | None = None,
+                  depth: int = DEPTH) -> dict[Pool, Signals]:
     """Exact cosine ranks and candidates of each case under each protocol."""
     ranks: dict[Pool, list[int]] = {pool: [] for pool in protocols}
     tops: dict[Pool, list[Top]] = {pool: [] for pool in protocols}
@@ -121,7 +124,7 @@ def dense_signals(cases: Sequence[Case], queries: np.ndarray, documents: Documen
             for pool in protocols:
                 if index not in wanted[pool]:
                     continue
-                rank, top = _dense_case(scores, true, pool, sampler)
+                rank, top = _dense_case(scores, true, pool, sampler, depth)
                 ranks[pool].append(rank)
                 tops[pool].append(top)
     if progress:
@@ -131,28 +134,28 @@ def dense_signals(cases: Sequence[Case], queries: np.ndarray, documents: Documen
 
 
 def _dense_case(scores: np.ndarray, true: int, pool: Pool,
-                sampler: PoolSampler) -> tuple[int, Top]:
+                sampler: PoolSampler, depth: int) -> tuple[int, Top]:
     if pool == WHOLE:
         return rank_of_true(scores, true), (np.zeros(0, dtype=np.int64), np.zeros(0))
     chosen = sampler.pool(true, int(pool))
     # the served path for a narrowed pool is exact search over the pool's vectors
     # (vectors.exact_search); the same selection here, on the scores already computed
     inside = scores[chosen]
-    k = min(DEPTH, len(chosen))
+    k = min(depth, len(chosen))
     top = np.argpartition(-inside, k - 1)[:k]
     top = top[np.argsort(-inside[top], kind="stable")]
     return rank_of_true(inside, 0), (chosen[top], inside[top].astype(np.float64))
 
 
 def ann_signals(cases: Sequence[Case], queries: np.ndarray, documents: DocumentIndex,
-                progress: Progress | None = None) -> Signals:
+                progress: Progress | None = None, depth: int = DEPTH) -> Signals:
     """HNSW candidates of each case over the whole index (rank 0 when not among them)."""
     index = documents.ann()
     ranks, tops = [], []
     for done, case in enumerate(cases):
         if progress and done % 200 == 0:
             progress("HNSW search", done, len(cases))
-        hits = index.search(queries[done], DEPTH)
+        hits = index.search(queries[done], depth)
         positions = documents.positions([label for label, _ in hits])
         ranks.append(rank_in(positions, case.position))
         tops.append((positions, np.array([score for _, score in hits])))
