@@ -56,6 +56,7 @@ from codeseek.evaluate.metrics import (
     MethodResult,
     bootstrap_ci,
     mean_reciprocal_rank,
+    mrr_difference,
     rank_in,
     rank_of_true,
     recall_at,
@@ -70,7 +71,7 @@ from codeseek.evaluate.queries import (
     query_of,
     strip_leading_name,
 )
-from codeseek.evaluate.report import EvalReport, build_report
+from codeseek.evaluate.report import EvalReport, Lead, build_report
 from codeseek.evaluate.signals import (
     DEPTH,
     FUSION_GRID,
@@ -88,14 +89,14 @@ from codeseek.evaluate.split import Case, Selection, Split, select_cases
 from codeseek.search import CANDIDATES
 
 __all__ = [
-    "CACHE_NAME", "CANDIDATES", "DEPTH", "FUSION_GRID", "MIN_QUERY_WORDS", "POOL_SIZES",
-    "WHOLE", "Case", "CaseSignals", "DocumentIndex", "EvalReport", "MethodResult", "Pool",
+    "CACHE_NAME", "CANDIDATES", "Case", "CaseSignals", "DEPTH", "DocumentIndex", "EvalReport",
+    "FUSION_GRID", "Lead", "MIN_QUERY_WORDS", "MethodResult", "POOL_SIZES", "Pool",
     "PoolSampler", "Prepared", "Progress", "Selection", "Signals", "Split", "VectorCache",
-    "ann_signals", "body_key", "bootstrap_ci", "build_documents", "build_report",
+    "WHOLE", "ann_signals", "body_key", "bootstrap_ci", "build_documents", "build_report",
     "check_report_path", "choose_fusion", "clean_summary", "collect_signals", "dense_signals",
     "doc_key", "encode_cached", "evaluate_prepared", "evaluate_units", "lexical_signals",
-    "mean_reciprocal_rank", "prepare", "protocols_for", "query_matrix", "query_of",
-    "rank_histogram", "rank_in", "rank_of_true", "recall_at", "render_html", "select_cases",
-    "served_ranks", "strip_leading_name", "summarise", "text_key", "without_doc",
-    "write_html",
+    "mean_reciprocal_rank", "mrr_difference", "prepare", "protocols_for", "query_matrix",
+    "query_of", "rank_histogram", "rank_in", "rank_of_true", "recall_at", "render_html",
+    "select_cases", "served_ranks", "strip_leading_name", "summarise", "text_key",
+    "without_doc", "write_html",
 ]

@@ -100,8 +100,9 @@ def render_html(report: EvalReport) -> str:
                         f"<figcaption>recall@k, k = 1..20</figcaption></figure>"
                         f"<div class=row>{histograms}</div>")
     notes = "".join(f"<li>{esc(n)}</li>" for n in report.notes)
-    best = "; ".join(f"{'whole index' if p == WHOLE else f'pool {p}'}: "
-                     f"<b>{esc(report.best(p).method)}</b>" for p in report.pools)
+    verdicts = "".join(f"<li>{esc(report.verdict(p))}</li>" for p in report.pools)
+    adapter = (f", with the query adapter tuned on the {report.training} training pairs"
+               if report.adapter else "")
     return f"""<!doctype html>
 <html lang="en"><head><meta charset="utf-8">
 <title>codeseek recall checks: {esc(report.repository)}</title>
@@ -113,7 +114,8 @@ td:first-child, th:first-child {{ text-align: left; }} tr:nth-child(even) {{ bac
 </style></head><body>
 <h1>Recall checks on held-out docstrings</h1>
 <p>{esc(report.repository)}: {report.holdout} held-out docstrings ({esc(report.split.describe())}),
-model {esc(report.model)}, {report.training} training pairs. Best: {best}.</p>
+model {esc(report.model)}{esc(adapter)}.</p>
+<ul>{verdicts}</ul>
 <table><tr><th>method</th><th>pool</th><th>n</th><th>recall@1</th><th>recall@5</th>
 <th>recall@10</th><th>MRR</th><th>MRR 95% interval</th></tr>{rows}</table>
 {''.join(sections)}

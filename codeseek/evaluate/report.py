@@ -6,13 +6,33 @@ from collections.abc import Sequence
 from dataclasses import dataclass
 
 from codeseek.evaluate.documents import POOL_SIZES, WHOLE, Pool
-from codeseek.evaluate.metrics import MethodResult, summarise
+from codeseek.evaluate.metrics import MethodResult, mrr_difference, summarise
 from codeseek.evaluate.queries import MIN_QUERY_WORDS
 from codeseek.evaluate.signals import CaseSignals
 from codeseek.evaluate.split import Case, Selection, Split
 from codeseek.search import CANDIDATES, DEFAULT_FUSION, Fusion
 
 METHODS = ("lexical", "dense", "dense-ann", "served")
+
+
+@dataclass(frozen=True)
+class Lead:
+    """How far the best method under a protocol is ahead of another one.
+
+    Attributes:
+        other: the method behind (or level).
+        difference: the best's MRR minus the other's, on the same queries.
+        ci95: a paired bootstrap 95% interval of that difference.
+    """
+
+    other: MethodResult
+    difference: float
+    ci95: tuple[float, float]
+
+    @property
+    def significant(self) -> bool:
+        """Whether the whole interval is above 0 (beyond rounding noise)."""
+        return self.ci95[0] > 1e-12
 
 
 @dataclass(frozen=True)
@@ -56,6 +76,39 @@ class EvalReport:
         """The method with the highest MRR under a protocol."""
         return max((r for r in self.results if r.pool == pool), key=lambda r: r.mrr)
 
+    def leads(self, pool: Pool) -> list[Lead]:
+        """The best method's lead over each other method under a protocol, nearest first."""
+        best = self.best(pool)
+        others = sorted((r for r in self.results if r.pool == pool and r is not best),
+                        key=lambda r: -r.mrr)
+        return [Lead(other, *mrr_difference(best.ranks, other.ranks, self.split.seed))
+                for other in others]
+
+    def tied(self, pool: Pool) -> list[str]:
+        """The methods not significantly behind the best under a protocol (none: it wins)."""
+        return [lead.other.method for lead in self.leads(pool) if not lead.significant]
+
+    def verdict(self, pool: Pool) -> str:
+        """Which method wins under a protocol, or that none does significantly, in words."""
+        best, leads = self.best(pool), self.leads(pool)
+        where = "the whole index" if pool == WHOLE else f"pool {pool}"
+        level = [lead for lead in leads if not lead.significant]
+        if not leads:
+            return f"only {best.method} on {where} ({best.pool_size} units)"
+        if not level:
+            lead = leads[0]
+            return (f"best on {where} ({best.pool_size} units): {best.method} (MRR "
+                    f"{best.mrr:.3f}), ahead of {lead.other.method} (MRR {lead.other.mrr:.3f}) "
+                    f"by {lead.difference:.3f} (95% interval of the difference "
+                    f"{_interval(lead.ci95)}) on {best.n} docstrings")
+        named = [f"{r.method} (MRR {r.mrr:.3f})" for r in [best] + [x.other for x in level]]
+        listed = ", ".join(named[:-1]) + f" and {named[-1]}"
+        why = (f"the 95% interval of the difference, {_interval(level[0].ci95)}, includes 0"
+               if len(level) == 1 else
+               f"the 95% interval of each one's difference from {best.method} includes 0")
+        return (f"no significant difference on {where} ({best.pool_size} units) between "
+                f"{listed} on {best.n} docstrings ({why})")
+
     def to_json(self) -> dict[str, object]:
         """One JSON document: repository, model, holdout, results, and how they were made."""
         return {
@@ -64,15 +117,17 @@ class EvalReport:
             "fusion": self.fusion.to_json(), "adapter": self.adapter,
             "results": [r.to_json() for r in self.results],
             "best": {str(pool): self.best(pool).method for pool in self.pools},
+            "tied": {str(pool): self.tied(pool) for pool in self.pools},
             "notes": list(self.notes),
         }
 
     def to_text(self) -> str:
         """The readable table the command line prints."""
+        adapter = (f", with the query adapter tuned on the {self.training} training pairs"
+                   if self.adapter else "")
         lines = [f"recall checks on {self.holdout} held-out docstrings of {self.repository}",
-                 f"({self.split.describe()}; model {self.model}; {self.training} training "
-                 f"pairs; served ranking: {_fusion_words(self.fusion)}"
-                 f"{', with the tuned query adapter' if self.adapter else ''})", "",
+                 f"({self.split.describe()}; model {self.model}; served ranking: "
+                 f"{_fusion_words(self.fusion)}{adapter})", "",
                  f"{'method':<10} {'pool':>7} {'n':>6}  {'R@1':>6} {'R@5':>6} {'R@10':>6}  "
                  f"{'MRR':>6}  95% interval"]
         for result in self.results:
@@ -83,13 +138,14 @@ class EvalReport:
                 f"{metrics['recall@1']:6.3f} {metrics['recall@5']:6.3f} "
                 f"{metrics['recall@10']:6.3f}  {result.mrr:6.3f}  {low:.3f}-{high:.3f}")
         lines.append("")
-        for pool in self.pools:
-            best = self.best(pool)
-            where = "the whole index" if pool == WHOLE else f"pool {pool}"
-            lines.append(f"best on {where} ({best.pool_size} units): {best.method} "
-                         f"(MRR {best.mrr:.3f})")
+        lines.extend(self.verdict(pool) for pool in self.pools)
         lines.extend(f"note: {note}" for note in self.notes)
         return "\n".join(lines)
+
+
+def _interval(bounds: tuple[float, float]) -> str:
+    low, high = (round(bound, 3) + 0.0 for bound in bounds)  # + 0.0: no "-0.000"
+    return f"{low:.3f} to {high:.3f}"
 
 
 def _fusion_words(fusion: Fusion) -> str:
