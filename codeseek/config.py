@@ -94,11 +94,17 @@ def load_settings(
             return env[env_name]
         return file_values.get(key)
 
-    chosen_index = pick(index_dir, "CODESEEK_INDEX_DIR", "index_dir")
-    index_path = (
-        _resolve_against(root, chosen_index) if chosen_index else root / INDEX_DIR_NAME
-    )
-    chosen_model = pick(model, "CODESEEK_MODEL", "model")
+    def pick_path(arg: Any, env_name: str, key: str) -> Path | None:
+        # an argument or variable is the user's, from where they stand; a value in
+        # codeseek.toml belongs to the repository and is relative to its root
+        chosen = pick(arg, env_name, key)
+        if not chosen:
+            return None
+        from_file = arg is None and not env.get(env_name)
+        return _resolve_against(root if from_file else Path.cwd(), chosen)
+
+    index_path = pick_path(index_dir, "CODESEEK_INDEX_DIR", "index_dir") or root / INDEX_DIR_NAME
+    model_path = pick_path(model, "CODESEEK_MODEL", "model")
     chosen_backend = str(pick(backend, "CODESEEK_BACKEND", "backend") or DEFAULT_BACKEND)
     if chosen_backend not in BACKENDS:
         raise ConfigError(
@@ -111,7 +117,7 @@ def load_settings(
     return Settings(
         repo=root,
         index_dir=index_path,
-        model=_resolve_against(root, chosen_model) if chosen_model else None,
+        model=model_path,
         backend=chosen_backend,
         max_file_bytes=_positive_int(max_bytes, "max_file_bytes", DEFAULT_MAX_FILE_BYTES),
         exclude=tuple(exclude),
@@ -123,9 +129,10 @@ def load_settings(
     )
 
 
-def _resolve_against(root: Path, value: str | os.PathLike[str]) -> Path:
+def _resolve_against(base: Path, value: str | os.PathLike[str]) -> Path:
+    """``value`` as an absolute path: itself if absolute, else relative to ``base``."""
     path = Path(value).expanduser()
-    return path if path.is_absolute() else (Path.cwd() / path).resolve()
+    return path if path.is_absolute() else (base / path).resolve()
 
 
 def _positive_int(value: Any, name: str, default: int) -> int:
