@@ -150,6 +150,9 @@ def test_report_names_a_best_method_only_when_its_lead_is_significant() -> None:
         "by 0.500 (95% interval of the difference 0.500 to 0.500) on 20 docstrings")
     assert report.to_json()["best"] == {"all": "served"}
     assert report.to_json()["tied"] == {"all": []}
+    alone = made_report({"served": [1, 2] * 10})
+    assert alone.to_text().splitlines()[-1] == (
+        "only one method on the whole index (50 units): served (MRR 0.750) on 20 docstrings")
 
 
 def test_report_says_no_significant_difference_inside_the_interval() -> None:

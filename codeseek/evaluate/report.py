@@ -94,7 +94,8 @@ class EvalReport:
         where = "the whole index" if pool == WHOLE else f"pool {pool}"
         level = [lead for lead in leads if not lead.significant]
         if not leads:
-            return f"only {best.method} on {where} ({best.pool_size} units)"
+            return (f"only one method on {where} ({best.pool_size} units): {best.method} "
+                    f"(MRR {best.mrr:.3f}) on {best.n} docstrings")
         if not level:
             lead = leads[0]
             return (f"best on {where} ({best.pool_size} units): {best.method} (MRR "
