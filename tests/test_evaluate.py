@@ -521,3 +521,65 @@ def test_fusion_ties_go_to_the_higher_cosine_then_the_lower_id() -> None:
     assert [i for i, _ in fused] == [4, 7]
     fused = fuse([(9, 0.2)], [(3, 2.0)], Fusion("rrf", 0.5, 5))
     assert [i for i, _ in fused] == [9, 3]
+
+
+# -- one served ranking ------------------------------------------------------------------
+
+
+def big_corpus(n: int) -> list[CodeUnit]:
+    """n units, every one mentioning rides (so a query's keyword matches outnumber the
+    candidates search fetches), a third of them Go."""
+    words = ["parse", "packet", "charge", "card", "refund", "rider", "station", "battery",
+             "route", "van", "fare", "peak", "ticket", "mechanic", "upload", "retry",
+             "dock", "zone", "pass", "meter", "brake", "tyre", "lock", "shift"]
+    rng = np.random.default_rng(7)
+    units = []
+    for i in range(n):
+        a, b, c, d = rng.choice(words, 4, replace=False)
+        doc = f"{a} the {b} of a ride for the {c}" if i % 40 == 0 else ""
+        units.append(unit(f"{a}_{b}_{i}", doc, f"ride_{d} = {b}_{c}({i})", f"src/m{i % 9}.py",
+                          "go" if i % 3 == 0 else "python"))
+    return units
+
+
+def test_eval_served_rank_is_the_rank_search_serves_on_every_pool() -> None:
+    from codeseek.evaluate import collect_signals, rank_in, served_ranks
+    from codeseek.search import DEFAULT_FUSION
+
+    units = big_corpus(4500)
+    embedder = FakeEmbedder()
+    documents = build_documents(units, embedder)
+    sampler = PoolSampler(documents, seed=0)
+    cases = select_cases(units, Split(0.5)).held_out
+    queries = embedder.encode([c.query for c in cases])
+    signals = collect_signals(cases, queries, documents, sampler, sizes=(50, 1000))
+    assert set(signals.lexical) == {50, 1000, WHOLE}
+    assert len(documents.lexical(cases[0].query)) > 20 * CANDIDATES  # more than search fetches
+    # the served path itself: a Searcher over the same doc-less store and HNSW index
+    searcher = Searcher(documents.store, documents.ann(), embedder, embedder.model_id)
+    k = CANDIDATES // 3  # search fuses its best CANDIDATES of each side, as eval does
+    compared = 0
+    for pool, members in signals.lexical.items():
+        ranks = served_ranks(cases, *signals.served_for(pool), DEFAULT_FUSION)
+        for slot, index in enumerate(members.cases.tolist()):
+            case = cases[index]
+            allowed = (None if pool == WHOLE else
+                       set(documents.row_ids[sampler.pool(case.position, int(pool))].tolist()))
+            ranked, _ = searcher.ranked(case.query, queries[index], k, allowed)
+            served = rank_in(documents.positions([row for row, _ in ranked]), case.position)
+            assert served == (ranks[slot] if ranks[slot] <= k else 0), (pool, case.query)
+            compared += 1
+    assert compared == sum(len(m.cases) for m in signals.lexical.values()) > 100
+
+
+def test_a_narrow_pool_keeps_its_keyword_matches_however_far_down_they_rank() -> None:
+    units = big_corpus(4500)
+    documents = build_documents(units, FakeEmbedder())
+    query = "ride"
+    order = documents.lexical(query)
+    assert len(order) > 20 * CANDIDATES
+    last = documents.row_ids[order[-4:]].tolist()  # the weakest matches of the whole index
+    searcher = Searcher(documents.store, documents.ann(), FakeEmbedder(), "fake")
+    hits = searcher.lexical(query, CANDIDATES, set(last))
+    # reference: the store's own full BM25 order, narrowed to the pool by hand
+    assert [row for row, _ in hits] == last

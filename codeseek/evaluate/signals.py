@@ -13,6 +13,7 @@ from codeseek.evaluate.documents import POOL_SIZES, WHOLE, DocumentIndex, Pool, 
 from codeseek.evaluate.metrics import mean_reciprocal_rank, rank_in, rank_of_true
 from codeseek.evaluate.split import Case
 from codeseek.search import CANDIDATES, DEFAULT_FUSION, Fusion, fuse
+from codeseek.vectors import exact_search
 
 DENSE_CHUNK = 256
 DEPTH = CANDIDATES
@@ -124,7 +125,8 @@ def dense_signals(cases: Sequence[Case], queries: np.ndarray, documents: Documen
             for pool in protocols:
                 if index not in wanted[pool]:
                     continue
-                rank, top = _dense_case(scores, true, pool, sampler, depth)
+                rank, top = _dense_case(scores, queries[index], documents, true, pool,
+                                        sampler, depth)
                 ranks[pool].append(rank)
                 tops[pool].append(top)
     if progress:
@@ -133,18 +135,18 @@ def dense_signals(cases: Sequence[Case], queries: np.ndarray, documents: Documen
             for pool in protocols}
 
 
-def _dense_case(scores: np.ndarray, true: int, pool: Pool,
-                sampler: PoolSampler, depth: int) -> tuple[int, Top]:
+def _dense_case(scores: np.ndarray, query: np.ndarray, documents: DocumentIndex, true: int,
+                pool: Pool, sampler: PoolSampler, depth: int) -> tuple[int, Top]:
     if pool == WHOLE:
         return rank_of_true(scores, true), (np.zeros(0, dtype=np.int64), np.zeros(0))
     chosen = sampler.pool(true, int(pool))
-    # the served path for a narrowed pool is exact search over the pool's vectors
-    # (vectors.exact_search); the same selection here, on the scores already computed
-    inside = scores[chosen]
-    k = min(depth, len(chosen))
-    top = np.argpartition(-inside, k - 1)[:k]
-    top = top[np.argsort(-inside[top], kind="stable")]
-    return rank_of_true(inside, 0), (chosen[top], inside[top].astype(np.float64))
+    # the served path for a narrowed pool: exact search over the pool's vectors in unit id
+    # order (Searcher.dense; positions follow row ids), the same function on the same rows
+    members = np.sort(chosen)
+    hits = exact_search(query, members, documents.vectors[members], depth)
+    top = (np.array([p for p, _ in hits], dtype=np.int64),
+           np.array([score for _, score in hits], dtype=np.float64))
+    return rank_of_true(scores[chosen], 0), top
 
 
 def ann_signals(cases: Sequence[Case], queries: np.ndarray, documents: DocumentIndex,
