@@ -98,13 +98,18 @@ def load_settings(
         """Where a setting came from, for its error message."""
         return env_name if env.get(env_name) else f"{root / CONFIG_FILE_NAME}: {key}"
 
-    chosen_index = pick(index_dir, "CODESEEK_INDEX_DIR", "index_dir")
-    _check_path(chosen_index, where("CODESEEK_INDEX_DIR", "index_dir"))
-    index_path = (
-        _resolve_against(root, chosen_index) if chosen_index else root / INDEX_DIR_NAME
-    )
-    chosen_model = pick(model, "CODESEEK_MODEL", "model")
-    _check_path(chosen_model, where("CODESEEK_MODEL", "model"))
+    def pick_path(arg: Any, env_name: str, key: str) -> Path | None:
+        # an argument or variable is the user's, from where they stand; a value in
+        # codeseek.toml belongs to the repository and is relative to its root
+        chosen = pick(arg, env_name, key)
+        _check_path(chosen, where(env_name, key))
+        if not chosen:
+            return None
+        from_file = arg is None and not env.get(env_name)
+        return _resolve_against(root if from_file else Path.cwd(), chosen)
+
+    index_path = pick_path(index_dir, "CODESEEK_INDEX_DIR", "index_dir") or root / INDEX_DIR_NAME
+    model_path = pick_path(model, "CODESEEK_MODEL", "model")
     chosen_backend = str(pick(backend, "CODESEEK_BACKEND", "backend") or DEFAULT_BACKEND)
     if chosen_backend not in BACKENDS:
         raise ConfigError(
@@ -117,7 +122,7 @@ def load_settings(
     return Settings(
         repo=root,
         index_dir=index_path,
-        model=_resolve_against(root, chosen_model) if chosen_model else None,
+        model=model_path,
         backend=chosen_backend,
         max_file_bytes=_positive_int(max_bytes, where("CODESEEK_MAX_FILE_BYTES",
                                                       "max_file_bytes"),
@@ -132,9 +137,10 @@ def load_settings(
     )
 
 
-def _resolve_against(root: Path, value: str | os.PathLike[str]) -> Path:
+def _resolve_against(base: Path, value: str | os.PathLike[str]) -> Path:
+    """``value`` as an absolute path: itself if absolute, else relative to ``base``."""
     path = Path(value).expanduser()
-    return path if path.is_absolute() else (Path.cwd() / path).resolve()
+    return path if path.is_absolute() else (base / path).resolve()
 
 
 MAX_SETTING_INT = 2**40  # 1 TiB: far above any real limit, far below what read() takes

@@ -3,7 +3,7 @@
 * :class:`OnnxEmbedder` (the default): the model exported once to ONNX with
   ``torch.onnx.export``, cached in the user's cache folder under the model's
   fingerprint, then run with onnxruntime and the model's own tokenizer
-  (``tokenizers``), pooled and normalised as the model's config says. The
+  (``tokenizers``), pooled as the model's config says and normalised. The
   query path never imports torch once the export exists.
 * :class:`TorchEmbedder`: sentence-transformers on torch, the reference.
 * :class:`FakeEmbedder`: a deterministic hashed bag of words for tests.
@@ -185,7 +185,6 @@ class ModelConfig:
     def __init__(self, folder: Path) -> None:
         self.folder = folder
         modules = _read_json_list(folder / "modules.json")
-        self.normalize = any(m.get("type", "").endswith("Normalize") for m in modules)
         pooling_dir = next((m.get("path", "") for m in modules
                             if m.get("type", "").endswith("Pooling")), "1_Pooling")
         pooling = _read_json(folder / pooling_dir / "config.json")
@@ -365,7 +364,7 @@ class OnnxEmbedder:
             out[batch] = self._pool(hidden, mask)
             if progress:
                 progress(len(batch))
-        return _normalise(out) if self.config.normalize else out
+        return _normalise(out)  # unit length as Embedder promises, Normalize step or not
 
     def _pool(self, hidden: np.ndarray, mask: np.ndarray) -> np.ndarray:
         if self.config.pooling == "cls":

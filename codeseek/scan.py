@@ -55,6 +55,7 @@ REASON_VANISHED = "vanished during scan"
 REASON_UNREADABLE = "unreadable"
 REASON_OTHER = "no supported language"
 REASON_PARSE_BUDGET = "parsing took longer than the per-file time budget"
+REASON_INDEX = "the index folder"  # never entered, never listed
 
 
 @dataclass(frozen=True)
@@ -320,6 +321,52 @@ def folder_reason(name: str, settings: Settings) -> str | None:
     return None
 
 
+def folder_skip(settings: Settings, rules: IgnoreRules, rel: str,
+                index_dir: str | None = None) -> str | None:
+    """Why a walk whose way down reached the folder ``rel`` does not enter it, or None.
+
+    The one folder-skipping rule (the walk, a walk from a start folder and the
+    watcher all ask it): a version-control, vendored or cache folder by name
+    (:func:`folder_reason`), the index folder itself (:data:`REASON_INDEX`, never
+    listed among skipped files), or a folder the ignore rules exclude. A
+    symbolic link is not a folder to the walk; callers check that first.
+    ``index_dir`` is the real path of the index folder (looked up when None).
+    """
+    reason = folder_reason(rel.rsplit("/", 1)[-1], settings)
+    if reason is not None:
+        return reason
+    if index_dir is None:
+        index_dir = os.path.realpath(settings.index_dir)
+    if os.path.realpath(settings.repo / rel) == index_dir:
+        return REASON_INDEX
+    if rules.is_ignored(rel, is_dir=True):
+        return REASON_IGNORED
+    return None
+
+
+def entered(settings: Settings, rules: IgnoreRules, folder: str,
+            result: ScanResult | None = None, index_dir: str | None = None) -> bool:
+    """Whether a walk of the whole repository enters ``folder`` (relative, ``/``-separated;
+    ``""`` is the root) and every folder above it; a refusal is counted in ``result``."""
+    if not folder:
+        return True
+    if index_dir is None:
+        index_dir = os.path.realpath(settings.index_dir)
+    parts = folder.split("/")
+    for depth in range(1, len(parts) + 1):
+        rel = "/".join(parts[:depth])
+        if (settings.repo / rel).is_symlink():
+            reason: str | None = REASON_SYMLINK
+            shown = rel
+        else:
+            reason, shown = folder_skip(settings, rules, rel, index_dir), rel + "/"
+        if reason is not None:
+            if result is not None and reason != REASON_INDEX:
+                result.skip(shown, reason)
+            return False
+    return True
+
+
 def name_reason(name: str) -> str | None:
     """Why a file is left out by its name alone, or None."""
     if any(fnmatch(name, pattern) for pattern in SECRET_PATTERNS):
@@ -343,35 +390,13 @@ def scan_repository(
     result = ScanResult()
     index_dir = os.path.realpath(settings.index_dir)
     start = start.strip("/")
-    if start and not _can_enter(settings, rules, start, result, index_dir):
+    if start and not entered(settings, rules, start, result, index_dir):
         return result
     for rel_path, entry in _walk(settings.repo, start, rules, settings, result, index_dir):
         source = check_file(settings, rel_path, entry.path, result)
         if source is not None:
             result.files.append(source)
     return result
-
-
-def _can_enter(
-    settings: Settings, rules: IgnoreRules, folder: str, result: ScanResult, index_dir: str
-) -> bool:
-    """Whether a whole walk enters ``folder`` and every folder above it (refusals counted)."""
-    parts = folder.split("/")
-    for depth in range(1, len(parts) + 1):
-        rel = "/".join(parts[:depth])
-        path = settings.repo / rel
-        if path.is_symlink():
-            result.skip(rel, REASON_SYMLINK)
-            return False
-        reason = folder_reason(parts[depth - 1], settings)
-        if reason is None and os.path.realpath(path) == index_dir:
-            return False
-        if reason is None and rules.is_ignored(rel, is_dir=True):
-            reason = REASON_IGNORED
-        if reason is not None:
-            result.skip(rel + "/", reason)
-            return False
-    return True
 
 
 def check_file(
@@ -437,15 +462,11 @@ def _walk(
                 result.skip(rel, REASON_VANISHED)
                 continue
             if is_dir:
-                reason = folder_reason(entry.name, settings)
-                if reason is None and os.path.realpath(entry.path) == index_dir:
-                    continue  # the index folder itself is never listed
-                if reason is not None:
-                    result.skip(rel + "/", reason)
-                elif rules.is_ignored(rel, is_dir=True):
-                    result.skip(rel + "/", REASON_IGNORED)
-                else:
+                reason = folder_skip(settings, rules, rel, index_dir)
+                if reason is None:
                     subfolders.append(rel)
+                elif reason != REASON_INDEX:
+                    result.skip(rel + "/", reason)
                 continue
             if rules.is_ignored(rel, is_dir=False):
                 result.skip(rel, REASON_IGNORED)

@@ -2,13 +2,17 @@
 
 Dense candidates come from the HNSW index (or, when filters narrow the pool,
 from an exact search over the filtered units' vectors); lexical candidates
-from SQLite FTS5 BM25 over identifier-split text. :func:`fuse` combines the two
+from SQLite FTS5 BM25 over identifier-split text (when filters narrow the
+pool, its own best matches among all of them). :func:`fuse` combines the two
 candidate lists (by default a weighted sum of each side's standardised
 scores; weighted reciprocal rank fusion and scaled scores are the
-alternatives); it is the one ranking rule of
-served search, and the recall checks (:mod:`codeseek.evaluate`) call the same
-function. A query-side adapter (:mod:`codeseek.adapter`), when the index holds
-one, maps the query vector before the dense search.
+alternatives); it is the one ranking rule of served search. The recall checks
+(:mod:`codeseek.evaluate`) take their candidates by the same rules (the same
+HNSW search, the same exact search over a pool's vectors, a pool's own keyword
+matches) and call the same :func:`fuse`; ``tests/test_evaluate.py`` holds their
+served rank of every answer to :meth:`Searcher.ranked` on every pool. A
+query-side adapter (:mod:`codeseek.adapter`), when the index holds one, maps
+the query vector before the dense search.
 """
 
 from __future__ import annotations
@@ -262,12 +266,13 @@ class Searcher:
         return [h for h in hits if h[0] in pool][:n]
 
     def lexical(self, query: str, n: int, pool: set[int] | None) -> list[tuple[int, float]]:
-        """(unit id, BM25) of the n best lexical matches, within the pool if given."""
-        limit = n if pool is None else n * 20
-        hits = self.store.lexical_search(lexical_match(query), limit)
-        if pool is not None:
-            hits = [h for h in hits if h[0] in pool]
-        return hits[:n]
+        """(unit id, BM25) of the n best lexical matches, within the pool if given (every
+        match is looked at, so a narrow pool keeps its own best n however far down the
+        whole index's order they are; the recall checks rank pools the same way)."""
+        if pool is None:
+            return self.store.lexical_search(lexical_match(query), n)
+        hits = self.store.lexical_search(lexical_match(query), -1)  # -1: SQLite's no limit
+        return [h for h in hits if h[0] in pool][:n]
 
     def ranked(self, query: str, vector: np.ndarray, k: int,
                pool: set[int] | None = None) -> tuple[list[tuple[int, float]], dict[int, float]]:

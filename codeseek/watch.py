@@ -35,7 +35,7 @@ from codeseek.scan import (
     ScanResult,
     SourceFile,
     check_file,
-    folder_reason,
+    entered,
     scan_repository,
 )
 
@@ -155,16 +155,9 @@ def resolve_paths(index: Index, rules: IgnoreRules, rel_paths: set[str]
 
 
 def _excluded_folder(index: Index, rules: IgnoreRules, rel: str) -> bool:
-    """Whether a folder above ``rel`` is never entered (ignored, vendored, the index...)."""
-    parts = rel.split("/")[:-1]
-    for depth in range(1, len(parts) + 1):
-        prefix = "/".join(parts[:depth])
-        if folder_reason(parts[depth - 1], index.settings) is not None:
-            return True
-        if rules.is_ignored(prefix, is_dir=True):
-            return True
-    index_dir = index.settings.index_dir
-    return (index.settings.repo / rel).resolve(strict=False).is_relative_to(index_dir)
+    """Whether a folder above ``rel`` is never entered (the walk's own rule: ignored,
+    vendored, version control, the index folder, a symbolic link...)."""
+    return not entered(index.settings, rules, rel.rsplit("/", 1)[0] if "/" in rel else "")
 
 
 @dataclass
@@ -272,7 +265,7 @@ class Watcher:
             self.rules.forget(folder)
             self.queue.add(folder)
             return
-        if rel and (is_temp_name(name) or _in_private_folder(rel, self.index)):
+        if rel and (is_temp_name(name) or _excluded_folder(self.index, self.rules, rel)):
             return
         self.queue.add(rel)
         self.state.pending = len(self.queue)
@@ -361,14 +354,6 @@ def describe_paths(paths: list[str], shown: int = 3) -> str:
 def _file_hashes(index: Index) -> dict[str, str]:
     """Each indexed file's content hash (what tells which files an update changed)."""
     return {path: row.sha256 for path, row in index.store.file_rows().items()}
-
-
-def _in_private_folder(rel: str, index: Index) -> bool:
-    first = rel.split("/", 1)[0]
-    if first in (".git", ".hg", ".svn"):
-        return True
-    target = (index.settings.repo / rel).resolve(strict=False)
-    return target.is_relative_to(index.settings.index_dir.resolve(strict=False))
 
 
 def _quiet_stop(observer: object) -> None:

@@ -10,7 +10,7 @@ codeseek makes, its figure on the training split (where the choice is made)
 and on the held-out split (what it is worth). A choice is the best mean training
 MRR over the corpora; the shipped one stands unless beaten by more than TIE:
 
-1. the unit text the model embeds (the documents have no doc: see evaluate.py);
+1. the unit text the model embeds (the documents have no doc: see codeseek/evaluate/);
 2. the keyword side (fields, identifier splitting, stemming, stopwords);
 3. the fusion of the two (reciprocal rank fusion against scaled scores, weights),
    and how many candidates of each side it fuses;
@@ -47,12 +47,12 @@ sys.path.insert(0, str(PROJECT / "tests"))
 
 from corpora import CORPORA, CorpusUnavailable, fetch, units_of  # noqa: E402
 
-from codeseek import evaluate  # noqa: E402
 from codeseek.adapter import QueryAdapter  # noqa: E402
 from codeseek.config import load_settings  # noqa: E402
 from codeseek.embed import Embedder, load_embedder  # noqa: E402
 from codeseek.errors import TooFewExamples  # noqa: E402
 from codeseek.evaluate import (  # noqa: E402
+    DEPTH,
     Case,
     CaseSignals,
     DocumentIndex,
@@ -388,11 +388,13 @@ def keyword_table(bench: Bench, docs: DocumentIndex) -> Table:
 
 
 def full_signals(bench: Bench, cases: Sequence[Case], docs: DocumentIndex, lexical: dict,
-                 adapter: QueryAdapter | None = None) -> CaseSignals:
+                 adapter: QueryAdapter | None = None, depth: int = DEPTH) -> CaseSignals:
     sampler = bench.sampler(docs)
     queries = bench.qmatrix(cases, adapter)
-    dense = dense_signals(cases, queries, docs, sampler, protocols_for(cases, sampler))
-    return CaseSignals(tuple(cases), lexical, dense, ann_signals(cases, queries, docs))
+    dense = dense_signals(cases, queries, docs, sampler, protocols_for(cases, sampler),
+                          depth=depth)
+    return CaseSignals(tuple(cases), lexical, dense,
+                       ann_signals(cases, queries, docs, depth=depth))
 
 
 @dataclass
@@ -439,15 +441,12 @@ def candidates_table(bench: Bench, served: Served, fusion: Fusion) -> Table:
     """Served MRR when each side gives its best N candidates. The signals are taken
     max(DEPTHS) deep and cut (whole-index HNSW candidates come from one search that
     deep, a little more thorough than served search's own)."""
-    saved, evaluate.DEPTH = evaluate.DEPTH, max(DEPTHS)
-    try:
-        deep = []
-        for cases in (bench.train, bench.test):
-            sampler = bench.sampler(served.docs)
-            lexical = lexical_signals(cases, served.docs, sampler, protocols_for(cases, sampler))
-            deep.append(full_signals(bench, cases, served.docs, lexical))
-    finally:
-        evaluate.DEPTH = saved
+    deep = []
+    for cases in (bench.train, bench.test):
+        sampler = bench.sampler(served.docs)
+        lexical = lexical_signals(cases, served.docs, sampler, protocols_for(cases, sampler),
+                                  depth=max(DEPTHS))
+        deep.append(full_signals(bench, cases, served.docs, lexical, depth=max(DEPTHS)))
     table: Table = {
         f"best {n} of each side": tuple(  # type: ignore[misc]
             {p: Ranked(served_ranks(sig.cases, *sig.served_for(p), fusion, n))

@@ -19,6 +19,7 @@ from codeseek.evaluate import (
     CANDIDATES,
     WHOLE,
     DocumentIndex,
+    EvalReport,
     PoolSampler,
     Split,
     bootstrap_ci,
@@ -26,6 +27,7 @@ from codeseek.evaluate import (
     clean_summary,
     evaluate_units,
     mean_reciprocal_rank,
+    mrr_difference,
     query_of,
     rank_histogram,
     rank_of_true,
@@ -33,6 +35,7 @@ from codeseek.evaluate import (
     render_html,
     select_cases,
     strip_leading_name,
+    summarise,
 )
 from codeseek.search import Searcher, fuse
 from codeseek.units import CodeUnit
@@ -105,6 +108,86 @@ def test_bootstrap_interval_matches_scipy() -> None:
     assert high == pytest.approx(ref.high, abs=0.01)
     assert low < values.mean() < high
     assert bootstrap_ci(values, seed=1, samples=4000) == (low, high)
+
+
+def test_mrr_difference_is_a_paired_bootstrap_matching_scipy() -> None:
+    from scipy.stats import bootstrap
+
+    rng = np.random.default_rng(5)
+    first = rng.integers(0, 6, size=300)
+    second = np.where(rng.random(300) < 0.5, first, rng.integers(0, 6, size=300))
+    mean, (low, high) = mrr_difference(first, second, seed=1, samples=4000)
+    assert mean == pytest.approx(mean_reciprocal_rank(first) - mean_reciprocal_rank(second))
+    # reference: scipy.stats.bootstrap with paired=True (cases resampled together), the
+    # percentile method; another random stream, so the bounds agree to Monte Carlo error
+    ref = bootstrap((reciprocal(first), reciprocal(second)),
+                    lambda a, b, axis=-1: np.mean(a - b, axis=axis), paired=True,
+                    method="percentile", n_resamples=4000, random_state=2).confidence_interval
+    assert low == pytest.approx(ref.low, abs=0.01)
+    assert high == pytest.approx(ref.high, abs=0.01)
+
+
+def reciprocal(ranks: np.ndarray) -> np.ndarray:
+    """1 / rank, 0 for a miss (written out here, not taken from codeseek)."""
+    return np.array([1.0 / r if r else 0.0 for r in ranks])
+
+
+# -- the report's words ----------------------------------------------------------------
+
+
+def made_report(ranks: dict[str, list[int]], *, adapter: bool = False) -> EvalReport:
+    """A report of given ranks on the whole index of 50 units, 125 training pairs."""
+    results = tuple(summarise(method, WHOLE, 50, np.array(r), 0) for method, r in ranks.items())
+    return EvalReport(repository="toy", model="fake", split=Split(), holdout=20,
+                      training=125, corpus=50, results=results, adapter=adapter)
+
+
+def test_report_names_a_best_method_only_when_its_lead_is_significant() -> None:
+    report = made_report({"lexical": [2] * 20, "dense": [0] * 20, "served": [1] * 20})
+    lines = report.to_text().splitlines()
+    assert lines[-1] == (
+        "best on the whole index (50 units): served (MRR 1.000), ahead of lexical (MRR 0.500) "
+        "by 0.500 (95% interval of the difference 0.500 to 0.500) on 20 docstrings")
+    assert report.to_json()["best"] == {"all": "served"}
+    assert report.to_json()["tied"] == {"all": []}
+    alone = made_report({"served": [1, 2] * 10})
+    assert alone.to_text().splitlines()[-1] == (
+        "only one method on the whole index (50 units): served (MRR 0.750) on 20 docstrings")
+
+
+def test_report_says_no_significant_difference_inside_the_interval() -> None:
+    served = [1, 2, 1, 1, 1, 1, 0, 2, 2, 1, 1, 1, 3, 1, 2, 1, 0, 1, 2, 1]
+    dense = [1, 1, 2, 1, 3, 1, 0, 1, 2, 1, 1, 4, 1, 1, 2, 1, 0, 1, 1, 2]
+    report = made_report({"lexical": [0] * 20, "dense": dense, "served": served})
+    _, (low, high) = mrr_difference(served, dense, seed=0)
+    assert low < 0 < high  # the lead is inside the interval
+    assert report.to_text().splitlines()[-1] == (
+        "no significant difference on the whole index (50 units) between served (MRR "
+        f"{mean_reciprocal_rank(np.array(served)):.3f}) and dense (MRR "
+        f"{mean_reciprocal_rank(np.array(dense)):.3f}) on 20 docstrings (the 95% interval of "
+        f"the difference, {low:.3f} to {high:.3f}, includes 0)")
+    assert report.to_json()["best"] == {"all": "served"}
+    assert report.to_json()["tied"] == {"all": ["dense"]}
+    level = made_report({"lexical": [1] * 20, "dense": [1] * 20, "served": [1] * 20})
+    assert level.to_text().splitlines()[-1] == (
+        "no significant difference on the whole index (50 units) between lexical (MRR 1.000), "
+        "dense (MRR 1.000) and served (MRR 1.000) on 20 docstrings (the 95% interval of each "
+        "one's difference from lexical includes 0)")
+
+
+def test_report_header_names_training_pairs_only_with_an_adapter() -> None:
+    ranks = {"dense": [1] * 20, "served": [1] * 20}
+    plain, tuned = made_report(ranks).to_text(), made_report(ranks, adapter=True).to_text()
+    assert plain.splitlines()[:2] == [
+        "recall checks on 20 held-out docstrings of toy",
+        "(20% held out by unit, seed 0; model fake; served ranking: fusion of standardised "
+        "scores (dense weight 0.6))"]
+    assert tuned.splitlines()[1] == (
+        "(20% held out by unit, seed 0; model fake; served ranking: fusion of standardised "
+        "scores (dense weight 0.6), with the query adapter tuned on the 125 training pairs)")
+    page = render_html(made_report(ranks))
+    assert "training pairs" not in page
+    assert "no significant difference on the whole index" in page
 
 
 # -- queries ---------------------------------------------------------------------------
@@ -348,7 +431,9 @@ def test_cli_eval_table_json_and_html(indexed: Path, tmp_path: Path) -> None:
     assert code == 0, err
     assert out.startswith("recall checks on ")
     assert re.search(r"^served +\d+ +\d+ ", out, flags=re.MULTILINE)
-    assert "best on the whole index" in out
+    assert re.search(r"^(best|no significant difference) on the whole index \(", out,
+                     flags=re.MULTILINE)
+    assert "training pairs" not in out  # no adapter: nothing was trained
     code, out, _ = run_cli("eval", str(indexed), "--backend", "fake", "--json", "--seed", "3",
                            "--holdout", "0.5", "--by-file")
     data = json.loads(out)
@@ -437,3 +522,65 @@ def test_fusion_ties_go_to_the_higher_cosine_then_the_lower_id() -> None:
     assert [i for i, _ in fused] == [4, 7]
     fused = fuse([(9, 0.2)], [(3, 2.0)], Fusion("rrf", 0.5, 5))
     assert [i for i, _ in fused] == [9, 3]
+
+
+# -- one served ranking ------------------------------------------------------------------
+
+
+def big_corpus(n: int) -> list[CodeUnit]:
+    """n units, every one mentioning rides (so a query's keyword matches outnumber the
+    candidates search fetches), a third of them Go."""
+    words = ["parse", "packet", "charge", "card", "refund", "rider", "station", "battery",
+             "route", "van", "fare", "peak", "ticket", "mechanic", "upload", "retry",
+             "dock", "zone", "pass", "meter", "brake", "tyre", "lock", "shift"]
+    rng = np.random.default_rng(7)
+    units = []
+    for i in range(n):
+        a, b, c, d = rng.choice(words, 4, replace=False)
+        doc = f"{a} the {b} of a ride for the {c}" if i % 40 == 0 else ""
+        units.append(unit(f"{a}_{b}_{i}", doc, f"ride_{d} = {b}_{c}({i})", f"src/m{i % 9}.py",
+                          "go" if i % 3 == 0 else "python"))
+    return units
+
+
+def test_eval_served_rank_is_the_rank_search_serves_on_every_pool() -> None:
+    from codeseek.evaluate import collect_signals, rank_in, served_ranks
+    from codeseek.search import DEFAULT_FUSION
+
+    units = big_corpus(4500)
+    embedder = FakeEmbedder()
+    documents = build_documents(units, embedder)
+    sampler = PoolSampler(documents, seed=0)
+    cases = select_cases(units, Split(0.5)).held_out
+    queries = embedder.encode([c.query for c in cases])
+    signals = collect_signals(cases, queries, documents, sampler, sizes=(50, 1000))
+    assert set(signals.lexical) == {50, 1000, WHOLE}
+    assert len(documents.lexical(cases[0].query)) > 20 * CANDIDATES  # more than search fetches
+    # the served path itself: a Searcher over the same doc-less store and HNSW index
+    searcher = Searcher(documents.store, documents.ann(), embedder, embedder.model_id)
+    k = CANDIDATES // 3  # search fuses its best CANDIDATES of each side, as eval does
+    compared = 0
+    for pool, members in signals.lexical.items():
+        ranks = served_ranks(cases, *signals.served_for(pool), DEFAULT_FUSION)
+        for slot, index in enumerate(members.cases.tolist()):
+            case = cases[index]
+            allowed = (None if pool == WHOLE else
+                       set(documents.row_ids[sampler.pool(case.position, int(pool))].tolist()))
+            ranked, _ = searcher.ranked(case.query, queries[index], k, allowed)
+            served = rank_in(documents.positions([row for row, _ in ranked]), case.position)
+            assert served == (ranks[slot] if ranks[slot] <= k else 0), (pool, case.query)
+            compared += 1
+    assert compared == sum(len(m.cases) for m in signals.lexical.values()) > 100
+
+
+def test_a_narrow_pool_keeps_its_keyword_matches_however_far_down_they_rank() -> None:
+    units = big_corpus(4500)
+    documents = build_documents(units, FakeEmbedder())
+    query = "ride"
+    order = documents.lexical(query)
+    assert len(order) > 20 * CANDIDATES
+    last = documents.row_ids[order[-4:]].tolist()  # the weakest matches of the whole index
+    searcher = Searcher(documents.store, documents.ann(), FakeEmbedder(), "fake")
+    hits = searcher.lexical(query, CANDIDATES, set(last))
+    # reference: the store's own full BM25 order, narrowed to the pool by hand
+    assert [row for row, _ in hits] == last

@@ -498,3 +498,49 @@ def test_scan_result_fields(tmp_path: Path) -> None:
     assert (source.size, source.mtime_ns) == (info.st_size, info.st_mtime_ns)
     assert source.spec.name == "python"
 
+
+
+# --- one folder rule for the walk and the watcher ----------------------------------------
+
+
+def test_walk_and_watcher_skip_the_same_folders(tmp_path: Path) -> None:
+    """Every folder the walk never enters is one whose events the watcher drops, and the
+    files the watcher would index from events on every path are the walk's files."""
+    from codeseek import FakeEmbedder, open_index
+    from codeseek.watch import Watcher, resolve_paths
+
+    root = tmp_path / "repo"
+    kept = ("src/ok.py", "src/deep/a/b.py", "docs/notes.py")
+    skipped = (".git/hooks/h.py", ".hg/store/x.py", ".svn/x.py", ".bzr/x.py", "_darcs/x.py",
+               "node_modules/pkg/i.js", "vendor/v.go", "web/third_party/t.py",
+               "src/__pycache__/c.py", "ignored/i.py", "src/build/out.py", "index/units.py")
+    for rel in kept + skipped:
+        write(root, rel)
+    write(root, ".gitignore", "ignored/\nbuild/\n")
+    write(tmp_path, "outside/o.py")
+    try:
+        (root / "linked").symlink_to(root / "src" / "deep", target_is_directory=True)
+        (root / "linked_out").symlink_to(tmp_path / "outside", target_is_directory=True)
+    except OSError:
+        pytest.skip("this file system has no symbolic links")
+    through_links = ("linked/a/b.py", "linked_out/o.py")
+    index = open_index(root, create=True, embedder=FakeEmbedder(), index_dir=root / "index")
+    try:
+        walk = scan_repository(index.settings)
+        walked = {p.rsplit("/", 1)[0] if "/" in p else "" for p in looked_at(walk)}
+        # reference: the file system's own listing of every file, through the links too
+        every = {p.relative_to(root).as_posix() for p in root.rglob("*")
+                 if p.is_file() and p.name != ".gitignore"} | set(through_links)
+        assert every >= set(kept + skipped + through_links)
+        watcher = Watcher(index)
+        for rel in sorted(every):
+            watcher.notice(str(root / rel))
+        noticed = watcher.queue.take(timeout=0, debounce=0)
+        assert noticed == {rel for rel in every
+                           if (rel.rsplit("/", 1)[0] if "/" in rel else "") in walked}
+        assert noticed == set(kept)
+        files, gone, _ = resolve_paths(index, watcher.rules, every)
+        assert {f.path for f in files} == returned(walk) == set(kept)
+        assert gone == []
+    finally:
+        index.close()

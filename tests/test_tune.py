@@ -358,3 +358,24 @@ def test_status_says_whether_an_adapter_serves(fake_index: Index, sample_copy: P
     line = next(x for x in out.splitlines() if x.startswith("adapter"))
     assert "in use, trained" in line
     assert line.endswith("held-out served MRR 0.442 -> 0.501 (38 docstrings)")
+
+
+def test_tune_uses_only_the_public_parts_of_the_recall_checks() -> None:
+    """tune imports from the ``codeseek.evaluate`` package itself (never a module of it),
+    and only names that package exports."""
+    import ast
+
+    import codeseek.evaluate
+    import codeseek.tune
+
+    source = Path(codeseek.tune.__file__).read_text(encoding="utf-8")
+    imported: list[tuple[str, str]] = []
+    for node in ast.walk(ast.parse(source)):  # reference: Python's own parser
+        if isinstance(node, ast.ImportFrom) and (node.module or "").startswith(
+                "codeseek.evaluate"):
+            imported.extend((node.module or "", alias.name) for alias in node.names)
+        elif isinstance(node, ast.Import):
+            assert not any(a.name.startswith("codeseek.evaluate") for a in node.names)
+    assert imported
+    assert {module for module, _ in imported} == {"codeseek.evaluate"}
+    assert {name for _, name in imported} <= set(codeseek.evaluate.__all__)
