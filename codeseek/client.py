@@ -14,7 +14,7 @@ from collections.abc import Sequence
 from pathlib import Path
 from typing import Any
 
-from codeseek import errors
+from codeseek import errors, safefs
 from codeseek.errors import CodeseekError
 from codeseek.hits import SearchHit
 
@@ -36,8 +36,11 @@ class DaemonClient:
 
     def request(self, message: dict[str, Any]) -> dict[str, Any]:
         """Send one request and return the response (errors re-raised as CodeseekError)."""
-        if not self.socket_path.exists():
-            raise DaemonUnavailable(str(self.socket_path))
+        try:
+            if not safefs.check_socket(self.socket_path):  # a link is never followed
+                raise DaemonUnavailable(str(self.socket_path))
+        except errors.IndexFolderUnsafe as exc:
+            raise DaemonUnavailable(str(exc)) from exc
         sock = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
         sock.settimeout(self.timeout)
         try:

@@ -30,10 +30,8 @@ from __future__ import annotations
 
 import hashlib
 import html
-import os
 import re
 import sqlite3
-import tempfile
 from collections import Counter
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, field, replace
@@ -42,6 +40,7 @@ from typing import Any, Protocol
 
 import numpy as np
 
+from codeseek import safefs
 from codeseek.adapter import QueryAdapter
 from codeseek.embed import Embedder
 from codeseek.errors import InvalidSplit, ReportWriteError, TooFewExamples
@@ -276,7 +275,7 @@ class VectorCache:
         self.vectors: dict[str, np.ndarray] = {}
         self.used: set[str] = set()
         self.borrowed: set[str] = set()  # kept elsewhere (the store): never saved here
-        if path is not None and path.is_file():
+        if path is not None and safefs.is_regular_file(path):  # a link is never followed
             self._load(path)
 
     def _load(self, path: Path) -> None:
@@ -303,16 +302,11 @@ class VectorCache:
                       - self.borrowed)
         matrix = np.stack([self.vectors[k] for k in keys]) if keys else np.zeros((0, 0))
         try:
-            fd, tmp = tempfile.mkstemp(dir=self.path.parent, prefix=".tmp-", suffix=".npz")
+            with safefs.replacing(self.path) as pending:
+                np.savez(pending.file, keys=np.array(keys), vectors=matrix.astype(np.float32),
+                         model_id=np.array(self.model_id))
         except OSError:
             return
-        try:
-            with os.fdopen(fd, "wb") as handle:
-                np.savez(handle, keys=np.array(keys), vectors=matrix.astype(np.float32),
-                         model_id=np.array(self.model_id))
-            os.replace(tmp, self.path)
-        except OSError:
-            Path(tmp).unlink(missing_ok=True)
 
 
 def encode_cached(embedder: Embedder, texts: Sequence[str], cache: VectorCache | None = None,
