@@ -121,6 +121,9 @@ def _translate(exc: sqlite3.Error, path: Path) -> Exception:
     if isinstance(exc, sqlite3.OperationalError) and (
         "disk" in text or "full" in text or "readonly" in text or "unable to open" in text
     ):
+        if "full" in text:
+            return IndexWriteError(f"{path}: cannot write the index: {text}; free some space "
+                                   "and run it again (the index keeps what was committed)")
         return IndexWriteError(f"{path}: cannot write the index: {text}")
     return IndexCorrupt(
         f"{path}: the index store is unreadable ({text}); "

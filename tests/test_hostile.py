@@ -14,6 +14,9 @@ import os
 import shutil
 import stat
 import subprocess
+import sys
+import threading
+from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
@@ -270,6 +273,251 @@ def test_an_index_folder_elsewhere_holding_other_files_is_refused(
 # == full disk, read-only index, damaged store, a build in progress ==
 
 
+def fingerprint(index_dir: Path) -> dict[str, tuple[str, bytes]]:
+    """uid -> (content hash, vector bytes): what an index holds."""
+    from codeseek.store import Store
+
+    store = Store.open(index_dir, create=False)
+    try:
+        model = FakeEmbedder()
+        labels, matrix = store.unit_vectors(model.model_id, model.dim)
+        vectors = {int(label): matrix[i].tobytes() for i, label in enumerate(labels)}
+        return {s.unit.uid: (s.content_hash, vectors.get(s.id, b"")) for s in store.iter_units()}
+    finally:
+        store.close()
+
+
+def fill_the_disk(store: object) -> None:
+    """Let the store's file grow no more: SQLite then fails as on a full disk, with
+    SQLITE_FULL ("database or disk is full"), and rolls the transaction back itself."""
+    db = store._db  # type: ignore[attr-defined]
+    pages = db.execute("PRAGMA page_count").fetchone()[0]
+    db.execute(f"PRAGMA max_page_count = {pages}")
+
+
+NEW_MODULE = "".join(f'def weigh_cargo_{i}(bike):\n    """Weigh the cargo of bike {i}."""\n'
+                     f'    return {i} * len(bike)  # {"padding " * 40}\n\n'
+                     for i in range(60))
+
+
+def test_a_full_disk_during_index_is_one_error_and_keeps_the_last_good_index(
+        sample_copy: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from codeseek.store import Store
+
+    assert run_cli("index", str(sample_copy), "--backend", "fake")[0] == 0
+    index_dir = sample_copy / ".codeseek"
+    good = fingerprint(index_dir)
+    (sample_copy / "python" / "cargo.py").write_text(NEW_MODULE, encoding="utf-8")
+    real_open = Store.open
+
+    def full_open(*args, **kwargs):  # type: ignore[no-untyped-def]
+        store = real_open(*args, **kwargs)
+        fill_the_disk(store)
+        return store
+
+    monkeypatch.setattr(Store, "open", full_open)
+    code, _, err = run_cli("index", str(sample_copy), "--backend", "fake", "-q")
+    assert code == 1
+    assert err == (f"error: {index_dir / 'index.sqlite3'}: cannot write the index: database "
+                   "or disk is full; free some space and run it again (the index keeps what "
+                   "was committed)\n")
+    monkeypatch.setattr(Store, "open", real_open)
+    assert fingerprint(index_dir) == good
+    assert run_cli("index", str(sample_copy), "--backend", "fake")[0] == 0  # space is back
+    assert any(uid.startswith("python/cargo.py") for uid in fingerprint(index_dir))
+
+
+def test_the_daemon_reports_a_full_disk_as_its_cause(sample_copy: Path) -> None:
+    import time
+
+    from codeseek.daemon import Daemon
+
+    index = open_index(sample_copy, create=True, embedder=FakeEmbedder())
+    running = Daemon(index, reconcile_seconds=3600, debounce=0.05)
+    running.start()
+    try:
+        running.watcher.retry_seconds = 3600
+        fill_the_disk(index.store)
+        (sample_copy / "python" / "cargo.py").write_text(NEW_MODULE, encoding="utf-8")
+        deadline = time.monotonic() + 20
+        while running.daemon_status()["last_error"] is None and time.monotonic() < deadline:
+            time.sleep(0.05)
+        error = running.daemon_status()["last_error"]
+        assert error is not None and "database or disk is full" in error
+        assert "rollback" not in error
+    finally:
+        running.stop()
+        index.close()
+
+
+CAP_DAC_OVERRIDE, CAP_DAC_READ_SEARCH = 1, 2  # linux/capability.h
+PR_CAPBSET_DROP = 24  # linux/prctl.h
+
+
+def _without_root_file_powers() -> None:
+    """In the child before exec: drop the capabilities that let root ignore file modes
+    (so chmod binds it, as it binds every other user)."""
+    import ctypes
+
+    libc = ctypes.CDLL(None, use_errno=True)
+    for cap in (CAP_DAC_OVERRIDE, CAP_DAC_READ_SEARCH):
+        if libc.prctl(PR_CAPBSET_DROP, cap, 0, 0, 0) != 0:
+            raise OSError(ctypes.get_errno(), "prctl(PR_CAPBSET_DROP)")
+
+
+def _readonly_run(*argv: str) -> subprocess.CompletedProcess[str]:
+    """Run Python (``-m codeseek ...``) as a process that chmod binds: this user, or
+    root without the capabilities that override file modes (tests run as root in CI)."""
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parent.parent)}
+    command = [sys.executable, *argv]
+    extra = {"preexec_fn": _without_root_file_powers} if os.geteuid() == 0 else {}
+    try:
+        return subprocess.run(command, capture_output=True, text=True, env=env, timeout=120,
+                              **extra)  # type: ignore[call-overload]
+    except subprocess.SubprocessError as exc:
+        pytest.skip(f"cannot drop root's file capabilities here ({exc}); run as a user")
+
+
+@pytest.fixture
+def readonly_repo(sample_copy: Path) -> Iterator[Path]:
+    assert run_cli("index", str(sample_copy), "--backend", "fake")[0] == 0
+    (sample_copy / ".codeseek").chmod(0o500)
+    yield sample_copy
+    (sample_copy / ".codeseek").chmod(0o700)
+
+
+def test_search_and_status_need_no_write_access(readonly_repo: Path) -> None:
+    folder = readonly_repo / ".codeseek"
+    before = sorted(p.name for p in folder.iterdir())
+    probe = _readonly_run("-c", f"open({str(folder / 'probe')!r}, 'w')")
+    assert probe.returncode == 1 and "PermissionError" in probe.stderr  # the folder binds
+    found = _readonly_run("-m", "codeseek", "search", "refund a rider", "--repo",
+                          str(readonly_repo), "--backend", "fake", "--json", "-k", "3")
+    assert found.returncode == 0, found.stderr
+    assert len(found.stdout.splitlines()) == 3
+    status = _readonly_run("-m", "codeseek", "status", str(readonly_repo), "--json")
+    assert status.returncode == 0, status.stderr
+    assert '"units": ' in status.stdout
+    assert sorted(p.name for p in folder.iterdir()) == before
+
+
+def test_a_store_in_a_folder_that_cannot_be_written_opens_read_only(
+        sample_copy: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import sqlite3
+
+    from codeseek.store import Store
+
+    assert run_cli("index", str(sample_copy), "--backend", "fake")[0] == 0
+    real_connect = sqlite3.connect
+
+    def no_writes(target, *args, **kwargs):  # type: ignore[no-untyped-def]
+        if not kwargs.get("uri"):  # a read-write open: as in a folder of mode 0500
+            raise sqlite3.OperationalError("unable to open database file")
+        return real_connect(target, *args, **kwargs)
+
+    monkeypatch.setattr(sqlite3, "connect", no_writes)
+    store = Store.open(sample_copy / ".codeseek", create=False)
+    try:
+        assert store.read_only and store.counts()["units"] > 0
+    finally:
+        store.close()
+
+
+def test_status_reports_a_store_garbled_mid_file(sample_copy: Path) -> None:
+    assert run_cli("index", str(sample_copy), "--backend", "fake")[0] == 0
+    db = sample_copy / ".codeseek" / "index.sqlite3"
+    data = bytearray(db.read_bytes())
+    page = 4096
+    for start in range(len(data) // 3 // page * page, 2 * len(data) // 3, 2 * page):
+        data[start + 8 : start + page] = b"\xa5" * (page - 8)  # keep each page's flag byte
+    db.write_bytes(bytes(data))
+    code, out, err = run_cli("status", str(sample_copy))
+    assert (code, out) == (1, "")
+    assert err.startswith(f"error: {db}: the index store is ")
+    assert err.endswith("; rebuild it with `codeseek index --rebuild`\n")
+    assert run_cli("index", str(sample_copy), "--backend", "fake", "--rebuild")[0] == 0
+    assert run_cli("status", str(sample_copy))[0] == 0
+
+
+class StopsAfter(FakeEmbedder):
+    """The fake model, interrupted (as by Ctrl-C or a kill) on its second batch."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.batches = 0
+
+    def encode(self, texts, progress=None):  # type: ignore[no-untyped-def]
+        self.batches += 1
+        if self.batches == 2:
+            raise KeyboardInterrupt
+        return super().encode(texts, progress)
+
+
+def test_search_after_a_killed_first_build_says_so(sample_copy: Path,
+                                                   monkeypatch: pytest.MonkeyPatch) -> None:
+    from codeseek import indexer
+
+    monkeypatch.setattr(indexer, "FILES_PER_TRANSACTION", 3)
+    index = open_index(sample_copy, create=True, embedder=StopsAfter())
+    with pytest.raises(KeyboardInterrupt):
+        index.update()
+    assert index.store.counts()["files"] > 0  # the first batches were committed
+    index.close()
+    code, out, err = run_cli("search", "refund a rider", "--repo", str(sample_copy),
+                             "--backend", "fake")
+    assert (code, out) == (1, "")
+    assert err == (f"error: the first build of the index at {sample_copy / '.codeseek'} did "
+                   "not finish; run `codeseek index` to complete it\n")
+    assert run_cli("index", str(sample_copy), "--backend", "fake")[0] == 0
+    code, out, _ = run_cli("search", "refund a rider", "--repo", str(sample_copy),
+                           "--backend", "fake")
+    assert code == 0 and "no matches" not in out
+
+
+class Waits(FakeEmbedder):
+    """The fake model, holding its second batch until told to go on."""
+
+    def __init__(self) -> None:
+        super().__init__()
+        self.batches = 0
+        self.reached = threading.Event()
+        self.go_on = threading.Event()
+
+    def encode(self, texts, progress=None):  # type: ignore[no-untyped-def]
+        self.batches += 1
+        if self.batches == 2:
+            self.reached.set()
+            self.go_on.wait(60)
+        return super().encode(texts, progress)
+
+
+def test_search_during_a_rebuild_says_the_index_is_being_built(
+        sample_copy: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from codeseek import indexer
+    from codeseek.api import remove_index_files
+
+    assert run_cli("index", str(sample_copy), "--backend", "fake")[0] == 0
+    monkeypatch.setattr(indexer, "FILES_PER_TRANSACTION", 3)
+    remove_index_files(sample_copy / ".codeseek")  # what `index --rebuild` does first
+    model = Waits()
+    index = open_index(sample_copy, create=True, embedder=model)
+    build = threading.Thread(target=index.update)
+    build.start()
+    try:
+        assert model.reached.wait(60)
+        code, out, err = run_cli("search", "refund a rider", "--repo", str(sample_copy),
+                                 "--backend", "fake")
+        files = index.store.counts()["files"]
+    finally:
+        model.go_on.set()
+        build.join(60)
+        index.close()
+    assert (code, out) == (1, "")
+    assert err == (f"error: the index at {sample_copy / '.codeseek'} is being built "
+                   f"({files} files so far); search again when the build is done\n")
+    code, out, _ = run_cli("search", "refund a rider", "--repo", str(sample_copy),
+                           "--backend", "fake")
+    assert code == 0 and "no matches" not in out
 
 
 # == a property-based sweep over random bytes ==
