@@ -179,16 +179,23 @@ class Store:
 
     @classmethod
     def _connect(cls, path: Path, create: bool) -> Store:
+        db: sqlite3.Connection | None = None
         try:
             db = sqlite3.connect(path, timeout=30.0, check_same_thread=False,
                                  isolation_level=None)
             db.execute("PRAGMA trusted_schema=OFF")  # a planted schema runs no functions
             db.execute("PRAGMA journal_mode=WAL")
-            read_only = False
+            return cls._ready(db, path, create, read_only=False)
         except sqlite3.OperationalError as exc:
+            if db is not None:
+                db.close()
             if create or not _cannot_write(exc):
                 raise
-            db, read_only = _connect_read_only(path), True
+        return cls._ready(_connect_read_only(path), path, create, read_only=True)
+
+    @classmethod
+    def _ready(cls, db: sqlite3.Connection, path: Path, create: bool, *,
+               read_only: bool) -> Store:
         db.execute("PRAGMA synchronous=NORMAL")
         db.execute("PRAGMA foreign_keys=ON")
         store = cls(db, path, read_only=read_only)
