@@ -520,4 +520,28 @@ def test_search_during_a_rebuild_says_the_index_is_being_built(
     assert code == 0 and "no matches" not in out
 
 
+def test_the_daemon_says_its_first_build_runs(sample_copy: Path,
+                                              monkeypatch: pytest.MonkeyPatch) -> None:
+    from codeseek import indexer
+    from codeseek.client import DaemonClient
+    from codeseek.daemon import Daemon
+    from codeseek.errors import IndexBuilding
+
+    monkeypatch.setattr(indexer, "FILES_PER_TRANSACTION", 3)
+    model = Waits()
+    index = open_index(sample_copy, create=True, embedder=model)
+    running = Daemon(index, reconcile_seconds=3600)
+    starting = threading.Thread(target=running.start)
+    starting.start()
+    try:
+        assert model.reached.wait(60)  # the socket listens; the first build is under way
+        with pytest.raises(IndexBuilding, match="is being built"):
+            DaemonClient(index.settings.index_dir).search("refund a rider", 3)
+    finally:
+        model.go_on.set()
+        starting.join(60)
+        running.stop()
+        index.close()
+
+
 # == a property-based sweep over random bytes ==
