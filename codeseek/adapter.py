@@ -12,15 +12,14 @@ imports torch.
 from __future__ import annotations
 
 import json
-import os
-import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
-from codeseek.errors import IndexCorrupt, IndexWriteError
+from codeseek import safefs
+from codeseek.errors import CodeseekError, IndexCorrupt, IndexWriteError
 from codeseek.store import unlink_all
 
 ADAPTER_NAME = "adapter.npz"
@@ -70,25 +69,18 @@ def save_adapter(index_dir: Path, adapter: QueryAdapter) -> None:
     text = json.dumps(header, indent=2, sort_keys=True)
     target = index_dir / ADAPTER_NAME
     try:
-        fd, tmp = tempfile.mkstemp(dir=index_dir, prefix=".tmp-", suffix=".npz")
+        with safefs.replacing(target) as pending:
+            np.savez(pending.file, matrix=adapter.matrix.astype(np.float32),
+                     header=np.array(text))
+        safefs.write_atomic(index_dir / REPORT_NAME, (text + "\n").encode("utf-8"))
     except OSError as exc:
-        raise IndexWriteError(f"{target}: cannot save the adapter: {exc}") from exc
-    try:
-        with os.fdopen(fd, "wb") as handle:
-            np.savez(handle, matrix=adapter.matrix.astype(np.float32), header=np.array(text))
-            handle.flush()
-            os.fsync(handle.fileno())
-        os.replace(tmp, target)
-        (index_dir / REPORT_NAME).write_text(text + "\n", encoding="utf-8")
-    except OSError as exc:
-        Path(tmp).unlink(missing_ok=True)
         raise IndexWriteError(f"{target}: cannot save the adapter: {exc}") from exc
 
 
 def load_adapter(index_dir: Path, model_id: str) -> QueryAdapter | None:
     """The index's adapter for this model; None when there is none (or it is another model's)."""
     path = index_dir / ADAPTER_NAME
-    if not path.is_file():
+    if not safefs.is_regular_file(path):  # missing, or a link: never followed
         return None
     try:
         with np.load(path, allow_pickle=False) as data:
@@ -115,13 +107,12 @@ def adapter_summary(index_dir: Path) -> dict[str, Any] | None:
     ``batch_size``, ``pairs``; those the header lacks are None.
     """
     path = index_dir / ADAPTER_NAME
-    try:
-        saved_at = path.stat().st_mtime
-    except OSError:
+    if not safefs.is_regular_file(path):
         return None
+    saved_at = path.stat().st_mtime
     try:
-        header = json.loads((index_dir / REPORT_NAME).read_text(encoding="utf-8"))
-    except (OSError, ValueError):
+        header = json.loads(safefs.read_bytes(index_dir / REPORT_NAME).decode("utf-8"))
+    except (OSError, ValueError, CodeseekError):
         header = {}
     header = header if isinstance(header, dict) else {}
     report = _mapping(header.get("report"))

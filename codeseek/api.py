@@ -6,14 +6,17 @@ embedding model is loaded on first need, so ``status`` never touches it.
 
 from __future__ import annotations
 
+import errno
 import fcntl
 import os
+import stat
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
+from codeseek import safefs
 from codeseek.adapter import (
     ADAPTER_NAME,
     QueryAdapter,
@@ -25,6 +28,7 @@ from codeseek.adapter import (
 from codeseek.config import Settings, load_settings
 from codeseek.embed import Embedder, load_embedder
 from codeseek.errors import (
+    IndexBuilding,
     IndexCorrupt,
     IndexLocked,
     IndexNotFound,
@@ -111,10 +115,16 @@ class Index:
 
     # -- writing ---------------------------------------------------------------------
 
+    @property
+    def notes(self) -> list[str]:
+        """Warnings about the index folder, to show once (when the index was made)."""
+        return list(self.store.notes)
+
     def update(self, progress: ProgressCallback | None = None) -> UpdateSummary:
         """Bring the index up to date with the files on disk, and save the vector index."""
         with self._writer_lock():
             summary = self._updater(progress).full()
+            self.store.finish_first_build()
             if progress:
                 progress("save", 0, 1)
             self.save()
@@ -146,10 +156,7 @@ class Index:
     @contextmanager
     def _writer_lock(self) -> Iterator[None]:
         path = self.settings.index_dir / LOCK_NAME
-        try:
-            handle = open(path, "a+")  # noqa: SIM115 - held for the whole update
-        except OSError as exc:
-            raise IndexWriteError(f"{path}: cannot create the lock file: {exc}") from exc
+        handle = safefs.open_lock(path)
         try:
             try:
                 fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -162,6 +169,34 @@ class Index:
         finally:
             handle.close()
 
+    def _writer_running(self) -> bool:
+        """Whether some process (this one included) holds the writer lock now."""
+        try:
+            fd = safefs.open_regular(self.settings.index_dir / LOCK_NAME, os.O_RDONLY)
+        except OSError:
+            return False  # no lock file: no update has run here
+        try:
+            fcntl.flock(fd, fcntl.LOCK_SH | fcntl.LOCK_NB)
+        except OSError as exc:
+            return exc.errno in (errno.EWOULDBLOCK, errno.EAGAIN)
+        finally:
+            os.close(fd)
+        return False
+
+    def _check_built(self) -> None:
+        """Refuse to search an index whose first build is not whole (it would answer
+        "no matches" for what it has not reached yet)."""
+        if self.store.first_build_finished():
+            return
+        where = self.settings.index_dir
+        if self._writer_running():
+            raise IndexBuilding(
+                f"the index at {where} is being built ({self.store.counts()['files']} files "
+                "so far); search again when the build is done")
+        raise IndexBuilding(
+            f"the first build of the index at {where} did not finish; run `codeseek index` "
+            "to complete it")
+
     # -- reading ---------------------------------------------------------------------
 
     def _vectors_for(self, model_id: str, dim: int) -> VectorIndex:
@@ -172,7 +207,8 @@ class Index:
             self._vectors = VectorIndex(dim)  # a new model: every vector is made anew
             return self._vectors
         vectors = load_vectors(self.store, model_id, dim, self.settings)
-        if vectors.rebuilt and os.access(self.settings.index_dir, os.W_OK):
+        if (vectors.rebuilt and not self.store.read_only
+                and os.access(self.settings.index_dir, os.W_OK)):
             with suppress(IndexWriteError):  # searching still works from memory
                 save_vectors(self.store, vectors, self.settings)
         self._vectors = vectors
@@ -180,9 +216,8 @@ class Index:
 
     def _adapter_signature(self) -> tuple[int, int, int] | None:
         """(inode, size, mtime) of the adapter file; None when there is none."""
-        try:
-            info = (self.settings.index_dir / ADAPTER_NAME).stat()
-        except OSError:
+        info = safefs.lstat_or_none(self.settings.index_dir / ADAPTER_NAME)
+        if info is None:
             return None
         return info.st_ino, info.st_size, info.st_mtime_ns
 
@@ -202,7 +237,9 @@ class Index:
         """The searcher over this index (loads the model and the vectors).
 
         A query adapter written or removed since the last call is picked up here.
+        An index whose first build is not whole is refused (:class:`IndexBuilding`).
         """
+        self._check_built()
         if self._searcher is not None:
             self._refresh_adapter(self._searcher)
         if self._searcher is None:
@@ -364,12 +401,15 @@ class Index:
         return self.store.skipped_files()
 
     def status(self) -> IndexStatus:
-        """Counts and freshness; never loads the model."""
+        """Counts and freshness; never loads the model. A damaged store raises
+        :class:`IndexCorrupt` (SQLite's quick check reads every page once)."""
+        self.store.check_health()
         manifest = self.store.manifest()
         counts = self.store.counts()
         generation = self.store.generation()
         hnsw = self.settings.index_dir / HNSW_NAME
-        size = sum(p.stat().st_size for p in self.settings.index_dir.iterdir() if p.is_file())
+        size = sum(info.st_size for info in map(os.lstat, self.settings.index_dir.iterdir())
+                   if stat.S_ISREG(info.st_mode))
         updated = manifest.get("updated_at")
         return IndexStatus(
             repo=str(self.settings.repo), index_dir=str(self.settings.index_dir),
@@ -379,7 +419,7 @@ class Index:
             model_id=manifest.get("model_id"),
             dim=int(manifest["dim"]) if "dim" in manifest else None,
             generation=generation,
-            vectors_in_sync=hnsw.is_file()
+            vectors_in_sync=safefs.is_regular_file(hnsw)
             and manifest.get("hnsw_generation") == str(generation),
             updated_at=float(updated) if updated else None,
             bytes_on_disk=size,
@@ -430,12 +470,13 @@ def open_index(
         if not root.is_dir():
             raise RepositoryNotFound(f"{root}: no such folder")
         settings = load_settings(root, index_dir=index_dir, model=model, backend=backend)
-    store = Store.open(settings.index_dir, create=create)
+    store = Store.open(settings.index_dir, create=create, repo=settings.repo)
     return Index(settings, store, embedder)
 
 
 def remove_index_files(index_dir: Path) -> None:
-    """Delete the store and vector files of an index (for ``--rebuild``)."""
+    """Delete the store and vector files of an index (for ``--rebuild``); the folder
+    must pass the index folder check."""
     unlink_all(index_dir, (DB_NAME, DB_NAME + "-wal", DB_NAME + "-shm", HNSW_NAME))
 
 

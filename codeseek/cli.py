@@ -268,6 +268,7 @@ def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         settings = load_settings(_root(args.path), index_dir=args.index_dir)
         remove_index_files(settings.index_dir)
     with _open(args.path, args, create=True) as index:
+        _print_notes(index, err)
         if args.quiet or not err.isatty():
             summary = index.update(progress=_LineProgress(err) if not args.quiet else None)
         else:
@@ -280,6 +281,12 @@ def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         print(f"warning: {len(summary.syntax_warnings) - 20} more files with syntax errors "
               "(see `codeseek status`)", file=err)
     return EXIT_OK
+
+
+def _print_notes(index: Index, err: TextIO) -> None:
+    """The index folder's warnings (said once, when the index is made)."""
+    for note in index.notes:
+        print(f"warning: {note}", file=err)
 
 
 class _LineProgress:
@@ -700,6 +707,7 @@ def cmd_watch(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         print(printable(message), file=err, flush=True)  # log lines may quote file names
 
     with _open(args.path, args, create=True) as index:
+        _print_notes(index, err)
         run_foreground(index, log, poll=args.poll)
     return EXIT_OK
 

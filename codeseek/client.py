@@ -26,7 +26,7 @@ from collections.abc import Iterator, Sequence
 from pathlib import Path
 from typing import Any
 
-from codeseek import errors
+from codeseek import errors, safefs
 from codeseek.errors import CodeseekError, DaemonError
 from codeseek.hits import SearchHit
 
@@ -76,8 +76,11 @@ class DaemonClient:
 
     def connect(self) -> Connection:
         """A connection to the daemon, for one request after another."""
-        if not self.socket_path.exists():
-            raise DaemonUnavailable(str(self.socket_path))
+        try:
+            if not safefs.check_socket(self.socket_path):  # a link is never followed
+                raise DaemonUnavailable(str(self.socket_path))
+        except errors.IndexFolderUnsafe as exc:
+            raise DaemonUnavailable(str(exc)) from exc
         return Connection(self.socket_path, self.timeout)
 
     def search_stream(self, queries: Sequence[str], k: int = 10, *,

@@ -48,6 +48,7 @@ from collections.abc import Callable
 from contextlib import suppress
 from typing import Any
 
+from codeseek import safefs
 from codeseek.api import Index
 from codeseek.client import (
     CLIENT_TIMEOUT,
@@ -191,12 +192,12 @@ class Daemon:
         self._stopped.set()
 
     def _take_lock(self) -> None:
-        handle = open(self.lock_path, "a+")  # noqa: SIM115 - held for the daemon's life
+        handle = safefs.open_lock(self.lock_path)  # held for the daemon's life; no link
         try:
             fcntl.flock(handle, fcntl.LOCK_EX | fcntl.LOCK_NB)
         except BlockingIOError:
             handle.seek(0)
-            pid = handle.read().strip() or "?"
+            pid = handle.read().decode("utf-8", "replace").strip() or "?"
             handle.close()
             raise IndexLocked(
                 f"a codeseek daemon (pid {pid}) already watches the index at "
@@ -204,14 +205,15 @@ class Daemon:
             ) from None
         handle.seek(0)
         handle.truncate()
-        handle.write(str(os.getpid()))
-        handle.flush()
+        handle.write(str(os.getpid()).encode())
         self._lock_handle = handle
 
     def _listen(self) -> None:
-        # we hold the daemon lock, so a socket file left here is a crashed daemon's
-        with suppress(FileNotFoundError):
-            self.socket_path.unlink()
+        # we hold the daemon lock, so a socket of ours left here is a crashed daemon's;
+        # anything else under its name (a link, a file) is refused, never removed
+        if safefs.check_socket(self.socket_path):
+            with suppress(FileNotFoundError):
+                self.socket_path.unlink()
         daemon = self
 
         class Handler(socketserver.StreamRequestHandler):

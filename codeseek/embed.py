@@ -29,6 +29,7 @@ import numpy as np
 
 from codeseek.config import Settings
 from codeseek.errors import ModelUnavailable
+from codeseek.safefs import replacing, write_atomic
 from codeseek.units import split_identifier
 
 Progress = Callable[[int], None]
@@ -149,10 +150,7 @@ def model_fingerprint(folder: Path, cache_dir: Path) -> str:
 def _write_atomic(path: Path, data: bytes) -> None:
     try:
         path.parent.mkdir(parents=True, exist_ok=True)
-        fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-")
-        with os.fdopen(fd, "wb") as handle:
-            handle.write(data)
-        os.replace(tmp, path)
+        write_atomic(path, data)
     except OSError:
         pass  # a cache that cannot be written only costs time
 
@@ -291,22 +289,19 @@ def export_onnx(folder: Path, target: Path) -> None:
     mask = torch.ones((2, 12), dtype=torch.long)
     mask[1, 7:] = 0
     types = torch.zeros((2, 12), dtype=torch.long)
-    target.parent.mkdir(parents=True, exist_ok=True)
-    fd, tmp = tempfile.mkstemp(dir=target.parent, prefix=".export-", suffix=".onnx")
-    os.close(fd)
     axes = {name: {0: "batch", 1: "tokens"} for name in _ONNX_INPUTS}
     axes["hidden"] = {0: "batch", 1: "tokens"}
     try:
         import warnings
 
-        with warnings.catch_warnings(), torch.no_grad():
+        target.parent.mkdir(parents=True, exist_ok=True)
+        with (replacing(target) as pending, warnings.catch_warnings(),
+              torch.no_grad()):
             warnings.simplefilter("ignore")
-            torch.onnx.export(_Hidden(model), (ids, mask, types), tmp,
+            torch.onnx.export(_Hidden(model), (ids, mask, types), str(pending.path),
                               input_names=list(_ONNX_INPUTS), output_names=["hidden"],
                               dynamic_axes=axes, opset_version=17, dynamo=False)
-        os.replace(tmp, target)
     except Exception as exc:
-        Path(tmp).unlink(missing_ok=True)
         raise ModelUnavailable(f"exporting {folder} to ONNX failed: {exc}") from exc
 
 

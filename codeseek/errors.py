@@ -15,6 +15,9 @@ where they are raised, with ``raise ... from exc``.
     ├── IndexFormatMismatch      the index was written by another format version
     ├── IndexLocked              another process holds the index for writing
     ├── IndexWriteError          the index could not be written (disk full, ...)
+    ├── IndexFolderUnsafe        the index folder is a link, another user's, open to others'
+    │                            writes, holds a link, or holds files that are not an index
+    ├── IndexBuilding            the index is being built (or its first build was cut short)
     ├── ModelUnavailable         the embedding model folder is missing or broken
     ├── ModelMismatch            the index was built with another model
     ├── UnsupportedLanguage      a language name codeseek does not know
@@ -62,6 +65,14 @@ class IndexLocked(CodeseekError):
 
 class IndexWriteError(CodeseekError):
     """Writing the index failed (for example, the disk is full)."""
+
+
+class IndexFolderUnsafe(CodeseekError):
+    """The index folder (or a file in it) cannot be used without risk to other files."""
+
+
+class IndexBuilding(CodeseekError):
+    """The index has no finished build yet: one runs now, or the last one was cut short."""
 
 
 class ModelUnavailable(CodeseekError):

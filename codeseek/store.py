@@ -20,21 +20,29 @@ the same.
 
 from __future__ import annotations
 
-import os
 import sqlite3
 import time
 from collections.abc import Iterable, Iterator, Sequence
-from contextlib import contextmanager
+from contextlib import contextmanager, suppress
 from dataclasses import dataclass
 from pathlib import Path
+from urllib.parse import quote
 
 import numpy as np
 
-from codeseek.errors import IndexCorrupt, IndexFormatMismatch, IndexNotFound, IndexWriteError
+from codeseek import safefs
+from codeseek.errors import (
+    IndexCorrupt,
+    IndexFolderUnsafe,
+    IndexFormatMismatch,
+    IndexNotFound,
+    IndexWriteError,
+)
 from codeseek.units import CodeUnit, lexical_codes
 
 DB_NAME = "index.sqlite3"
 FORMAT_VERSION = 1
+FIRST_BUILD_KEY = "first_build"  # in the manifest until the first full build is committed
 
 # Migrations: version -> statements. A new format adds a new entry; the store
 # applies what the file lacks, in order, inside one transaction.
@@ -115,11 +123,30 @@ def from_column(value: str | bytes) -> str:
     return value.decode("utf-8", "surrogateescape") if isinstance(value, bytes) else value
 
 
+def _cannot_write(exc: sqlite3.OperationalError) -> bool:
+    text = str(exc)
+    return "readonly" in text or "unable to open" in text
+
+
+def _connect_read_only(path: Path) -> sqlite3.Connection:
+    """A read-only connection: ``mode=ro`` reads the WAL when its files are there; with
+    no WAL file at all, the store is whole in the main file and ``immutable`` reads it
+    without the shared-memory file a read-only folder cannot hold."""
+    uri = f"file:{quote(str(path))}?mode=ro"
+    if safefs.lstat_or_none(Path(str(path) + "-wal")) is None:
+        uri += "&immutable=1"
+    return sqlite3.connect(uri, uri=True, timeout=30.0, check_same_thread=False,
+                           isolation_level=None)
+
+
 def _translate(exc: sqlite3.Error, path: Path) -> Exception:
     text = str(exc)
     if isinstance(exc, sqlite3.OperationalError) and (
         "disk" in text or "full" in text or "readonly" in text or "unable to open" in text
     ):
+        if "full" in text:
+            return IndexWriteError(f"{path}: cannot write the index: {text}; free some space "
+                                   "and run it again (the index keeps what was committed)")
         return IndexWriteError(f"{path}: cannot write the index: {text}")
     return IndexCorrupt(
         f"{path}: the index store is unreadable ({text}); "
@@ -130,32 +157,72 @@ def _translate(exc: sqlite3.Error, path: Path) -> Exception:
 class Store:
     """One open SQLite index store."""
 
-    def __init__(self, connection: sqlite3.Connection, path: Path) -> None:
+    def __init__(self, connection: sqlite3.Connection, path: Path, *,
+                 read_only: bool = False) -> None:
         self._db = connection
         self.path = path
+        self.read_only = read_only  # opened so because the folder cannot be written
+        self.notes: list[str] = []  # warnings about the index folder, shown once
 
     # -- opening -----------------------------------------------------------------
 
     @classmethod
-    def open(cls, index_dir: Path, *, create: bool) -> Store:
-        """Open (and with ``create``, make) the store in ``index_dir``."""
+    def open(cls, index_dir: Path, *, create: bool, repo: Path | None = None) -> Store:
+        """Open (and with ``create``, make) the store in ``index_dir``.
+
+        The folder is checked first (:func:`~codeseek.safefs.check_index_dir`); a new
+        store is made in a folder :func:`~codeseek.safefs.prepare_index_dir` accepts
+        (``repo`` tells it whether the folder lies inside the repository), and its
+        warnings are kept in :attr:`notes`. An existing store in a folder this
+        process cannot write is opened read-only: searching and status need no
+        write access.
+        """
         path = index_dir / DB_NAME
-        if not path.exists():
+        notes: list[str] = []
+        safefs.check_index_dir(index_dir)
+        if safefs.lstat_or_none(path) is None:
             if not create:
                 raise IndexNotFound(
                     f"no index at {index_dir}; build one with `codeseek index`"
                 )
-            make_index_dir(index_dir)
+            notes = safefs.prepare_index_dir(index_dir, repo)
+            try:
+                safefs.create_new(path)  # 0600: SQLite gives -wal and -shm the same mode
+            except OSError as exc:
+                raise IndexWriteError(f"{path}: cannot create the index: {exc}") from exc
+        elif not safefs.is_regular_file(path):
+            raise IndexFolderUnsafe(f"{path}: not a regular file; remove it, or rebuild "
+                                    "with `codeseek index --rebuild`")
+        try:
+            store = cls._connect(path, create)
+        except sqlite3.Error as exc:
+            raise _translate(exc, path) from exc
+        store.notes = notes
+        return store
+
+    @classmethod
+    def _connect(cls, path: Path, create: bool) -> Store:
+        db: sqlite3.Connection | None = None
         try:
             db = sqlite3.connect(path, timeout=30.0, check_same_thread=False,
                                  isolation_level=None)
+            db.execute("PRAGMA trusted_schema=OFF")  # a planted schema runs no functions
             db.execute("PRAGMA journal_mode=WAL")
-            db.execute("PRAGMA synchronous=NORMAL")
-            db.execute("PRAGMA foreign_keys=ON")
-            store = cls(db, path)
-            store._migrate(create)
-        except sqlite3.Error as exc:
-            raise _translate(exc, path) from exc
+            return cls._ready(db, path, create, read_only=False)
+        except sqlite3.OperationalError as exc:
+            if db is not None:
+                db.close()
+            if create or not _cannot_write(exc):
+                raise
+        return cls._ready(_connect_read_only(path), path, create, read_only=True)
+
+    @classmethod
+    def _ready(cls, db: sqlite3.Connection, path: Path, create: bool, *,
+               read_only: bool) -> Store:
+        db.execute("PRAGMA synchronous=NORMAL")
+        db.execute("PRAGMA foreign_keys=ON")
+        store = cls(db, path, read_only=read_only)
+        store._migrate(create)
         return store
 
     def close(self) -> None:
@@ -163,6 +230,9 @@ class Store:
         self._db.close()
 
     def _migrate(self, create: bool) -> None:
+        if self.read_only:
+            self._check_read_only_format()
+            return
         self._db.execute(
             "CREATE TABLE IF NOT EXISTS migrations (version INTEGER PRIMARY KEY, applied_at REAL)"
         )
@@ -184,6 +254,26 @@ class Store:
                     "INSERT INTO migrations VALUES (?, ?)", (version, time.time())
                 )
                 self._set("format_version", str(version))
+                if not done:  # a new store: searchable once its first build is whole
+                    self._set(FIRST_BUILD_KEY, "unfinished")
+
+    def _check_read_only_format(self) -> None:
+        done = {row[0] for row in self._db.execute("SELECT version FROM migrations")}
+        if max(done, default=0) != FORMAT_VERSION:
+            raise IndexFormatMismatch(
+                f"{self.path}: the index has format {max(done, default=0)}, this codeseek "
+                f"reads {FORMAT_VERSION}, and the folder is read-only; run `codeseek index` "
+                "where it can be written")
+
+    def check_health(self) -> None:
+        """Raise IndexCorrupt if SQLite finds damage (``PRAGMA quick_check``: every page
+        read once, no index contents compared)."""
+        rows = self._query("PRAGMA quick_check(5)")
+        problems = [str(row[0]) for row in rows if row[0] != "ok"]
+        if problems:
+            raise IndexCorrupt(
+                f"{self.path}: the index store is damaged ({problems[0]}); "
+                "rebuild it with `codeseek index --rebuild`")
 
     # -- transactions and the manifest ---------------------------------------------
 
@@ -196,14 +286,24 @@ class Store:
             raise _translate(exc, self.path) from exc
         try:
             yield
+        except sqlite3.Error as exc:
+            self._rollback()
+            raise _translate(exc, self.path) from exc
         except BaseException:
-            self._db.execute("ROLLBACK")
+            self._rollback()
             raise
         try:
             self._db.execute("COMMIT")
         except sqlite3.Error as exc:
-            self._db.execute("ROLLBACK")
+            self._rollback()
             raise _translate(exc, self.path) from exc
+
+    def _rollback(self) -> None:
+        """Undo the open transaction, if SQLite has not already (it rolls back by
+        itself on a full disk); the error that led here is the one to report."""
+        if self._db.in_transaction:
+            with suppress(sqlite3.Error):
+                self._db.execute("ROLLBACK")
 
     def _set(self, key: str, value: str) -> None:
         self._db.execute(
@@ -223,6 +323,17 @@ class Store:
                 self._set(key, value)
         except sqlite3.Error as exc:
             raise _translate(exc, self.path) from exc
+
+    def first_build_finished(self) -> bool:
+        """Whether a full build has been committed (an index made before this mark
+        existed counts as finished)."""
+        return FIRST_BUILD_KEY not in self.manifest()
+
+    def finish_first_build(self) -> None:
+        """Record that a full build has been committed."""
+        if not self.first_build_finished():
+            with self.transaction():
+                self._exec("DELETE FROM manifest WHERE key=?", (FIRST_BUILD_KEY,))
 
     def generation(self) -> int:
         """The number of committed changes so far."""
@@ -509,18 +620,6 @@ def _stored_unit(row: tuple) -> StoredUnit:
     return StoredUnit(row_id, unit, content_hash)
 
 
-def make_index_dir(index_dir: Path) -> None:
-    """Create the index folder, readable by its owner only, ignoring itself in git."""
-    try:
-        index_dir.mkdir(parents=True, exist_ok=True, mode=0o700)
-        os.chmod(index_dir, 0o700)
-        ignore = index_dir / ".gitignore"
-        if not ignore.exists():
-            ignore.write_text("# codeseek's index folder: never commit it\n*\n", encoding="utf-8")
-    except OSError as exc:
-        raise IndexWriteError(f"{index_dir}: cannot create the index folder: {exc}") from exc
-
-
 def vector_unit_ids(store: Store, model_id: str) -> set[int]:
     """Ids of the units that have a vector for this model (the HNSW's labels)."""
     rows = store._query(
@@ -543,7 +642,9 @@ def missing_vector_units(store: Store, model_id: str) -> list[StoredUnit]:
 
 
 def unlink_all(folder: Path, names: Iterable[str]) -> None:
-    """Delete these files of an index folder (missing ones are fine)."""
+    """Delete these files of an index folder (missing ones are fine; a link is removed,
+    never followed, and the folder itself must pass the index folder check)."""
+    safefs.check_index_dir(folder)
     for name in names:
         try:
             (folder / name).unlink()

@@ -1,7 +1,7 @@
 """The HNSW vector index (hnswlib): a derived, rebuildable cache of the store.
 
 Labels are unit row ids. The file is saved atomically (a temp file in the
-same folder, fsync, ``os.replace``, fsync of the folder) and the store's
+same folder, fsync, ``os.replace``, fsync of the folder: :mod:`codeseek.safefs`) and the store's
 manifest records it, with the store generation it reflects, only after the
 rename. :meth:`VectorIndex.load` refuses a file that does not match and the
 caller rebuilds from SQLite. ``ef`` is not saved by hnswlib, so it is set
@@ -11,14 +11,13 @@ serialises writers against readers.
 
 from __future__ import annotations
 
-import os
-import tempfile
 import threading
 from collections.abc import Sequence
 from pathlib import Path
 
 import numpy as np
 
+from codeseek import safefs
 from codeseek.errors import IndexWriteError
 
 HNSW_NAME = "vectors.hnsw"
@@ -60,7 +59,7 @@ class VectorIndex:
         """
         import hnswlib
 
-        if not path.is_file():
+        if not safefs.is_regular_file(path):  # missing, or a link: never followed
             return None
         try:
             raw = hnswlib.Index(space="cosine", dim=dim)
@@ -143,27 +142,13 @@ class VectorIndex:
                                                                     strict=True)]
 
     def save(self, path: Path) -> None:
-        """Write the index atomically: temp file, fsync, rename, fsync the folder."""
+        """Write the index atomically (:func:`codeseek.safefs.replacing`)."""
         with self._lock:
-            fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=".tmp-", suffix=".hnsw")
-            os.close(fd)
             try:
-                self._index.save_index(tmp)
-                with open(tmp, "rb+") as handle:
-                    os.fsync(handle.fileno())
-                os.replace(tmp, path)
-                _fsync_dir(path.parent)
+                with safefs.replacing(path) as pending:
+                    self._index.save_index(str(pending.path))
             except (OSError, RuntimeError) as exc:
-                Path(tmp).unlink(missing_ok=True)
                 raise IndexWriteError(f"{path}: cannot save the vector index: {exc}") from exc
-
-
-def _fsync_dir(folder: Path) -> None:
-    fd = os.open(folder, os.O_RDONLY)
-    try:
-        os.fsync(fd)
-    finally:
-        os.close(fd)
 
 
 def exact_search(query: np.ndarray, labels: np.ndarray, matrix: np.ndarray,

@@ -3,13 +3,12 @@
 from __future__ import annotations
 
 import hashlib
-import os
-import tempfile
 from collections.abc import Callable, Sequence
 from pathlib import Path
 
 import numpy as np
 
+from codeseek import safefs
 from codeseek.embed import Embedder
 
 ENCODE_CHUNK = 512
@@ -39,7 +38,7 @@ class VectorCache:
         self.vectors: dict[str, np.ndarray] = {}
         self.used: set[str] = set()
         self.borrowed: set[str] = set()  # kept elsewhere (the store): never saved here
-        if path is not None and path.is_file():
+        if path is not None and safefs.is_regular_file(path):  # a link is never followed
             self._load(path)
 
     def _load(self, path: Path) -> None:
@@ -66,16 +65,11 @@ class VectorCache:
                       - self.borrowed)
         matrix = np.stack([self.vectors[k] for k in keys]) if keys else np.zeros((0, 0))
         try:
-            fd, tmp = tempfile.mkstemp(dir=self.path.parent, prefix=".tmp-", suffix=".npz")
+            with safefs.replacing(self.path) as pending:
+                np.savez(pending.file, keys=np.array(keys), vectors=matrix.astype(np.float32),
+                         model_id=np.array(self.model_id))
         except OSError:
             return
-        try:
-            with os.fdopen(fd, "wb") as handle:
-                np.savez(handle, keys=np.array(keys), vectors=matrix.astype(np.float32),
-                         model_id=np.array(self.model_id))
-            os.replace(tmp, self.path)
-        except OSError:
-            Path(tmp).unlink(missing_ok=True)
 
 
 def encode_cached(embedder: Embedder, texts: Sequence[str], cache: VectorCache | None = None,
