@@ -25,6 +25,7 @@ import numpy as np
 import pathspec
 
 from codeseek.adapter import QueryAdapter
+from codeseek.client import MAX_K
 from codeseek.embed import Embedder
 from codeseek.errors import InvalidQuery
 from codeseek.filtering import check_files_pattern, language_name, unit_kind
@@ -277,6 +278,7 @@ class Searcher:
     def ranked(self, query: str, vector: np.ndarray, k: int,
                pool: set[int] | None = None) -> tuple[list[tuple[int, float]], dict[int, float]]:
         """The served ranking's best k (unit id, fused score), and the dense cosines seen."""
+        k = min(k, MAX_K)  # beyond every unit of any index; SQLite's integers stop at 2**63
         n = max(CANDIDATES, k * 3)
         dense = self.dense(vector, n, pool)
         lexical = self.lexical(query, n, pool)
@@ -321,6 +323,7 @@ def neighbour_units(searcher: Searcher, unit_id: int, k: int,
             raise InvalidQuery("that unit is no longer in the index (its file changed); "
                                "search again")
         pool = searcher._filtered_pool(filters)
+        k = min(k, MAX_K)  # beyond every unit of any index (see Searcher.ranked)
         nearest = searcher.dense(matrix[0], max(CANDIDATES, k * 3) + 1, pool)
         ranked = [(other, cosine) for other, cosine in nearest if other != unit_id][:k]
         units = searcher.store.units_by_ids([other for other, _ in ranked])

@@ -721,6 +721,21 @@ def test_git_matches_nothing_with_an_unclosed_bracket(tmp_path: Path) -> None:
 
 
 
+def test_a_k_past_every_integer_sqlite_holds_is_answered(indexed_copy: Path) -> None:
+    # SQLite's integers are 64-bit signed (sqlite.org/datatype3.html): a LIMIT above
+    # 2**63 - 1 cannot even be bound; every unit of the index is the answer
+    wanted = run_cli("search", "fare", "--repo", str(indexed_copy), "--backend", "fake",
+                     "-k", "1000", "--json")
+    near = ("search", "--neighbours", "python/kestrune/ratelimit.py:TokenBucket", "--repo",
+            str(indexed_copy), "--backend", "fake", "--json")
+    wanted_near = run_cli(*near, "-k", "1000")
+    assert wanted[0] == wanted_near[0] == 0
+    for huge in (str(2**62), str(2**64), "9" * 30):
+        assert run_cli("search", "fare", "--repo", str(indexed_copy), "--backend", "fake",
+                       "-k", huge, "--json") == wanted
+        assert run_cli(*near, "-k", huge) == wanted_near
+
+
 # == the daemon: requests, locks, sockets, first build ==
 
 # The daemon's hostile cases run against a real `codeseek watch` process where the
