@@ -29,6 +29,7 @@ from typing import Any
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from test_daemon import wait_for
 
 from codeseek import FakeEmbedder, open_index, safefs
 from codeseek.api import Index
@@ -750,14 +751,9 @@ def daemon_env(cache: Path) -> dict[str, str]:
     return env
 
 
-def daemon_wait(check: Callable[[], bool], what: str, timeout: float = 60.0) -> None:
+def daemon_wait(check: Callable[[], bool], what: str) -> None:
     """Poll until ``check`` holds (a generous timeout; no timing is asserted)."""
-    deadline = time.monotonic() + timeout
-    while time.monotonic() < deadline:
-        if check():
-            return
-        time.sleep(0.05)
-    raise AssertionError(f"timed out waiting for {what}")
+    wait_for(check, timeout=60.0, what=what)
 
 
 def daemon_state(index_dir: Path) -> str | None:
@@ -1088,7 +1084,6 @@ def test_a_full_disk_during_index_is_one_error_and_keeps_the_last_good_index(
 
 
 def test_the_daemon_reports_a_full_disk_as_its_cause(sample_copy: Path) -> None:
-    import time
 
     from codeseek.daemon import Daemon
 
