@@ -16,7 +16,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING
 
-from codeseek import safefs
+from codeseek import safefs, seal
 from codeseek.adapter import (
     ADAPTER_NAME,
     QueryAdapter,
@@ -419,8 +419,9 @@ class Index:
             model_id=manifest.get("model_id"),
             dim=int(manifest["dim"]) if "dim" in manifest else None,
             generation=generation,
-            vectors_in_sync=safefs.is_regular_file(hnsw)
-            and manifest.get("hnsw_generation") == str(generation),
+            vectors_in_sync=manifest.get("hnsw_generation") == str(generation)
+            and seal.verifies(seal.key(self.settings.cache_dir, create=False), hnsw,
+                              manifest.get("hnsw_seal")),
             updated_at=float(updated) if updated else None,
             bytes_on_disk=size,
             adapter=adapter_summary(self.settings.index_dir),

@@ -27,6 +27,7 @@ from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
 
+from codeseek import seal
 from codeseek.config import Settings
 from codeseek.embed import Embedder
 from codeseek.parse import ParseResult, parse_source
@@ -374,20 +375,28 @@ def sync_vectors(store: Store, embedder: Embedder, vectors: VectorIndex) -> None
 
 
 def save_vectors(store: Store, vectors: VectorIndex, settings: Settings) -> None:
-    """Save the HNSW file atomically, then record it in the manifest."""
+    """Save the HNSW file atomically, then record it, with its seal, in the manifest."""
     generation = store.generation()
-    vectors.save(settings.index_dir / HNSW_NAME)
+    path = settings.index_dir / HNSW_NAME
+    vectors.save(path)
+    secret = seal.key(settings.cache_dir, create=True)
+    sealed = seal.seal_of(secret, path) if secret is not None else None
     with store.transaction():
-        store.set_manifest(hnsw_generation=str(generation), hnsw_count=str(len(vectors)))
+        store.set_manifest(hnsw_generation=str(generation), hnsw_count=str(len(vectors)),
+                           hnsw_seal=sealed or "")
 
 
 def load_vectors(store: Store, model_id: str, dim: int, settings: Settings) -> VectorIndex:
-    """The saved HNSW when it matches the store, else one rebuilt from the store."""
+    """The saved HNSW when it matches the store and carries this user's seal
+    (:mod:`codeseek.seal`), else one rebuilt from the store."""
     manifest = store.manifest()
     expected = vector_unit_ids(store, model_id)
     loaded = None
-    if manifest.get("hnsw_generation") == str(store.generation()):
-        loaded = VectorIndex.load(settings.index_dir / HNSW_NAME, dim, expected)
+    path = settings.index_dir / HNSW_NAME
+    if (manifest.get("hnsw_generation") == str(store.generation())
+            and seal.verifies(seal.key(settings.cache_dir, create=False), path,
+                              manifest.get("hnsw_seal"))):
+        loaded = VectorIndex.load(path, dim, expected)
     if loaded is not None:
         return loaded
     return rebuild_vectors(store, model_id, dim)

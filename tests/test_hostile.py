@@ -271,6 +271,63 @@ def test_an_index_folder_elsewhere_holding_other_files_is_refused(
     assert sorted(p.name for p in where.iterdir()) == ["letter.txt"]
 
 
+def _sealed_searcher_state(repo: Path) -> tuple[bool, list[str]]:
+    """Whether the index's vectors were rebuilt (not loaded) and the top names for a query."""
+    with open_index(repo, embedder=FakeEmbedder()) as index:
+        names = [hit.qualname for hit in index.search("refund a rider", 5)]
+        return index.searcher().vectors.rebuilt, names
+
+
+def test_a_planted_vector_file_is_never_loaded(sample_copy: Path) -> None:
+    """A vectors.hnsw changed behind codeseek's back (planted, or a failing disk) is
+    rebuilt from SQLite, never read by hnswlib: an entry point far out of range made
+    the library read out of bounds (the process died on SIGSEGV)."""
+    index_quietly(sample_copy)
+    hnsw = sample_copy / ".codeseek" / "vectors.hnsw"
+    rebuilt, wanted = _sealed_searcher_state(sample_copy)
+    assert rebuilt is False  # codeseek's own sealed file is loaded
+    data = bytearray(hnsw.read_bytes())
+    # hnswlib's saveIndex layout (hnswalg.h): six size_t fields, then maxlevel (int32)
+    # and enterpoint_node (uint32) at byte 52
+    data[52:56] = (0x7FFFFF00).to_bytes(4, "little")
+    hnsw.write_bytes(bytes(data))
+    probe = ("from pathlib import Path; from codeseek import open_index, FakeEmbedder\n"
+             f"index = open_index(Path({str(sample_copy)!r}), embedder=FakeEmbedder())\n"
+             "print([h.qualname for h in index.search('refund a rider', 5)])\n")
+    result = subprocess.run([sys.executable, "-c", probe], capture_output=True, text=True,
+                            timeout=120)  # a child process: a crash must not take pytest down
+    assert result.returncode == 0, result.stderr
+    assert result.stdout.strip() == repr(wanted)
+
+
+def test_a_vector_file_with_another_users_seal_is_rebuilt(
+        sample_copy: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    index_quietly(sample_copy)
+    _, wanted = _sealed_searcher_state(sample_copy)
+    # the same index read by a user whose key differs: the seal does not verify
+    monkeypatch.setenv("CODESEEK_CACHE_DIR", str(tmp_path / "other-user-cache"))
+    rebuilt, names = _sealed_searcher_state(sample_copy)
+    assert rebuilt is True and names == wanted
+    key = tmp_path / "other-user-cache" / "seal.key"
+    assert stat.S_IMODE(key.stat().st_mode) == 0o600 and len(key.read_bytes()) == 32
+    rebuilt, _ = _sealed_searcher_state(sample_copy)  # saved again under this user's seal
+    assert rebuilt is False
+
+
+def test_a_seal_key_that_is_a_link_is_not_used(sample_copy: Path, tmp_path: Path,
+                                               monkeypatch: pytest.MonkeyPatch) -> None:
+    cache = tmp_path / "cache"
+    cache.mkdir()
+    planted = tmp_path / "planted.key"
+    planted.write_bytes(b"k" * 32)
+    (cache / "seal.key").symlink_to(planted)
+    monkeypatch.setenv("CODESEEK_CACHE_DIR", str(cache))
+    index_quietly(sample_copy)
+    rebuilt, names = _sealed_searcher_state(sample_copy)
+    assert rebuilt is True and names  # nothing verifies; search still answers
+    assert planted.read_bytes() == b"k" * 32
+
+
 # == terminal output: control characters escaped, JSON exact ==
 
 # The sequence sets the window title (OSC 0, ended by BEL) and clears the screen
