@@ -361,3 +361,27 @@ def test_cli_missing_question_file_and_folder(indexed: Path, tmp_path: Path) -> 
     code, out, err = run_cli("eval", str(indexed), "--backend", "fake", "--questions",
                              str(tmp_path))
     assert (code, out, err) == (1, "", f"error: {tmp_path}: a folder, not a question file\n")
+
+
+def test_the_html_page_shows_name_blind_and_questions(fake_index: Index, tmp_path: Path) -> None:
+    from codeseek.evaluate import render_html
+
+    records = QUESTIONS[:2] + [{"question": "<script>x</script> where",
+                                "answers": [{"path": "python/old.py", "qualname": "gone"}]}]
+    report = fake_index.evaluate(questions=write_questions(tmp_path / "q.jsonl", records))
+    page = render_html(report)
+    assert "<h2>Name-blind: each held-out doc without its unit's identifiers</h2>" in page
+    assert f"<h2>Questions: 3 from {tmp_path / 'q.jsonl'}</h2>" in page
+    assert "<li>line 3 (not ranked): &lt;script&gt;x&lt;/script&gt; where</li>" in page
+    assert "<script>" not in page
+
+
+def test_c_identifiers_are_read_with_the_macros_blanked() -> None:
+    # the grammar reads what the index's parser reads: an annotation macro blanked out
+    code = ("static int count_free_docks(const struct dock *docks, int n) MUST_CHECK {\n"
+            "    int free_slots = 0;\n"
+            "    for (int i = 0; i < n; i++) free_slots += docks[i].free;\n"
+            "    return free_slots;\n}\n")
+    unit = py_unit(code, "count_free_docks", "count_free_docks", "c")
+    assert unit_identifiers(unit) == {"count_free_docks", "dock", "docks", "n", "free_slots",
+                                      "i", "free"}

@@ -42,8 +42,9 @@ def _tree_identifiers(unit: CodeUnit) -> list[str] | None:
     except UnsupportedLanguage:
         return None
     source = unit.code_without_doc.encode("utf-8", "surrogatepass")
+    readable = spec.prepare(source) if spec.prepare is not None else source  # moves no byte
     try:
-        tree = _parser(spec).parse(source)
+        tree = _parser(spec).parse(readable)
     except (ValueError, RuntimeError):
         return None
     return [source[node.start_byte:node.end_byte].decode("utf-8", "replace")
