@@ -37,6 +37,7 @@ from codeseek.errors import (
     InvalidSplit,
     ModelMismatch,
     RepositoryNotFound,
+    TooFewExamples,
 )
 from codeseek.indexer import (
     ProgressCallback,
@@ -291,15 +292,26 @@ class Index:
         """
         from dataclasses import replace
 
-        from codeseek.evaluate import evaluate_units
+        from codeseek.evaluate import EvalReport, evaluate_units
 
         searcher = self.searcher()
         split = self._split(holdout, seed, by_file, searcher.adapter)
         asked = self.evaluate_questions(questions, seed=split.seed)  # a bad file fails first
         units = [stored.unit for stored in self.store.iter_units()]
-        report = evaluate_units(units, searcher.embedder, repository=str(self.settings.repo),
-                                split=split, fusion=searcher.fusion, adapter=searcher.adapter,
-                                cache=self._eval_cache(), progress=progress)
+        try:
+            report = evaluate_units(units, searcher.embedder,
+                                    repository=str(self.settings.repo), split=split,
+                                    fusion=searcher.fusion, adapter=searcher.adapter,
+                                    cache=self._eval_cache(), progress=progress)
+        except TooFewExamples as exc:
+            if asked is None:
+                raise
+            # a repository with few docs can still be checked on its own questions
+            return EvalReport(repository=str(self.settings.repo), model=searcher.model_id,
+                              split=split, holdout=0, training=0, corpus=len(units),
+                              results=(), fusion=searcher.fusion,
+                              adapter=searcher.adapter is not None, notes=(str(exc),),
+                              questions=asked)
         return report if asked is None else replace(report, questions=asked)
 
     def question_file(self) -> Path | None:

@@ -27,6 +27,7 @@ from codeseek.evaluate import (
 )
 from codeseek.evaluate.questions import DEPTH as QUESTION_DEPTH
 from codeseek.evaluate.questions import QUESTIONS_NAME, question_rows
+from codeseek.search import SearchHit
 from codeseek.units import CodeUnit, split_identifier
 
 # -- name-blind queries: exact cases ---------------------------------------------------------
@@ -385,3 +386,40 @@ def test_c_identifiers_are_read_with_the_macros_blanked() -> None:
     unit = py_unit(code, "count_free_docks", "count_free_docks", "c")
     assert unit_identifiers(unit) == {"count_free_docks", "dock", "docks", "n", "free_slots",
                                       "i", "free"}
+
+
+def test_a_repository_with_too_few_docs_is_still_checked_on_its_questions(
+        tmp_path: Path) -> None:
+    root = tmp_path / "tiny"
+    (root / "fares").mkdir(parents=True)
+    (root / "fares" / "day.py").write_text(
+        "def day_pass_price(zone):\n    return 4 + zone\n\n\n"
+        "def refund_late_ride(ride):\n    ride.refunded = True\n", encoding="utf-8")
+    code, _, err = run_cli("index", str(root), "--backend", "fake", "-q")
+    assert code == 0, err
+    code, out, err = run_cli("eval", str(root), "--backend", "fake")
+    assert (code, err.splitlines()[-1]) == (1, (
+        "error: no held-out docstrings to check: 0 units have a doc of at least 3 words; "
+        "document more code or raise --holdout"))
+    source = write_questions(tmp_path / "q.jsonl", [
+        {"question": "how much is a pass for a whole day",
+         "answers": [{"path": "fares/day.py", "qualname": "day_pass_price"}]}])
+    code, out, err = run_cli("eval", str(root), "--backend", "fake", "--questions",
+                             str(source), "--json")
+    assert code == 0, err
+    data = json.loads(out)
+    assert data["results"] == [] and data["holdout"] == 0
+    assert data["notes"] == ["no held-out docstrings to check: 0 units have a doc of at least "
+                             "3 words; document more code or raise --holdout"]
+    expected = [(h.path, h.qualname) for h in _search(root, "how much is a pass for a whole day")]
+    rank = expected.index(("fares/day.py", "day_pass_price")) + 1
+    assert data["questions"]["mrr@10"] == pytest.approx(1 / rank)
+    code, out, _ = run_cli("eval", str(root), "--backend", "fake", "--questions", str(source))
+    assert code == 0 and "\nquestions: 1 from " in out and "method " not in out
+
+
+def _search(root: Path, query: str) -> list[SearchHit]:
+    from codeseek import FakeEmbedder, open_index
+
+    with open_index(root, embedder=FakeEmbedder()) as index:
+        return list(index.search(query, k=10))

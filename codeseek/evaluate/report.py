@@ -164,9 +164,10 @@ class EvalReport:
                    if self.adapter else "")
         lines = [f"recall checks on {self.holdout} held-out docstrings of {self.repository}",
                  f"({self.split.describe()}; model {self.model}; served ranking: "
-                 f"{_fusion_words(self.fusion)}{adapter})", "",
-                 f"{'method':<10} {'pool':>7} {'n':>6}  {'R@1':>6} {'R@5':>6} {'R@10':>6}  "
-                 f"{'MRR':>6}  95% interval"]
+                 f"{_fusion_words(self.fusion)}{adapter})"]
+        if self.results:  # none: too few docs, only the questions were checked
+            lines.extend(["", f"{'method':<10} {'pool':>7} {'n':>6}  {'R@1':>6} {'R@5':>6} "
+                          f"{'R@10':>6}  {'MRR':>6}  95% interval"])
         lines.extend(_row(result) for result in self.results)
         blind = self.name_blind
         if blind is not None:
