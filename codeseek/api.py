@@ -37,6 +37,7 @@ from codeseek.errors import (
     InvalidSplit,
     ModelMismatch,
     RepositoryNotFound,
+    TooFewExamples,
 )
 from codeseek.indexer import (
     ProgressCallback,
@@ -53,6 +54,7 @@ from codeseek.vectors import HNSW_NAME, VectorIndex
 
 if TYPE_CHECKING:
     from codeseek.evaluate import EvalReport, Progress, Split, VectorCache
+    from codeseek.evaluate.questions import QuestionReport
     from codeseek.tune import TuneReport
 
 LOCK_NAME = "writer.lock"
@@ -279,20 +281,68 @@ class Index:
     # -- recall checks and tuning ------------------------------------------------------
 
     def evaluate(self, *, holdout: float | None = None, seed: int | None = None,
-                 by_file: bool | None = None, progress: Progress | None = None) -> EvalReport:
-        """Recall checks on held-out docstrings (:mod:`codeseek.evaluate`).
+                 by_file: bool | None = None, questions: Path | None = None,
+                 progress: Progress | None = None) -> EvalReport:
+        """Recall checks on held-out docstrings (:mod:`codeseek.evaluate`), the name-blind
+        protocol beside them, and the question checks of ``questions`` (default: the
+        index folder's ``questions.jsonl``, if there is one).
 
         The split defaults to the one the index's query adapter was trained
         with, if it has one (a different split would test on training pairs).
         """
-        from codeseek.evaluate import evaluate_units
+        from dataclasses import replace
+
+        from codeseek.evaluate import EvalReport, evaluate_units
 
         searcher = self.searcher()
         split = self._split(holdout, seed, by_file, searcher.adapter)
+        asked = self.evaluate_questions(questions, seed=split.seed)  # a bad file fails first
         units = [stored.unit for stored in self.store.iter_units()]
-        return evaluate_units(units, searcher.embedder, repository=str(self.settings.repo),
-                              split=split, fusion=searcher.fusion, adapter=searcher.adapter,
-                              cache=self._eval_cache(), progress=progress)
+        try:
+            report = evaluate_units(units, searcher.embedder,
+                                    repository=str(self.settings.repo), split=split,
+                                    fusion=searcher.fusion, adapter=searcher.adapter,
+                                    cache=self._eval_cache(), progress=progress)
+        except TooFewExamples as exc:
+            if asked is None:
+                raise
+            # a repository with few docs can still be checked on its own questions
+            return EvalReport(repository=str(self.settings.repo), model=searcher.model_id,
+                              split=split, holdout=0, training=0, corpus=len(units),
+                              results=(), fusion=searcher.fusion,
+                              adapter=searcher.adapter is not None, notes=(str(exc),),
+                              questions=asked)
+        return report if asked is None else replace(report, questions=asked)
+
+    def question_file(self) -> Path | None:
+        """The index folder's question file, if there is one (never through a link)."""
+        from codeseek.evaluate.questions import QUESTIONS_NAME
+
+        path = self.settings.index_dir / QUESTIONS_NAME
+        return path if safefs.lstat_or_none(path) is not None else None
+
+    def evaluate_questions(self, path: Path | None = None, *,
+                           seed: int = 0) -> QuestionReport | None:
+        """The question checks of a question file (:mod:`codeseek.evaluate.questions`),
+        asked through :meth:`search`; without ``path``, the index folder's question
+        file, and None when it has none."""
+        from codeseek.evaluate.questions import check_questions, load_questions
+
+        own = path is None
+        path = self.question_file() if path is None else path
+        if path is None:
+            return None
+        questions = load_questions(path, in_index_dir=own)
+        searcher = self.searcher()
+        known = {(s.unit.path, s.unit.qualname) for s in self.store.iter_units()}
+
+        def ask(texts: list[str], depth: int) -> list[list[tuple[str, str]]]:
+            return [[(hit.path, hit.qualname) for hit in hits]
+                    for hits in self.search_many(texts, depth)]
+
+        return check_questions(questions, ask, known, source=str(path),
+                               corpus=self.store.counts()["units"],
+                               seed=seed, adapter=searcher.adapter is not None)
 
     def tune(self, *, holdout: float | None = None, seed: int | None = None,
              by_file: bool | None = None, batch_size: int | None = None,

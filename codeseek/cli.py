@@ -766,9 +766,15 @@ def _eval_parser(commands: Any) -> None:
         "eval", help="measure how well search finds this repository's held-out docstrings",
         description="Recall checks: hold out a share of the documented units, search for each "
                     "by its doc summary among code with the docs removed, and report recall@1, "
-                    "@5, @10 and MRR for keyword, dense, HNSW and served search.")
+                    "@5, @10 and MRR for keyword, dense, HNSW and served search; the same "
+                    "with each unit's identifiers removed from its doc (name-blind); and, "
+                    "with a question file, hit@1, @5, @10 and MRR@10 of its questions as "
+                    "search serves them.")
     _repo_arguments(evaluate)
     _split_arguments(evaluate)
+    evaluate.add_argument("--questions", metavar="FILE",
+                          help="also score a JSON Lines file of questions and their answers "
+                               "(default: questions.jsonl in the index folder, if present)")
     evaluate.add_argument("--json", action="store_true", help="one JSON document")
     evaluate.add_argument("--html", metavar="FILE",
                           help="also write a small self-contained HTML report to FILE")
@@ -833,6 +839,7 @@ def cmd_eval(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         check_report_path(Path(args.html))
     with _open(_one_repo(args), args, create=False) as index:
         report = index.evaluate(holdout=args.holdout, seed=args.seed, by_file=args.by_file,
+                                questions=Path(args.questions) if args.questions else None,
                                 progress=_LineProgress(err))
     if args.html:
         write_html(report, Path(args.html))

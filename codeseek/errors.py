@@ -29,6 +29,7 @@ where they are raised, with ``raise ... from exc``.
     ├── TooFewExamples           too few documented units (or too small a batch) to check
     │                            or tune on
     ├── ReportWriteError         the recall checks' HTML report could not be written
+    ├── QuestionFileError        a question file is missing, unreadable or malformed
     └── DaemonError              a running daemon broke off, timed out or answered garbage
 """
 
@@ -105,6 +106,10 @@ class TooFewExamples(CodeseekError):
 
 class ReportWriteError(CodeseekError):
     """The HTML report of the recall checks could not be written."""
+
+
+class QuestionFileError(CodeseekError):
+    """A question file (``codeseek eval --questions``) cannot be read or is malformed."""
 
 
 class DaemonError(CodeseekError):

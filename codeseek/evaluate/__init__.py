@@ -25,21 +25,31 @@ only), ``dense`` (exact cosine), ``dense-ann`` (the same through an HNSW
 index, whole index only) and ``served`` (the ranking search returns). Metrics:
 recall@1/5/10 and MRR, each with a percentile-bootstrap 95% interval.
 
+Beside them, the name-blind protocol: the same held-out docs with every
+identifier of their unit (name, qualified-name parts, the code's identifier
+tokens) and their split words removed, every method over the whole index, so
+the figure no longer rewards a doc that repeats its code's names. And, given
+a file of questions with their acceptable answers, the question checks:
+each question asked exactly as search serves it, hit@1/5/10 and MRR@10.
+
 Modules, one per concern: ``queries`` (cleaning docs into queries, duplicate
 keys), ``split`` (held-out and training pairs), ``cache`` (vectors kept
 between runs), ``documents`` (the doc-less index and the pools), ``metrics``
-(ranks, recall@k, MRR, intervals), ``signals`` (what each side ranks, and the
+(ranks, recall@k, MRR, intervals), ``blind`` (name-blind queries),
+``questions`` (question files and their checks), ``signals`` (what each side ranks, and the
 served fusion), ``report`` (text and JSON), ``page`` (HTML) and ``check``
 (the whole check). This module exports their public parts.
 """
 
 from __future__ import annotations
 
+from codeseek.evaluate.blind import blind_words, name_blind_query, unit_identifiers
 from codeseek.evaluate.cache import CACHE_NAME, Progress, VectorCache, encode_cached, text_key
 from codeseek.evaluate.check import (
     Prepared,
     evaluate_prepared,
     evaluate_units,
+    name_blind_cases,
     prepare,
     query_matrix,
 )
@@ -71,7 +81,18 @@ from codeseek.evaluate.queries import (
     query_of,
     strip_leading_name,
 )
-from codeseek.evaluate.report import EvalReport, Lead, build_report
+from codeseek.evaluate.questions import (
+    QUESTIONS_NAME,
+    Answer,
+    Question,
+    QuestionReport,
+    QuestionResult,
+    Stale,
+    check_questions,
+    load_questions,
+    parse_questions,
+)
+from codeseek.evaluate.report import EvalReport, Lead, NameBlind, build_report
 from codeseek.evaluate.signals import (
     DEPTH,
     FUSION_GRID,
@@ -89,6 +110,9 @@ from codeseek.evaluate.split import Case, Selection, Split, select_cases
 from codeseek.search import CANDIDATES
 
 __all__ = [
+    "Answer", "NameBlind", "QUESTIONS_NAME", "Question", "QuestionReport", "QuestionResult",
+    "Stale", "blind_words", "check_questions", "load_questions", "name_blind_cases",
+    "name_blind_query", "parse_questions", "unit_identifiers",
     "CACHE_NAME", "CANDIDATES", "Case", "CaseSignals", "DEPTH", "DocumentIndex", "EvalReport",
     "FUSION_GRID", "Lead", "MIN_QUERY_WORDS", "MethodResult", "POOL_SIZES", "Pool",
     "PoolSampler", "Prepared", "Progress", "Selection", "Signals", "Split", "VectorCache",

@@ -99,6 +99,7 @@ def render_html(report: EvalReport) -> str:
         sections.append(f"<h2>{esc(title)}</h2><figure>{_svg_recall_curve(chosen)}"
                         f"<figcaption>recall@k, k = 1..20</figcaption></figure>"
                         f"<div class=row>{histograms}</div>")
+    sections.extend(_extra_sections(report))
     notes = "".join(f"<li>{esc(n)}</li>" for n in report.notes)
     verdicts = "".join(f"<li>{esc(report.verdict(p))}</li>" for p in report.pools)
     adapter = (f", with the query adapter tuned on the {report.training} training pairs"
@@ -122,6 +123,35 @@ model {esc(report.model)}{esc(adapter)}.</p>
 <h2>How these figures were made</h2><ul>{notes}</ul>
 </body></html>
 """
+
+
+def _extra_sections(report: EvalReport) -> list[str]:
+    """The name-blind table and the question checks, when measured."""
+    esc = html.escape
+    sections = []
+    if report.name_blind is not None and report.name_blind.results:
+        rows = "".join(
+            f"<tr><td>{esc(r.method)}</td><td>{r.pool_size}</td><td>{r.n}</td>"
+            + "".join(f"<td>{r.metrics[name]:.3f}</td>" for name in metric_rows(np.zeros(0)))
+            + f"<td>{r.ci95['mrr'][0]:.3f}-{r.ci95['mrr'][1]:.3f}</td></tr>"
+            for r in report.name_blind.results)
+        sections.append(
+            "<h2>Name-blind: each held-out doc without its unit's identifiers</h2>"
+            "<table><tr><th>method</th><th>pool</th><th>n</th><th>recall@1</th>"
+            "<th>recall@5</th><th>recall@10</th><th>MRR</th><th>MRR 95% interval</th></tr>"
+            f"{rows}</table>")
+    asked = report.questions
+    if asked is not None:
+        cells = "".join(f"<td>{asked.metrics[name]:.3f} ({low:.3f}-{high:.3f})</td>"
+                        for name, (low, high) in asked.ci95.items())
+        missed = "".join(
+            f"<li>line {r.question.line} ({f'rank {r.rank}' if r.rank else 'not ranked'}): "
+            f"{esc(r.question.text)}</li>" for r in asked.missed)
+        sections.append(
+            f"<h2>Questions: {len(asked.results)} from {esc(asked.source)}</h2>"
+            "<table><tr><th>hit@1</th><th>hit@5</th><th>hit@10</th><th>MRR@10</th></tr>"
+            f"<tr>{cells}</tr></table><p>missed (not in the top 10):</p><ul>{missed}</ul>")
+    return sections
 
 
 def check_report_path(path: Path) -> None:

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 from codeseek.evaluate.documents import POOL_SIZES, WHOLE, Pool
 from codeseek.evaluate.metrics import MethodResult, mrr_difference, summarise
@@ -12,7 +13,33 @@ from codeseek.evaluate.signals import CaseSignals
 from codeseek.evaluate.split import Case, Selection, Split
 from codeseek.search import CANDIDATES, DEFAULT_FUSION, Fusion
 
+if TYPE_CHECKING:
+    from codeseek.evaluate.questions import QuestionReport
+
 METHODS = ("lexical", "dense", "dense-ann", "served")
+
+
+@dataclass(frozen=True)
+class NameBlind:
+    """The name-blind protocol: held-out docs with their unit's identifiers removed
+    (:mod:`codeseek.evaluate.blind`), every method over the whole index.
+
+    Attributes:
+        left_out: held-out queries left with fewer than MIN_QUERY_WORDS words.
+        results: one result per method (pool "all").
+    """
+
+    left_out: int
+    results: tuple[MethodResult, ...]
+
+    def result(self, method: str) -> MethodResult | None:
+        """One method's result."""
+        return next((r for r in self.results if r.method == method), None)
+
+    def to_json(self) -> dict[str, object]:
+        """A JSON-ready dict."""
+        return {"n": self.results[0].n if self.results else 0, "left_out": self.left_out,
+                "results": [r.to_json() for r in self.results]}
 
 
 @dataclass(frozen=True)
@@ -50,6 +77,8 @@ class EvalReport:
         fusion: the served ranking rule.
         adapter: whether the served (and dense) queries went through the index's adapter.
         notes: how queries and documents were made, and what was left out.
+        name_blind: the name-blind protocol (None when it was not measured).
+        questions: the question checks (None without a question file).
     """
 
     repository: str
@@ -62,6 +91,8 @@ class EvalReport:
     fusion: Fusion = DEFAULT_FUSION
     adapter: bool = False
     notes: tuple[str, ...] = ()
+    name_blind: NameBlind | None = None
+    questions: QuestionReport | None = None
 
     def result(self, method: str, pool: Pool) -> MethodResult | None:
         """One method's result under one protocol."""
@@ -112,7 +143,7 @@ class EvalReport:
 
     def to_json(self) -> dict[str, object]:
         """One JSON document: repository, model, holdout, results, and how they were made."""
-        return {
+        record: dict[str, object] = {
             "repository": self.repository, "model": self.model, "holdout": self.holdout,
             "training": self.training, "corpus": self.corpus, "split": self.split.to_json(),
             "fusion": self.fusion.to_json(), "adapter": self.adapter,
@@ -121,6 +152,11 @@ class EvalReport:
             "tied": {str(pool): self.tied(pool) for pool in self.pools},
             "notes": list(self.notes),
         }
+        if self.name_blind is not None:
+            record["name_blind"] = self.name_blind.to_json()
+        if self.questions is not None:
+            record["questions"] = self.questions.to_json()
+        return record
 
     def to_text(self) -> str:
         """The readable table the command line prints."""
@@ -128,20 +164,33 @@ class EvalReport:
                    if self.adapter else "")
         lines = [f"recall checks on {self.holdout} held-out docstrings of {self.repository}",
                  f"({self.split.describe()}; model {self.model}; served ranking: "
-                 f"{_fusion_words(self.fusion)}{adapter})", "",
-                 f"{'method':<10} {'pool':>7} {'n':>6}  {'R@1':>6} {'R@5':>6} {'R@10':>6}  "
-                 f"{'MRR':>6}  95% interval"]
-        for result in self.results:
-            low, high = result.ci95["mrr"]
-            metrics = result.metrics
-            lines.append(
-                f"{result.method:<10} {result.pool_size:>7} {result.n:>6}  "
-                f"{metrics['recall@1']:6.3f} {metrics['recall@5']:6.3f} "
-                f"{metrics['recall@10']:6.3f}  {result.mrr:6.3f}  {low:.3f}-{high:.3f}")
+                 f"{_fusion_words(self.fusion)}{adapter})"]
+        if self.results:  # none: too few docs, only the questions were checked
+            lines.extend(["", f"{'method':<10} {'pool':>7} {'n':>6}  {'R@1':>6} {'R@5':>6} "
+                          f"{'R@10':>6}  {'MRR':>6}  95% interval"])
+        lines.extend(_row(result) for result in self.results)
+        blind = self.name_blind
+        if blind is not None:
+            lines.extend(["", "name-blind: the same held-out docs with every identifier of "
+                          "their unit (and its split words) removed, over the whole index"])
+            lines.extend(_row(result) for result in blind.results)
+            if blind.left_out:
+                lines.append(f"({blind.left_out} held-out docs left out: under "
+                             f"{MIN_QUERY_WORDS} words once the names were removed)")
         lines.append("")
         lines.extend(self.verdict(pool) for pool in self.pools)
         lines.extend(f"note: {note}" for note in self.notes)
+        if self.questions is not None:
+            lines.extend(["", self.questions.to_text()])
         return "\n".join(lines)
+
+
+def _row(result: MethodResult) -> str:
+    low, high = result.ci95["mrr"]
+    metrics = result.metrics
+    return (f"{result.method:<10} {result.pool_size:>7} {result.n:>6}  "
+            f"{metrics['recall@1']:6.3f} {metrics['recall@5']:6.3f} "
+            f"{metrics['recall@10']:6.3f}  {result.mrr:6.3f}  {low:.3f}-{high:.3f}")
 
 
 def _interval(bounds: tuple[float, float]) -> str:
