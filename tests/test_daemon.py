@@ -215,7 +215,7 @@ def raw_exchange(path: Path, payload: bytes) -> bytes:
 
 def test_oversized_request_is_refused(daemon: Daemon) -> None:
     path = daemon.index.settings.index_dir / SOCKET_NAME
-    answer = raw_exchange(path, b'{"v": 1, "op": "search", "queries": ["' +
+    answer = raw_exchange(path, b'{"v": 2, "op": "search", "queries": ["' +
                           b"x" * (MAX_REQUEST_BYTES + 10) + b'"]}\n')
     response = json.loads(answer.splitlines()[0])
     assert response["ok"] is False and "request too large" in response["error"]
@@ -225,13 +225,21 @@ def test_oversized_request_is_refused(daemon: Daemon) -> None:
     (b"not json\n", "malformed request"),
     (b"[1, 2]\n", "malformed request"),
     (b'{"v": 99, "op": "search"}\n', "unsupported protocol version"),
-    (b'{"v": 1, "op": "read_file", "path": "/etc/passwd"}\n', "unknown op"),
-    (b'{"v": 1, "op": "search", "queries": "x"}\n', "'queries' must be a list"),
+    (b'{"v": 2, "op": "read_file", "path": "/etc/passwd"}\n', "unknown op"),
+    (b'{"v": 2, "op": "search", "queries": "x"}\n', "'queries' must be a list"),
+    (b'{"v": 2, "op": "search", "queries": ["x"]}\n', "a query must be an object"),
     # below 1: the same words as the in-process search (codeseek.search)
-    (b'{"v": 1, "op": "search", "queries": ["x"], "k": 0}\n', "-k must be at least 1, not 0"),
-    (b'{"v": 1, "op": "search", "queries": ["x"], "k": 2147483648}\n', "'k' must be"),
-    (b'{"v": 1, "op": "neighbours", "unit_id": "7"}\n', "'unit_id' must be"),
-    (b'{"v": 1, "op": "neighbours", "unit_id": 999999}\n', "no longer in the index"),
+    (b'{"v": 2, "op": "search", "queries": [{"text": "x", "k": 0}]}\n',
+     "-k must be at least 1, not 0"),
+    (b'{"v": 2, "op": "search", "queries": [{"text": "x", "k": 2147483648}]}\n', "'k' must be"),
+    (b'{"v": 2, "op": "search", "queries": [{"text": "x", "filters": {"since": "3d"}}]}\n',
+     "'since' must be a time in seconds since 1970, or null"),
+    (b'{"v": 2, "op": "search", "queries": [{"text": "x", "filters": {"colour": []}}]}\n',
+     "unknown filter 'colour'"),
+    (b'{"v": 2, "op": "search", "queries": [{"unit_id": 7}]}\n', "holds a text"),
+    (b'{"v": 2, "op": "neighbours", "query": {"unit_id": "7"}}\n', "'unit_id' must be"),
+    (b'{"v": 2, "op": "neighbours", "query": {"text": "x"}}\n', "holds 'unit_id'"),
+    (b'{"v": 2, "op": "neighbours", "query": {"unit_id": 999999}}\n', "no longer in the index"),
 ])
 def test_bad_requests_get_clear_errors(daemon: Daemon, line: bytes, words: str) -> None:
     response = json.loads(raw_exchange(daemon.index.settings.index_dir / SOCKET_NAME, line))
@@ -244,11 +252,11 @@ def test_bad_requests_get_clear_errors(daemon: Daemon, line: bytes, words: str) 
     st.binary(max_size=300),
     st.dictionaries(st.text(max_size=8), st.one_of(st.none(), st.integers(), st.text(max_size=20),
                     st.lists(st.text(max_size=10), max_size=3)), max_size=5).map(
-        lambda d: json.dumps({"v": 1, **d}).encode()),
+        lambda d: json.dumps({"v": 2, **d}).encode()),
 ))
 def test_fuzzed_requests_never_break_the_daemon(daemon: Daemon, payload: bytes) -> None:
     response = daemon.handle_line(payload)
-    assert response["v"] == 1 and isinstance(response["ok"], bool)
+    assert response["v"] == 2 and isinstance(response["ok"], bool)
     if not response["ok"]:
         assert isinstance(response["error"], str) and response["error"]
     for hits in response.get("results", []):
@@ -263,7 +271,7 @@ def test_the_neighbours_op_answers_as_the_library(daemon: Daemon, client: Daemon
         h.unit_id for h in daemon.index.neighbours(own.unit_id, 6, languages=["python"])]
     assert served and {h.query for h in served} == {f"neighbours of {own.qualname}"}
     # the op's old name is gone, and the error names the ops there are
-    response = daemon.handle_line(b'{"v": 1, "op": "similar", "unit_id": 1}')
+    response = daemon.handle_line(b'{"v": 2, "op": "similar", "query": {"unit_id": 1}}')
     assert response["error"] == "unknown op 'similar'; use search, neighbours, status or shutdown"
 
 
@@ -584,19 +592,30 @@ def test_a_batch_is_split_to_fit_the_daemons_limits() -> None:
         search_requests,
     )
 
-    filters: dict[str, list[str]] = {"languages": [], "paths": [], "kinds": []}
+    from codeseek.query import Filters, Query
+
+    def batch(texts: list[str], k: int) -> list[Query]:
+        return [Query(text=text, k=k, filters=Filters(("python",))) for text in texts]
+
+    def texts(request: dict[str, Any]) -> list[str]:
+        return [query["text"] for query in request["queries"]]
+
     queries = [f"query {n} " + "é" * (n % 50) for n in range(2500)]
     for k in (10, 5000, 2**40):
-        requests = search_requests(queries, k, filters)
-        assert [q for request in requests for q in request["queries"]] == queries  # in order
+        requests = search_requests(batch(queries, k))
+        assert [q for request in requests for q in texts(request)] == queries  # in order
         for request in requests:
+            sent_k = request["queries"][0]["k"]
+            assert {query["k"] for query in request["queries"]} == {sent_k}
+            assert {tuple(query["filters"]["languages"]) for query in request["queries"]} == \
+                {("python",)}
             assert len(request["queries"]) <= min(QUERIES_PER_REQUEST, MAX_QUERIES)
-            assert len(request["queries"]) * request["k"] <= max(HITS_PER_REQUEST, request["k"])
-            assert len(json.dumps({"v": 1, **request})) + 1 <= REQUEST_BYTES
-    assert len(search_requests(queries, 10, filters)) == 2500 // QUERIES_PER_REQUEST
-    assert search_requests(queries, 2**40, filters)[0]["k"] == 2**31 - 1
+            assert len(request["queries"]) * sent_k <= max(HITS_PER_REQUEST, sent_k)
+            assert len(json.dumps({"v": 2, **request})) + 1 <= REQUEST_BYTES
+    assert len(search_requests(batch(queries, 10))) == 2500 // QUERIES_PER_REQUEST
+    assert search_requests(batch(queries, 2**40))[0]["queries"][0]["k"] == 2**31 - 1
     big = "x" * (2 * REQUEST_BYTES)  # one query over the usual size goes alone, whole
-    assert [r["queries"] for r in search_requests(["a", big, "b"], 10, filters)] == \
+    assert [texts(r) for r in search_requests(batch(["a", big, "b"], 10))] == \
         [["a"], [big], ["b"]]
 
 
@@ -635,9 +654,9 @@ def fake_daemon(path: Path, reply: bytes) -> threading.Thread:
 
 @pytest.mark.parametrize("reply, reason", [
     (b"", "it closed the connection"),
-    (b'{"v": 1, "ok": true, "results": [[{"path": "x"', "its answer broke off"),
+    (b'{"v": 2, "ok": true, "results": [[{"path": "x"', "its answer broke off"),
     (b"<html>\n", "its answer is not JSON"),
-    (b'{"v": 1, "ok": true, "results": []}\n', "its answer does not match the request"),
+    (b'{"v": 2, "ok": true, "results": []}\n', "its answer does not match the request"),
 ])
 def test_a_daemon_that_fails_is_an_error_not_a_quiet_fallback(
         fake_index: Index, monkeypatch: pytest.MonkeyPatch, reply: bytes, reason: str) -> None:
