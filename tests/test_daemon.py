@@ -17,6 +17,7 @@ import threading
 import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -591,11 +592,10 @@ def test_a_batch_is_split_to_fit_the_daemons_limits() -> None:
         REQUEST_BYTES,
         search_requests,
     )
-
     from codeseek.query import Filters, Query
 
-    def batch(texts: list[str], k: int) -> list[Query]:
-        return [Query(text=text, k=k, filters=Filters(("python",))) for text in texts]
+    def batch(lines: list[str], k: int) -> list[Query]:
+        return [Query(text=text, k=k, filters=Filters(("python",))) for text in lines]
 
     def texts(request: dict[str, Any]) -> list[str]:
         return [query["text"] for query in request["queries"]]
@@ -711,3 +711,117 @@ def test_the_log_names_the_updated_paths(fake_index: Index) -> None:
     odd.write_text('def ring():\n    """Ring."""\n', encoding="utf-8")
     assert watcher.apply({"python/harbour/bell\x1b[2J.py"})
     assert logged[-1].startswith("codeseek: updated python/harbour/bell\\x1b[2J.py: +1 ~0 -0")
+
+
+# -- the query seam ------------------------------------------------------------------------
+
+
+def age_files(repo: Path, old: float) -> set[str]:
+    """Set every Go and Rust file's modification time to ``old``; the paths set."""
+    aged: set[str] = set()
+    for path in sorted(repo.rglob("*")):
+        if path.suffix in (".go", ".rs") and ".codeseek" not in path.parts:
+            os.utime(path, (old, old))
+            aged.add(path.relative_to(repo).as_posix())
+    return aged
+
+
+def seam_queries(unit_id: int, now: float) -> list[object]:
+    from codeseek.query import Filters, Query
+
+    return [
+        Query(text="refund a rider", k=8),
+        Query(text="decode dock packet", k=5, filters=Filters(languages=("Go",))),
+        Query(text="plan the van route", k=6, filters=Filters(kinds=("function",))),
+        Query(text="fare for a ride", k=7, filters=Filters(paths=("rust/**",),
+                                                             kinds=("struct",))),
+        Query(text="parse a packet", k=9, filters=Filters(since=now - 3600)),
+        Query(text="parse a packet", k=9, filters=Filters(since=now + 86400)),
+        Query(unit_id=unit_id, k=6),
+        Query(unit_id=unit_id, k=6, filters=Filters(languages=("python",), since=now - 3600)),
+    ]
+
+
+def test_the_same_queries_give_the_same_hits_in_process_and_through_the_daemon(
+        sample_copy: Path) -> None:
+    from codeseek import SearchService, connect
+    from codeseek.client import DaemonService
+    from codeseek.query import Query
+
+    now = time.time()
+    aged = age_files(sample_copy, now - 30 * 86400)  # a month old: outside "since an hour"
+    index = open_index(sample_copy, create=True, embedder=FakeEmbedder())
+    running = Daemon(index, reconcile_seconds=3600)
+    running.start()
+    try:
+        service = connect(sample_copy, embedder=FakeEmbedder())
+        assert isinstance(service, DaemonService) and isinstance(service, SearchService)
+        unit_id = index.search("issue refund", 1)[0].unit_id
+        queries = seam_queries(unit_id, now)
+        searches = [q for q in queries if isinstance(q, Query) and q.text is not None]
+        near = [q for q in queries if isinstance(q, Query) and q.unit_id is not None]
+        served = running.queries_served
+        remote = list(service.search_many(searches))
+        remote_near = [service.neighbours(q) for q in near]
+        assert running.queries_served == served + len(searches)  # the daemon answered
+        assert not service.gone
+        local = index.search_many(searches)
+        assert remote == local  # every field of every hit: rank, score, similarity, text
+        assert remote_near == [index.neighbours(q) for q in near]
+        assert [service.search(q) for q in searches] == local
+        assert all(local[:4]) and all(remote_near)  # the filters leave something to compare
+        since_hour, since_tomorrow = local[4], local[5]
+        assert since_hour and not {h.path for h in since_hour} & aged
+        assert since_tomorrow == []
+        service.close()
+    finally:
+        running.stop()
+        index.close()
+
+
+def test_connect_picks_the_daemon_when_one_runs_and_the_index_otherwise(
+        daemon: Daemon) -> None:
+    from codeseek import Index, connect
+    from codeseek.client import DaemonService
+
+    repo = daemon.index.settings.repo
+    through = connect(repo)
+    assert isinstance(through, DaemonService)
+    status = through.daemon_status()
+    assert status is not None and (status["pid"], status["state"]) == (os.getpid(), "watching")
+    through.close()
+    for backend in ("fake", "onnx"):
+        local = connect(repo, backend=backend)  # an explicit backend: in process
+        assert isinstance(local, Index) and local.daemon_status() is None
+        local.close()
+    daemon.stop()
+    after = connect(repo, embedder=FakeEmbedder())  # no daemon: the index, in process
+    assert isinstance(after, Index)
+    assert after.search("refund a rider", 3)
+    after.close()
+
+
+def test_a_service_whose_daemon_stops_answers_in_process(daemon: Daemon) -> None:
+    from codeseek import Query, connect
+
+    repo = daemon.index.settings.repo
+    service = connect(repo, embedder=FakeEmbedder())
+    query = Query(text="refund a rider", k=4)
+    before = service.search(query)
+    assert service.daemon_status() is not None
+    index_dir = daemon.index.settings.index_dir
+    daemon.stop()
+    stale = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    stale.bind(str(index_dir / SOCKET_NAME))  # a socket nobody listens on, as after a crash
+    stale.close()
+    assert service.search(query) == before  # the same hits, found in this process
+    assert service.daemon_status() is None
+    service.close()
+
+
+def test_the_daemon_answers_an_old_protocol_request_with_a_clear_error(daemon: Daemon) -> None:
+    response = daemon.handle_line(b'{"v": 1, "op": "search", "queries": ["refund"], "k": 3}')
+    assert response == {
+        "v": 2, "ok": False, "kind": "ProtocolError",
+        "error": "unsupported protocol version 1; this daemon speaks 2 (a codeseek of "
+                 "another version sent the request; use the same codeseek for both)"}
