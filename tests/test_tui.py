@@ -1271,3 +1271,12 @@ async def test_the_ui_searches_through_a_running_daemon(index: Index, repo: Path
             assert service_state(searcher).startswith(f"daemon {os.getpid()} · watching")
     finally:
         daemon.stop()
+
+
+def test_a_since_word_becomes_a_chip_and_a_time(monkeypatch: pytest.MonkeyPatch) -> None:
+    assert take_chips("since=3d refund ") == ("refund ", [("since", "3d")])
+    chips = FilterSet().added(("language", "go")).added(("since", "12h"))
+    monkeypatch.setattr(time, "time", lambda: 1_800_000_000.0)  # an age counts back from now
+    assert chips.as_filters() == Filters(("go",), (), (), 1_800_000_000.0 - 12 * 3600)
+    with pytest.raises(InvalidQuery, match="--since wants an ISO date"):
+        FilterSet().added(("since", "soon"))
