@@ -742,7 +742,7 @@ def test_since_keeps_only_files_modified_at_or_after_the_time(sample_copy: Path)
     stamp = five_days_ago.isoformat(timespec="minutes")
     assert since_paths(sample_copy, stamp) == \
         {p for p in everything if mtimes[p] >= datetime.datetime.fromisoformat(stamp).timestamp()}
-    tomorrow = (datetime.datetime.now(datetime.timezone.utc) + datetime.timedelta(days=1))
+    tomorrow = (datetime.datetime.now(datetime.UTC) + datetime.timedelta(days=1))
     assert since_paths(sample_copy, tomorrow.isoformat()) == set()
 
 
