@@ -10,6 +10,7 @@ modules are imported inside the commands, so ``codeseek --help`` answers at once
 from __future__ import annotations
 
 import argparse
+import io
 import json
 import os
 import sys
@@ -459,8 +460,9 @@ def _read_batch(source: str) -> list[str]:
         if source == "-":
             if sys.stdin is None or sys.stdin.closed:
                 raise InvalidQuery("-: cannot read the batch: standard input is closed")
-            stream = getattr(sys.stdin, "buffer", None)
-            data = stream.read() if stream is not None else sys.stdin.read()
+            # a real stdin is read as bytes; a text stream standing in for it (tests) as text
+            data = (sys.stdin.buffer.read() if isinstance(sys.stdin, io.TextIOWrapper)
+                    else sys.stdin.read())
         else:
             data = Path(source).read_bytes()
     except FileNotFoundError as exc:
@@ -545,7 +547,6 @@ def shown_code_lines(hit: SearchHit, count: int = CODE_LINES) -> list[tuple[int,
 def _docstring_rows(code: str) -> tuple[int, int] | None:
     """The 1-based first and last rows of a Python docstring in ``code`` (a unit's first
     lines, so the docstring may run past their end), or None when there is none."""
-    import io
     import tokenize
 
     header_done = False
