@@ -17,11 +17,14 @@ _EXPORTS = {
     "Embedder": "codeseek.embed",
     "EvalReport": "codeseek.evaluate",
     "FakeEmbedder": "codeseek.embed",
-    "Filters": "codeseek.search",
+    "Filters": "codeseek.query",
     "Index": "codeseek.api",
-    "IndexStatus": "codeseek.api",
-    "SearchHit": "codeseek.search",
+    "IndexStatus": "codeseek.service",
+    "Query": "codeseek.query",
+    "SearchHit": "codeseek.hits",
+    "SearchService": "codeseek.service",
     "UpdateSummary": "codeseek.indexer",
+    "connect": "codeseek.service",
     "open_index": "codeseek.api",
 }
 
@@ -34,19 +37,24 @@ __all__ = [
     "Filters",
     "Index",
     "IndexStatus",
+    "Query",
     "SearchHit",
+    "SearchService",
     "UpdateSummary",
     "__version__",
+    "connect",
     "open_index",
 ]
 
 if TYPE_CHECKING:
-    from codeseek.api import Index, IndexStatus, open_index
+    from codeseek.api import Index, open_index
     from codeseek.embed import Embedder, FakeEmbedder
     from codeseek.errors import CodeseekError
     from codeseek.evaluate import EvalReport
+    from codeseek.hits import SearchHit
     from codeseek.indexer import UpdateSummary
-    from codeseek.search import Filters, SearchHit
+    from codeseek.query import Filters, Query
+    from codeseek.service import IndexStatus, SearchService, connect
     from codeseek.units import CodeUnit
 
 

@@ -12,9 +12,9 @@ import os
 import stat
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager, suppress
-from dataclasses import dataclass
+from itertools import groupby
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 from codeseek import safefs, seal
 from codeseek.adapter import (
@@ -47,8 +47,10 @@ from codeseek.indexer import (
     save_vectors,
 )
 from codeseek.locks import ReadWriteLock
+from codeseek.query import DEFAULT_K, Filters, Query, as_queries, filters_of
 from codeseek.scan import ScanResult, SourceFile
-from codeseek.search import DEFAULT_FUSION, Filters, Fusion, Searcher, SearchHit, neighbour_units
+from codeseek.search import DEFAULT_FUSION, Fusion, Searcher, SearchHit, neighbour_units
+from codeseek.service import IndexStatus
 from codeseek.store import DB_NAME, Store, unlink_all
 from codeseek.vectors import HNSW_NAME, VectorIndex
 
@@ -58,30 +60,6 @@ if TYPE_CHECKING:
     from codeseek.tune import TuneReport
 
 LOCK_NAME = "writer.lock"
-
-
-@dataclass(frozen=True)
-class IndexStatus:
-    """What an index holds and how fresh it is."""
-
-    repo: str
-    index_dir: str
-    files: int
-    units: int
-    languages: dict[str, int]
-    skipped: dict[str, int]
-    files_with_syntax_errors: int
-    model_id: str | None
-    dim: int | None
-    generation: int
-    vectors_in_sync: bool
-    updated_at: float | None
-    bytes_on_disk: int
-    adapter: dict[str, object] | None = None
-
-    def to_json(self) -> dict[str, object]:
-        """A JSON-ready dict."""
-        return dict(self.__dict__)
 
 
 class Index:
@@ -265,18 +243,27 @@ class Index:
                                       self.lock, adapter=adapter, fusion=_fusion_of(adapter))
         return self._searcher
 
-    def search(self, query: str, k: int = 10, *, languages: Sequence[str] = (),
+    def search(self, query: str | Query, k: int = DEFAULT_K, *,
+               filters: Filters | None = None, languages: Sequence[str] = (),
                paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
-        """The k best units for a natural-language query."""
-        filters = Filters(tuple(languages), tuple(paths), tuple(kinds))
-        return self.searcher().search(query, k, filters)
+        """The k best units for a natural-language query (a :class:`Query` carries its
+        own k and filters; the keyword filters are the older spelling of ``filters``)."""
+        return self.search_many([query], k, filters=filters, languages=languages,
+                                paths=paths, kinds=kinds)[0]
 
-    def search_many(self, queries: Sequence[str], k: int = 10, *,
-                    languages: Sequence[str] = (), paths: Sequence[str] = (),
-                    kinds: Sequence[str] = ()) -> list[list[SearchHit]]:
-        """The k best units for each of several queries."""
-        filters = Filters(tuple(languages), tuple(paths), tuple(kinds))
-        return self.searcher().search_many(queries, k, filters)
+    def search_many(self, queries: Sequence[str | Query], k: int = DEFAULT_K, *,
+                    filters: Filters | None = None, languages: Sequence[str] = (),
+                    paths: Sequence[str] = (), kinds: Sequence[str] = ()
+                    ) -> list[list[SearchHit]]:
+        """The k best units for each of several queries (each run of queries with the
+        same k and filters is embedded in one batch and answered from one state)."""
+        batch = as_queries(queries, k, filters_of(filters, languages, paths, kinds))
+        searcher = self.searcher()
+        answers: list[list[SearchHit]] = []
+        for (run_k, run_filters), run in groupby(batch, key=lambda q: (q.k, q.filters)):
+            texts = [_text_of(query) for query in run]
+            answers.extend(searcher.search_many(texts, run_k, run_filters))
+        return answers
 
     # -- recall checks and tuning ------------------------------------------------------
 
@@ -440,11 +427,20 @@ class Index:
                                "name one by its line, PATH:LINE")
         return named[0].id
 
-    def neighbours(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
+    def neighbours(self, unit: int | Query, k: int = DEFAULT_K, *,
+                   filters: Filters | None = None, languages: Sequence[str] = (),
                    paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
-        """The unit's neighbours: the k units whose meaning is nearest this one's."""
-        filters = Filters(tuple(languages), tuple(paths), tuple(kinds))
-        return neighbour_units(self.searcher(), unit_id, k, filters)
+        """The unit's neighbours: the k units whose meaning is nearest this one's (a
+        :class:`Query` names the unit by ``unit_id`` and carries its k and filters)."""
+        query = unit if isinstance(unit, Query) else Query(
+            unit_id=unit, k=k, filters=filters_of(filters, languages, paths, kinds))
+        if query.unit_id is None:
+            raise InvalidQuery("a neighbours query names a unit, not a text")
+        return neighbour_units(self.searcher(), query.unit_id, query.k, query.filters)
+
+    def daemon_status(self) -> dict[str, Any] | None:
+        """None: this index answers in process (the search service protocol)."""
+        return None
 
     def skipped_files(self) -> list[tuple[str, str]]:
         """(path, reason) of every file left out of the index, by path."""
@@ -476,6 +472,13 @@ class Index:
             bytes_on_disk=size,
             adapter=adapter_summary(self.settings.index_dir),
         )
+
+
+def _text_of(query: Query) -> str:
+    if query.text is None:
+        raise InvalidQuery("a search query holds a text; a unit's neighbours are asked "
+                           "for with neighbours()")
+    return query.text
 
 
 def _trained_split(adapter: QueryAdapter | None) -> Split | None:

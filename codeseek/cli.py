@@ -10,11 +10,12 @@ modules are imported inside the commands, so ``codeseek --help`` answers at once
 from __future__ import annotations
 
 import argparse
+import io
 import json
 import os
 import sys
 import time
-from collections.abc import Iterable, Iterator, Sequence
+from collections.abc import Iterable, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
@@ -27,12 +28,13 @@ from codeseek.errors import (
     RepositoryNotFound,
     UsageError,
 )
+from codeseek.query import Filters, Query
 
 if TYPE_CHECKING:
     from codeseek.api import Index, IndexStatus
-    from codeseek.client import DaemonClient
     from codeseek.indexer import UpdateSummary
     from codeseek.search import SearchHit
+    from codeseek.service import SearchService
 
 EXIT_OK = 0
 EXIT_ERROR = 1
@@ -60,6 +62,8 @@ def _common_index_options(parser: argparse.ArgumentParser, *, model: bool = True
                                  "(default: the packaged all-MiniLM-L6-v2)")
         parser.add_argument("--backend", choices=("onnx", "torch", "fake"),
                             help="embedding backend (default: onnx)")
+    else:
+        parser.set_defaults(model=None, backend=None)
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -106,6 +110,9 @@ def _search_parser(commands: Any) -> None:
     search.add_argument("--unit", action="append", dest="units", default=[], metavar="K",
                         help="only this unit: function, method, class, or a language's own "
                              "word for a class such as struct or trait (repeatable)")
+    search.add_argument("--since", metavar="WHEN",
+                        help="only files modified at or after WHEN: a date (2026-11-30), a "
+                             "date and time (2026-11-30T14:00) or an age (90m, 12h, 3d, 2w)")
     # the options' first names, still accepted so that scripts keep working
     search.add_argument("--lang", action="append", dest="languages", help=argparse.SUPPRESS)
     search.add_argument("--path", action="append", dest="files", help=argparse.SUPPRESS)
@@ -190,9 +197,8 @@ def _open(repo: str | None, args: argparse.Namespace, *, create: bool) -> Index:
     from codeseek.errors import IndexNotFound
 
     try:
-        index = open_index(_root(repo), index_dir=args.index_dir,
-                           model=getattr(args, "model", None),
-                           backend=getattr(args, "backend", None), create=create)
+        index = open_index(_root(repo), index_dir=args.index_dir, model=args.model,
+                           backend=args.backend, create=create)
     except IndexNotFound as exc:
         raise IndexNotFound(f"{exc}{NO_INDEX_HINT}") from exc
     try:
@@ -201,6 +207,20 @@ def _open(repo: str | None, args: argparse.Namespace, *, create: bool) -> Index:
         index.close()
         raise
     return index
+
+
+def _connect(repo: str | None, args: argparse.Namespace, err: TextIO) -> SearchService:
+    """The search service of the index (a running daemon or this process: see
+    :func:`codeseek.connect`), after the same checks as :func:`_open`."""
+    from codeseek.errors import IndexNotFound
+    from codeseek.service import connect
+
+    try:
+        return connect(_root(repo), index_dir=args.index_dir, model=args.model,
+                       backend=args.backend, check=_check_repository,
+                       notice=lambda message: print(message, file=err))
+    except IndexNotFound as exc:
+        raise IndexNotFound(f"{exc}{NO_INDEX_HINT}") from exc
 
 
 NO_INDEX_HINT = "; for an index built elsewhere, give --index-dir DIR or set CODESEEK_INDEX_DIR"
@@ -225,30 +245,6 @@ def _check_repository(index: Index) -> None:
                          f"--index-dir for {settings.repo}")
 
 
-def _running_daemon_pid(repo: str | None, args: argparse.Namespace) -> int | None:
-    """The pid of a daemon that answers on this index's socket, if one does."""
-    from codeseek.client import DaemonClient, DaemonUnavailable
-    from codeseek.config import load_settings
-
-    client = DaemonClient(load_settings(_root(repo), index_dir=args.index_dir).index_dir)
-    try:
-        return int(client.status()["daemon"]["pid"])
-    except (DaemonUnavailable, CodeseekError, KeyError, TypeError, ValueError):
-        return None
-
-
-def _daemon_client(repo: str | None, args: argparse.Namespace) -> DaemonClient | None:
-    """A client of the daemon serving this index, if one runs and fits the options."""
-    from codeseek.client import DaemonClient
-    from codeseek.config import load_settings
-
-    if getattr(args, "model", None) or getattr(args, "backend", None):
-        return None  # an explicit model or backend is answered in this process
-    settings = load_settings(_root(repo), index_dir=args.index_dir)
-    client = DaemonClient(settings.index_dir)
-    return client if client.socket_path.exists() else None
-
-
 # -- index -------------------------------------------------------------------------
 
 
@@ -256,7 +252,7 @@ def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     from codeseek.api import remove_index_files
     from codeseek.config import load_settings
 
-    daemon_pid = _running_daemon_pid(args.path, args)
+    daemon_pid = _running_daemon_pid(args)
     if daemon_pid is not None:
         if args.rebuild:
             raise IndexLocked(f"a codeseek daemon (pid {daemon_pid}) watches this index; "
@@ -281,6 +277,17 @@ def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         print(f"warning: {len(summary.syntax_warnings) - 20} more files with syntax errors "
               "(see `codeseek status`)", file=err)
     return EXIT_OK
+
+
+def _running_daemon_pid(args: argparse.Namespace) -> int | None:
+    """The pid of a daemon that answers on this index's socket, if one does."""
+    from codeseek.service import daemon_status
+
+    try:
+        daemon = daemon_status(_root(args.path), index_dir=args.index_dir)
+        return None if daemon is None else int(daemon["pid"])
+    except (CodeseekError, KeyError, TypeError, ValueError):
+        return None
 
 
 def _print_notes(index: Index, err: TextIO) -> None:
@@ -341,7 +348,7 @@ def format_summary(summary: UpdateSummary) -> str:
 
 def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if args.neighbours is not None:
-        return _search_neighbours(args, out)
+        return _search_neighbours(args, out, err)
     if args.batch is None and args.query is None:
         raise UsageError("give a QUERY or --batch FILE")
     if args.batch is not None and args.query is not None:
@@ -351,16 +358,17 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if args.k < 1:
         raise UsageError(f"-k must be at least 1, not {args.k}")
     lines = _read_batch(args.batch) if args.batch is not None else [_query_text(args.query)]
-    queries = [line for line in lines if line]
-    options = _search_filters(args)
-    results: Iterable[list[SearchHit]] | None = _daemon_answers(args, queries, options, err)
-    if results is None:
-        with _open(args.repo, args, create=False) as index:
-            results = index.search_many(queries, args.k, **options) if queries else []
-    if args.batch is not None:
-        _print_batch(lines, results, out)
-        return EXIT_OK
-    hits = next(iter(results))
+    filters = _search_filters(args)
+    queries = [Query(text=line, k=args.k, filters=filters) for line in lines if line]
+    service = _connect(args.repo, args, err)
+    try:
+        results: Iterable[list[SearchHit]] = service.search_many(queries) if queries else []
+        if args.batch is not None:
+            _print_batch(lines, results, out)
+            return EXIT_OK
+        hits = next(iter(results))
+    finally:
+        service.close()
     if args.json:
         _print_json(hits, out)
     else:
@@ -368,24 +376,18 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     return EXIT_OK
 
 
-def _search_neighbours(args: argparse.Namespace, out: TextIO) -> int:
+def _search_neighbours(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     """``search --neighbours PLACE``: the unit's neighbours, printed like a search."""
     if args.query is not None or args.batch is not None:
         raise UsageError("give a QUERY, --batch FILE or --neighbours PATH:NAME, only one")
-    from codeseek.client import DaemonUnavailable
-
-    options = _search_filters(args)
-    hits: list[SearchHit] | None = None
+    filters = _search_filters(args)
     with _open(args.repo, args, create=False) as index:
         unit_id = _unit_of_place(index, args.neighbours)
-        client = _daemon_client(args.repo, args)
-        if client is not None:
-            try:
-                hits = client.neighbours(unit_id, args.k, **options)
-            except DaemonUnavailable:
-                hits = None  # a stale socket: answer in this process
-        if hits is None:
-            hits = index.neighbours(unit_id, args.k, **options)
+    service = _connect(args.repo, args, err)
+    try:
+        hits = service.neighbours(Query(unit_id=unit_id, k=args.k, filters=filters))
+    finally:
+        service.close()
     if args.json:
         _print_json(hits, out)
     else:
@@ -417,43 +419,21 @@ def _unit_of_place(index: Index, place: str) -> int:
     raise InvalidQuery(f"{place[:splits[0]]}: not a file of the index")
 
 
-def _daemon_answers(args: argparse.Namespace, queries: list[str], options: dict[str, Any],
-                    err: TextIO) -> Iterator[list[SearchHit]] | None:
-    """The running daemon's answers, read as they arrive; None: answer in this process.
-
-    The daemon takes what the in-process search takes (the client splits a batch
-    to fit its limits). It is passed over only when none listens (no socket, or a
-    crashed daemon's), or, said on stderr, for a query too large for any request;
-    a daemon that listens but fails is an error.
-    """
-    from codeseek.client import DaemonUnavailable, TooLargeForDaemon
-
-    client = _daemon_client(args.repo, args)
-    if client is None or not queries:
-        return None
-    _open(args.repo, args, create=False).close()  # the same checks as in process
-    try:
-        return client.search_stream(queries, args.k, **options)
-    except TooLargeForDaemon as exc:
-        print(f"codeseek: {exc}; answering in this process", file=err)
-    except DaemonUnavailable:
-        pass  # nobody listens on the socket: no daemon runs
-    return None
-
-
-def _search_filters(args: argparse.Namespace) -> dict[str, list[str]]:
+def _search_filters(args: argparse.Namespace) -> Filters:
     """The filter options in the stored names, file patterns relative to the repository
-    root (read from the current folder); a value that cannot be used is a usage error."""
+    root (read from the current folder), ``--since`` as a time; a value that cannot be
+    used is a usage error."""
     from codeseek.errors import UnsupportedLanguage
-    from codeseek.filtering import files_pattern, language_name, unit_kind
+    from codeseek.filtering import files_pattern, language_name, since_time, unit_kind
 
     root = _root(args.repo).resolve()
     try:
-        return {
-            "languages": list(dict.fromkeys(language_name(x) for x in args.languages)),
-            "paths": [files_pattern(x, root, Path.cwd().resolve()) for x in args.files],
-            "kinds": list(dict.fromkeys(unit_kind(x) for x in args.units)),
-        }
+        return Filters(
+            languages=tuple(dict.fromkeys(language_name(x) for x in args.languages)),
+            paths=tuple(files_pattern(x, root, Path.cwd().resolve()) for x in args.files),
+            kinds=tuple(dict.fromkeys(unit_kind(x) for x in args.units)),
+            since=None if args.since is None else since_time(args.since),
+        )
     except (InvalidQuery, UnsupportedLanguage) as exc:
         raise UsageError(str(exc)) from exc
 
@@ -480,8 +460,9 @@ def _read_batch(source: str) -> list[str]:
         if source == "-":
             if sys.stdin is None or sys.stdin.closed:
                 raise InvalidQuery("-: cannot read the batch: standard input is closed")
-            stream = getattr(sys.stdin, "buffer", None)
-            data = stream.read() if stream is not None else sys.stdin.read()
+            # a real stdin is read as bytes; a text stream standing in for it (tests) as text
+            data = (sys.stdin.buffer.read() if isinstance(sys.stdin, io.TextIOWrapper)
+                    else sys.stdin.read())
         else:
             data = Path(source).read_bytes()
     except FileNotFoundError as exc:
@@ -566,7 +547,6 @@ def shown_code_lines(hit: SearchHit, count: int = CODE_LINES) -> list[tuple[int,
 def _docstring_rows(code: str) -> tuple[int, int] | None:
     """The 1-based first and last rows of a Python docstring in ``code`` (a unit's first
     lines, so the docstring may run past their end), or None when there is none."""
-    import io
     import tokenize
 
     header_done = False
@@ -596,18 +576,12 @@ def _clip(text: str, width: int) -> str:
 
 
 def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
-    from codeseek.client import DaemonUnavailable
+    from codeseek.service import daemon_status
 
     with _open(args.path, args, create=False) as index:
         status = index.status()
         skipped = index.skipped_files() if args.skipped else None
-    daemon: dict[str, Any] | None = None
-    client = _daemon_client(args.path, args)
-    if client is not None:
-        try:
-            daemon = client.status()["daemon"]
-        except DaemonUnavailable:
-            daemon = None
+    daemon = daemon_status(_root(args.path), index_dir=args.index_dir)
     if args.json:
         record = status.to_json()
         record["daemon"] = daemon
@@ -724,30 +698,25 @@ def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         print("error: codeseek ui needs a terminal; in scripts use `codeseek search --json`",
               file=err)
         return EXIT_ERROR
-    from codeseek.client import DaemonUnavailable
+    from codeseek.service import connect
     from codeseek.tui.app import CodeseekApp
-    from codeseek.tui.backend import DaemonSearcher, LocalIndexer, SearchBackend
+    from codeseek.tui.backend import LocalIndexer
 
     chosen = args.repo or args.path
     root = Path(chosen) if chosen else find_repo_root(Path.cwd())
     if not root.is_dir():
         raise RepositoryNotFound(f"{root}: no such folder")
-    searcher: SearchBackend | None = None
-    builder: LocalIndexer | None = None
-    client = _daemon_client(str(root), args)
-    if client is not None:
-        try:
-            client.status()
-            searcher = DaemonSearcher(client)  # a running daemon answers, warm and fresh
-        except DaemonUnavailable:
-            searcher = None
-    if searcher is None:
-        builder = LocalIndexer(root, index_dir=args.index_dir, model=args.model,
-                               backend=args.backend)
-        try:
-            searcher = builder.open_searcher()
-        except IndexNotFound:
-            searcher = None
+    local = LocalIndexer(root, index_dir=args.index_dir, model=args.model,
+                         backend=args.backend)
+    builder: LocalIndexer | None = local
+    searcher: SearchService | None = None
+    try:
+        searcher = connect(root, index_dir=args.index_dir, model=args.model,
+                           backend=args.backend, embedder=local.embedder)
+    except IndexNotFound:
+        searcher = None
+    if searcher is not None and searcher.daemon_status() is not None:
+        builder = None  # a running daemon answers, warm, and keeps the index fresh
     app = CodeseekApp(searcher, repo=root.resolve(), builder=builder)
     try:
         app.run()

@@ -23,14 +23,20 @@ from __future__ import annotations
 import json
 import socket
 from collections.abc import Iterator, Sequence
+from dataclasses import replace
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from codeseek import errors, safefs
 from codeseek.errors import CodeseekError, DaemonError
 from codeseek.hits import SearchHit
+from codeseek.query import DEFAULT_K, Filters, Query, as_queries, filters_of
+from codeseek.service import IndexStatus, Notice
 
-PROTOCOL_VERSION = 1
+if TYPE_CHECKING:
+    from codeseek.api import Index
+
+PROTOCOL_VERSION = 2
 SOCKET_NAME = "daemon.sock"
 CLIENT_TIMEOUT = 30.0
 
@@ -83,39 +89,59 @@ class DaemonClient:
             raise DaemonUnavailable(str(exc)) from exc
         return Connection(self.socket_path, self.timeout)
 
-    def search_stream(self, queries: Sequence[str], k: int = 10, *,
-                      languages: Sequence[str] = (), paths: Sequence[str] = (),
-                      kinds: Sequence[str] = ()) -> Iterator[list[SearchHit]]:
-        """Each query's answer in order, read as the daemon sends them.
+    def present(self) -> bool:
+        """Whether the daemon's socket is there (whether a daemon listens on it is
+        found by the first request: a crashed daemon leaves its socket behind)."""
+        try:
+            return safefs.check_socket(self.socket_path)
+        except errors.IndexFolderUnsafe:
+            return False
+
+    def search_stream(self, queries: Sequence[str | Query], k: int = DEFAULT_K, *,
+                      filters: Filters | None = None, languages: Sequence[str] = (),
+                      paths: Sequence[str] = (), kinds: Sequence[str] = ()
+                      ) -> Iterator[list[SearchHit]]:
+        """Each query's answer in order, read as the daemon sends them (a text is
+        searched with ``k`` and the filters; a :class:`Query` carries its own).
 
         Connects at once: DaemonUnavailable and TooLargeForDaemon come from this
         call, before any answer; a failure later in the batch is a DaemonError.
         Each request is answered from one committed state of the index, so a batch
         sent in several requests may straddle an update, as separate searches would.
         """
-        requests = search_requests(queries, k, {"languages": list(languages),
-                                                "paths": list(paths), "kinds": list(kinds)})
+        batch = as_queries(queries, k, filters_of(filters, languages, paths, kinds))
+        requests = search_requests(batch)
         return _answers(self.connect(), requests)
 
-    def search_many(self, queries: Sequence[str], k: int = 10, *,
-                    languages: Sequence[str] = (), paths: Sequence[str] = (),
-                    kinds: Sequence[str] = ()) -> list[list[SearchHit]]:
+    def search_many(self, queries: Sequence[str | Query], k: int = DEFAULT_K, *,
+                    filters: Filters | None = None, languages: Sequence[str] = (),
+                    paths: Sequence[str] = (), kinds: Sequence[str] = ()
+                    ) -> list[list[SearchHit]]:
         """The daemon's answers, as the in-process search would give them."""
-        return list(self.search_stream(queries, k, languages=languages, paths=paths,
-                                       kinds=kinds))
+        return list(self.search_stream(queries, k, filters=filters, languages=languages,
+                                       paths=paths, kinds=kinds))
 
-    def search(self, query: str, k: int = 10, **filters: Sequence[str]) -> list[SearchHit]:
+    def search(self, query: str | Query, k: int = DEFAULT_K, *,
+               filters: Filters | None = None, languages: Sequence[str] = (),
+               paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
         """One query's answer."""
-        return self.search_many([query], k, **filters)[0]
+        return self.search_many([query], k, filters=filters, languages=languages,
+                                paths=paths, kinds=kinds)[0]
 
-    def neighbours(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
+    def neighbours(self, unit: int | Query, k: int = DEFAULT_K, *,
+                   filters: Filters | None = None, languages: Sequence[str] = (),
                    paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
         """The unit's neighbours (the units whose meaning is nearest its own), found by
         the daemon."""
-        response = self.request({"op": "neighbours", "unit_id": unit_id, "k": k,
-                                 "languages": list(languages), "paths": list(paths),
-                                 "kinds": list(kinds)})
-        return [SearchHit(**hit) for hit in response["results"][0]]
+        query = unit if isinstance(unit, Query) else Query(
+            unit_id=unit, k=k, filters=filters_of(filters, languages, paths, kinds))
+        response = self.request({"op": "neighbours", "query": _sent(query).to_json()})
+        results = response.get("results")
+        if not isinstance(results, list) or len(results) != 1:
+            raise DaemonError(f"the codeseek daemon on {self.socket_path} failed to answer "
+                              "(its answer does not match the request); see its log, or "
+                              "stop it to search without it")
+        return [SearchHit(**hit) for hit in results[0]]
 
     def status(self) -> dict[str, Any]:
         """The daemon's status response."""
@@ -168,8 +194,8 @@ class Connection:
         if not isinstance(response, dict):
             raise self._failed("its answer is not a JSON object")
         if not response.get("ok"):
-            error_type = getattr(errors, str(response.get("kind")), None)
-            if isinstance(error_type, type) and issubclass(error_type, CodeseekError):
+            error_type = errors.error_class(str(response.get("kind")))
+            if error_type is not None:
                 raise error_type(response.get("error", "daemon error"))
             raise CodeseekError(f"the daemon refused the request: {response.get('error')}")
         return response
@@ -183,31 +209,38 @@ class Connection:
                            f"({reason}); see its log, or stop it to search without it")
 
 
-def search_requests(queries: Sequence[str], k: int,
-                    filters: dict[str, list[str]]) -> list[dict[str, Any]]:
+def _sent(query: Query) -> Query:
+    """The query as sent: a k beyond every unit of the index has the same answer."""
+    return query if query.k <= MAX_K else replace(query, k=MAX_K)
+
+
+def search_requests(queries: Sequence[Query]) -> list[dict[str, Any]]:
     """The search requests that carry a batch within the daemon's limits, in order.
 
     Raises TooLargeForDaemon when one query alone is larger than a request may be.
     """
-    sent_k = min(k, MAX_K)  # a k beyond every unit of the index has the same answer
     most = min(QUERIES_PER_REQUEST, MAX_QUERIES)
-    per_request = most if sent_k < 1 else max(1, min(most, HITS_PER_REQUEST // sent_k))
-    base: dict[str, Any] = {"op": "search", "queries": [], "k": sent_k, **filters}
+    base: dict[str, Any] = {"op": "search", "queries": []}
     overhead = len(json.dumps({"v": PROTOCOL_VERSION, **base})) + 1  # + the newline
     requests: list[dict[str, Any]] = []
-    chunk: list[str] = []
-    size = overhead
-    for query in queries:
-        cost = len(json.dumps(query)) + 2  # ASCII JSON (non-ASCII escaped) and ", "
+    chunk: list[dict[str, Any]] = []
+    size, hits = overhead, 0
+    for query in map(_sent, queries):
+        record = query.to_json()
+        cost = len(json.dumps(record)) + 2  # ASCII JSON (non-ASCII escaped) and ", "
         if overhead + cost > MAX_REQUEST_BYTES:
+            text = query.text or ""
             raise TooLargeForDaemon(
-                f"a query of {len(query.encode('utf-8', 'surrogatepass')):,} bytes is "
+                f"a query of {len(text.encode('utf-8', 'surrogatepass')):,} bytes is "
                 f"larger than a daemon request may be ({MAX_REQUEST_BYTES:,} bytes)")
-        if chunk and (len(chunk) >= per_request or size + cost > REQUEST_BYTES):
+        wanted = max(query.k, 0)
+        if chunk and (len(chunk) >= most or size + cost > REQUEST_BYTES
+                      or hits + wanted > HITS_PER_REQUEST):
             requests.append({**base, "queries": chunk})
-            chunk, size = [], overhead
-        chunk.append(query)
+            chunk, size, hits = [], overhead, 0
+        chunk.append(record)
         size += cost
+        hits += wanted
     if chunk:
         requests.append({**base, "queries": chunk})
     return requests
@@ -228,3 +261,70 @@ def _answers(connection: Connection, requests: list[dict[str, Any]]
                 yield answer
     finally:
         connection.close()
+
+
+class DaemonService:
+    """A running daemon as a :class:`~codeseek.service.SearchService` (what
+    :func:`codeseek.connect` returns when one listens).
+
+    Each call opens its own connection. When no daemon listens (a crashed daemon's
+    socket, or one stopped since), the call and every later one are answered in
+    process by ``index``, the same index opened locally; so is a query too large
+    for any request (said to ``notice``). A daemon that listens but fails raises
+    :class:`~codeseek.errors.DaemonError`.
+    """
+
+    def __init__(self, client: DaemonClient, index: Index,
+                 notice: Notice | None = None) -> None:
+        self.client = client
+        self.index = index
+        self.notice = notice
+        self.gone = False  # no daemon listened at the last call: the index answers
+
+    def search(self, query: Query) -> list[SearchHit]:
+        """One query's answer."""
+        return next(iter(self.search_many([query])))
+
+    def search_many(self, queries: Sequence[Query]) -> Iterator[list[SearchHit]]:
+        """Each query's answer, read as the daemon sends them."""
+        if not self.gone:
+            try:
+                return self.client.search_stream(queries)
+            except TooLargeForDaemon as exc:
+                if self.notice is not None:
+                    self.notice(f"codeseek: {exc}; answering in this process")
+            except DaemonUnavailable:
+                self.gone = True
+        return iter(self.index.search_many(queries))
+
+    def neighbours(self, query: Query) -> list[SearchHit]:
+        """The unit's neighbours, found by the daemon."""
+        if not self.gone:
+            try:
+                return self.client.neighbours(query)
+            except DaemonUnavailable:
+                self.gone = True
+        return self.index.neighbours(query)
+
+    def status(self) -> IndexStatus:
+        """The index's status, as the daemon reports it."""
+        if not self.gone:
+            try:
+                return IndexStatus(**self.client.status()["index"])
+            except DaemonUnavailable:
+                self.gone = True
+        return self.index.status()
+
+    def daemon_status(self) -> dict[str, Any] | None:
+        """The daemon's own status; None once it has gone."""
+        if not self.gone:
+            try:
+                daemon: dict[str, Any] = self.client.status()["daemon"]
+                return daemon
+            except DaemonUnavailable:
+                self.gone = True
+        return None
+
+    def close(self) -> None:
+        """Close the local index."""
+        self.index.close()

@@ -10,16 +10,21 @@ first build is never missed). The model is loaded once; queries are answered whi
 indexing goes on.
 
 The protocol is JSON Lines: one request object per line, one response per
-line. Every message carries ``"v": PROTOCOL_VERSION``. Requests:
+line. Every message carries ``"v": PROTOCOL_VERSION`` (2); a request of
+another version gets an error that names both. A query is the JSON of a
+:class:`~codeseek.query.Query` (``{"text": "...", "k": 10, "filters":
+{"languages": [], "paths": [], "kinds": [], "since": null}}``, or ``unit_id``
+in place of ``text``), a hit the fields of a :class:`~codeseek.hits.SearchHit`.
+Requests:
 
-* ``{"v": 1, "op": "search", "queries": [...], "k": 10, "languages": [],
-  "paths": [], "kinds": []}`` -> ``{"v": 1, "ok": true, "results": [[hit, ...], ...]}``
-* ``{"v": 1, "op": "neighbours", "unit_id": 42, "k": 10, ...filters}`` -> the
-  unit's neighbours (the units whose meaning is nearest its own), as ``results``
-* ``{"v": 1, "op": "status"}`` -> ``{"v": 1, "ok": true, "index": {...}, "daemon": {...}}``
-* ``{"v": 1, "op": "shutdown"}`` -> ``{"v": 1, "ok": true}``
+* ``{"v": 2, "op": "search", "queries": [query, ...]}`` ->
+  ``{"v": 2, "ok": true, "results": [[hit, ...], ...]}``
+* ``{"v": 2, "op": "neighbours", "query": query}`` -> the neighbours of the
+  query's unit (the units whose meaning is nearest its own), as ``results``
+* ``{"v": 2, "op": "status"}`` -> ``{"v": 2, "ok": true, "index": {...}, "daemon": {...}}``
+* ``{"v": 2, "op": "shutdown"}`` -> ``{"v": 2, "ok": true}``
 
-An error is ``{"v": 1, "ok": false, "error": "...", "kind": "InvalidQuery"}``, its
+An error is ``{"v": 2, "ok": false, "error": "...", "kind": "InvalidQuery"}``, its
 message one line. Every request line gets one answer, whatever it holds: text
 that is not UTF-8 or not JSON, nesting too deep to parse, a whole number outside
 64 bits or a lone surrogate in the text (outside path patterns, which may name
@@ -60,6 +65,7 @@ from codeseek.client import (
 )
 from codeseek.display import printable
 from codeseek.errors import CodeseekError, IndexLocked
+from codeseek.query import Query
 from codeseek.watch import RECONCILE_SECONDS, Watcher
 
 LOCK_NAME = "daemon.lock"
@@ -80,23 +86,23 @@ def _error(message: str, kind: str = "ProtocolError") -> dict[str, Any]:
 def _check_values(request: dict[str, Any]) -> None:
     """Refuse what no field can use: a whole number outside 64 bits, a lone surrogate.
 
-    Walks the request without recursion (it may nest as deep as the parser allows).
+    Walks the request without recursion (it may nest as deep as the parser allows);
+    a value is named by the innermost field that holds it.
     """
-    for key, value in request.items():
-        stack = [key, value]
-        while stack:
-            item = stack.pop()
-            if isinstance(item, dict):
-                stack.extend(item.keys())
-                stack.extend(item.values())
-            elif isinstance(item, list):
-                stack.extend(item)
-            elif isinstance(item, int) and not isinstance(item, bool) and item not in INT64:
-                raise ValueError(f"{_name(key)} holds a whole number outside 64 bits")
-            elif (isinstance(item, str) and key not in UNCHECKED_TEXT
-                  and not _is_unicode(item)):
-                raise ValueError(f"{_name(key)} holds a lone surrogate (text that is not "
-                                 "valid Unicode)")
+    stack: list[tuple[str, Any]] = [(key, key) for key in request]
+    stack.extend(request.items())
+    while stack:
+        key, item = stack.pop()
+        if isinstance(item, dict):
+            stack.extend((inner, inner) for inner in item)
+            stack.extend(item.items())
+        elif isinstance(item, list):
+            stack.extend((key, value) for value in item)
+        elif isinstance(item, int) and not isinstance(item, bool) and item not in INT64:
+            raise ValueError(f"{_name(key)} holds a whole number outside 64 bits")
+        elif isinstance(item, str) and key not in UNCHECKED_TEXT and not _is_unicode(item):
+            raise ValueError(f"{_name(key)} holds a lone surrogate (text that is not "
+                             "valid Unicode)")
 
 
 def _name(key: str) -> str:
@@ -111,18 +117,17 @@ def _is_unicode(text: str) -> bool:
     return True
 
 
-def _string_list(request: dict[str, Any], key: str) -> list[str]:
-    value = request.get(key, [])
-    if not isinstance(value, list) or not all(isinstance(v, str) for v in value):
-        raise ValueError(f"'{key}' must be a list of strings")
-    return value
+def _queries(request: dict[str, Any]) -> list[Query]:
+    value = request.get("queries")
+    if not isinstance(value, list) or not 1 <= len(value) <= MAX_QUERIES:
+        raise ValueError(f"'queries' must be a list of 1 to {MAX_QUERIES} queries")
+    return [_checked(Query.from_json(item)) for item in value]
 
 
-def _k_of(request: dict[str, Any]) -> int:
-    k = request.get("k", 10)
-    if not isinstance(k, int) or isinstance(k, bool) or k > MAX_K:
+def _checked(query: Query) -> Query:
+    if query.k > MAX_K:
         raise ValueError(f"'k' must be a whole number up to {MAX_K}")
-    return k  # below 1: the index refuses it with the same words as in process
+    return query  # below 1: the index refuses it with the same words as in process
 
 
 class Daemon:
@@ -293,7 +298,8 @@ class Daemon:
             return _error(f"malformed request: {exc}")
         if request.get("v") != PROTOCOL_VERSION:
             return _error(f"unsupported protocol version {request.get('v')!r}; "
-                          f"this daemon speaks {PROTOCOL_VERSION}")
+                          f"this daemon speaks {PROTOCOL_VERSION} (a codeseek of another "
+                          "version sent the request; use the same codeseek for both)")
         op = request.get("op")
         try:
             if op == "search":
@@ -312,25 +318,17 @@ class Daemon:
         return _error(f"unknown op {op!r}; use search, neighbours, status or shutdown")
 
     def _search(self, request: dict[str, Any]) -> dict[str, Any]:
-        queries = _string_list(request, "queries")
-        if not queries or len(queries) > MAX_QUERIES:
-            raise ValueError(f"'queries' must hold 1 to {MAX_QUERIES} strings")
-        k = _k_of(request)
-        results = self.index.search_many(
-            queries, k, languages=_string_list(request, "languages"),
-            paths=_string_list(request, "paths"), kinds=_string_list(request, "kinds"))
+        queries = _queries(request)
+        results = self.index.search_many(queries)
         self.queries_served += len(queries)
         return {"v": PROTOCOL_VERSION, "ok": True,
                 "results": [[dataclasses.asdict(hit) for hit in hits] for hits in results]}
 
     def _neighbours(self, request: dict[str, Any]) -> dict[str, Any]:
-        unit_id = request.get("unit_id")
-        if not isinstance(unit_id, int) or isinstance(unit_id, bool):
-            raise ValueError("'unit_id' must be a whole number")
-        k = _k_of(request)
-        hits = self.index.neighbours(
-            unit_id, k, languages=_string_list(request, "languages"),
-            paths=_string_list(request, "paths"), kinds=_string_list(request, "kinds"))
+        query = _checked(Query.from_json(request.get("query")))
+        if query.unit_id is None:
+            raise ValueError("a neighbours query holds 'unit_id', not 'text'")
+        hits = self.index.neighbours(query)
         return {"v": PROTOCOL_VERSION, "ok": True,
                 "results": [[dataclasses.asdict(hit) for hit in hits]]}
 

@@ -114,3 +114,15 @@ class QuestionFileError(CodeseekError):
 
 class DaemonError(CodeseekError):
     """A daemon listens on the index's socket but failed to answer a request."""
+
+
+def error_class(name: str) -> type[CodeseekError] | None:
+    """The class of the family named ``name`` (how the daemon names an error it
+    answers with), or None when none is."""
+    found: list[type[CodeseekError]] = [CodeseekError]
+    while found:
+        cls = found.pop()
+        if cls.__name__ == name:
+            return cls
+        found.extend(cls.__subclasses__())
+    return None

@@ -239,3 +239,30 @@ def _inside(folder: Path, root: Path, pattern: str) -> str:
 def _escape(text: str) -> str:
     """A literal folder name as gitignore-pattern text."""
     return _GLOB_SPECIALS.sub(r"\\\1", text)
+
+
+# -- modification times ----------------------------------------------------------------
+
+_AGE = re.compile(r"(\d+)([smhdw])")
+_AGE_SECONDS = {"s": 1, "m": 60, "h": 3600, "d": 86400, "w": 7 * 86400}
+SINCE_FORMS = "an ISO date (2026-11-30), a date and time (2026-11-30T14:00) or an age " \
+              "(90m, 12h, 3d, 2w)"
+
+
+def since_time(text: str, now: float | None = None) -> float:
+    """The time ``--since`` names, in seconds since 1970: an ISO 8601 date (local
+    midnight), a date and time (local time unless it gives an offset), or an age
+    counted back from ``now`` (``90m``, ``12h``, ``3d``, ``2w``; also ``s``)."""
+    import datetime
+    import time
+
+    word = text.strip()
+    age = _AGE.fullmatch(word.lower())
+    if age:
+        seconds = int(age.group(1)) * _AGE_SECONDS[age.group(2)]
+        return (time.time() if now is None else now) - seconds
+    try:
+        moment = datetime.datetime.fromisoformat(word)  # a bare date is midnight
+        return moment.timestamp()  # naive: local time, as the files' times are shown
+    except (ValueError, OverflowError, OSError):
+        raise InvalidQuery(f"--since wants {SINCE_FORMS}, not '{printable(text)}'") from None

@@ -28,9 +28,9 @@ from codeseek.adapter import QueryAdapter
 from codeseek.client import MAX_K
 from codeseek.embed import Embedder
 from codeseek.errors import InvalidQuery
-from codeseek.filtering import check_files_pattern, language_name, unit_kind
 from codeseek.hits import SearchHit
 from codeseek.locks import ReadWriteLock
+from codeseek.query import Filters
 from codeseek.store import Store, StoredUnit
 from codeseek.units import CodeUnit, split_identifier
 from codeseek.vectors import VectorIndex, exact_search
@@ -57,32 +57,6 @@ STOPWORDS = frozenset({
     "how", "i", "in", "is", "it", "of", "on", "or", "our", "that", "the", "this", "to",
     "we", "what", "when", "where", "which", "who", "why", "with", "you", "your",
 })
-
-
-@dataclass(frozen=True)
-class Filters:
-    """Restrictions on results; an empty tuple means no restriction."""
-
-    languages: tuple[str, ...] = ()
-    paths: tuple[str, ...] = ()
-    kinds: tuple[str, ...] = ()
-
-    def validate(self) -> None:
-        """Raise a clear error for an unknown language or unit, or an unusable pattern."""
-        self.normalised()
-
-    def normalised(self) -> Filters:
-        """The same filters in the stored names: ``Python`` -> ``python``, ``struct`` ->
-        ``class`` (:mod:`codeseek.filtering`); raises a clear error for a bad value."""
-        for pattern in self.paths:
-            check_files_pattern(pattern)
-        return Filters(tuple(dict.fromkeys(language_name(x) for x in self.languages)),
-                       self.paths, tuple(dict.fromkeys(unit_kind(x) for x in self.kinds)))
-
-    @property
-    def active(self) -> bool:
-        """Whether any filter is set."""
-        return bool(self.languages or self.paths or self.kinds)
 
 
 def lexical_match(query: str) -> str:
@@ -248,7 +222,7 @@ class Searcher:
     def _filtered_pool(self, filters: Filters) -> set[int] | None:
         if not filters.active:
             return None
-        ids = self.store.filtered_ids(filters.languages, filters.kinds)
+        ids = self.store.filtered_ids(filters)
         if filters.paths:
             spec = pathspec.GitIgnoreSpec.from_lines(filters.paths)
             paths = self.store.paths_of(ids)

@@ -20,6 +20,7 @@ the same.
 
 from __future__ import annotations
 
+import math
 import sqlite3
 import time
 from collections.abc import Iterable, Iterator, Sequence
@@ -38,6 +39,7 @@ from codeseek.errors import (
     IndexNotFound,
     IndexWriteError,
 )
+from codeseek.query import Filters
 from codeseek.units import CodeUnit, lexical_codes
 
 DB_NAME = "index.sqlite3"
@@ -513,19 +515,24 @@ class Store:
         )
         return [_stored_unit(row) for row in rows]
 
-    def filtered_ids(self, languages: Sequence[str], kinds: Sequence[str]) -> list[int]:
-        """Unit ids of the given languages and kinds (empty sequence: any)."""
+    def filtered_ids(self, filters: Filters) -> list[int]:
+        """Unit ids within the filters the store can apply: languages, kinds and the
+        files' modification time (an empty value: any). Path patterns are matched by
+        the caller."""
         where: list[str] = []
-        params: list[str] = []
-        if languages:
-            where.append(f"f.language IN ({','.join('?' * len(languages))})")
-            params.extend(languages)
-        if kinds:
-            where.append(f"u.kind IN ({','.join('?' * len(kinds))})")
-            params.extend(kinds)
+        params: list[object] = []
+        if filters.languages:
+            where.append(f"f.language IN ({','.join('?' * len(filters.languages))})")
+            params.extend(filters.languages)
+        if filters.kinds:
+            where.append(f"u.kind IN ({','.join('?' * len(filters.kinds))})")
+            params.extend(filters.kinds)
+        if filters.since is not None:
+            where.append("f.mtime_ns >= ?")
+            params.append(_since_ns(filters.since))
         clause = ("WHERE " + " AND ".join(where)) if where else ""
         rows = self._query(
-            f"SELECT u.id, f.path FROM units u JOIN files f ON f.id=u.file_id {clause}", params
+            f"SELECT u.id FROM units u JOIN files f ON f.id=u.file_id {clause}", params
         )
         return [row[0] for row in rows]
 
@@ -607,6 +614,13 @@ class Store:
             (match, limit),
         )
         return [(int(r[0]), -float(r[1])) for r in rows]
+
+
+def _since_ns(since: float) -> int:
+    """A time in seconds as the nanoseconds the files table records, kept within
+    SQLite's 64 bits (a time beyond them selects nothing, or everything)."""
+    limit = 9.2e9  # seconds; 9.2e18 ns is just under 2**63
+    return math.floor(max(-limit, min(limit, since)) * 1_000_000_000)
 
 
 def _stored_unit(row: tuple) -> StoredUnit:

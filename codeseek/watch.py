@@ -371,12 +371,12 @@ class _EventHandler(FileSystemEventHandler):
         self.watcher = watcher
 
     def dispatch(self, event: FileSystemEvent) -> None:
-        kind = getattr(event, "event_type", "")
+        kind = event.event_type
         if kind in ("opened", "closed_no_write"):
             return
-        if getattr(event, "is_directory", False) and kind == "modified":
+        if event.is_directory and kind == "modified":
             return  # a folder's mtime; its files report themselves
-        self.watcher.notice(getattr(event, "src_path", ""))
-        dest = getattr(event, "dest_path", "")
+        self.watcher.notice(event.src_path)
+        dest = event.dest_path  # "" but for a move
         if dest:
             self.watcher.notice(dest)

@@ -695,3 +695,75 @@ def test_neighbours_of_a_name_two_units_share_asks_for_a_line(sample_copy: Path)
                              "--repo", str(sample_copy), "--backend", "fake", "--json", "-k", "1")
     assert code == 0, err
     assert json.loads(out)["query"] == "neighbours of Evening.run"
+
+
+# -- --since: files modified at or after a time ----------------------------------------------
+
+
+def aged_repo(sample_copy: Path, now: float) -> dict[str, float]:
+    """Give the Go files an age of 10 days, the Rust files 2 days, the rest an hour, then
+    index; each indexed file's modification time as the file system reports it."""
+    for path in sample_copy.rglob("*"):
+        if path.is_file() and ".codeseek" not in path.parts:
+            age = {".go": 10 * 86400, ".rs": 2 * 86400}.get(path.suffix, 3600)
+            os.utime(path, (now - age, now - age))
+    code, _, err = run_cli("index", str(sample_copy), "--backend", "fake", "-q")
+    assert code == 0, err
+    return {path.relative_to(sample_copy).as_posix(): path.stat().st_mtime
+            for path in sample_copy.rglob("*") if path.is_file()}
+
+
+def since_paths(repo: Path, when: str, query: str = "parse a packet") -> set[str]:
+    code, out, err = run_cli("search", query, "--repo", str(repo), "--backend", "fake",
+                             "-k", "500", "--json", "--since", when)
+    assert code == 0, err
+    return {json.loads(line)["path"] for line in out.splitlines()}
+
+
+def test_since_keeps_only_files_modified_at_or_after_the_time(sample_copy: Path) -> None:
+    import datetime
+    import time
+
+    now = time.time()
+    mtimes = aged_repo(sample_copy, now)
+    everything = since_paths(sample_copy, "30d")
+    assert {p.rsplit(".", 1)[-1] for p in everything} >= {"go", "rs", "py"}
+    for when, cutoff in [("3d", now - 3 * 86400), ("72h", now - 3 * 86400),
+                         ("90m", now - 90 * 60), ("1w", now - 7 * 86400)]:
+        # the files the file system (os.stat) calls that new, not what the index says
+        assert since_paths(sample_copy, when) == \
+            {p for p in everything if mtimes[p] >= cutoff}, when
+    assert not any(p.endswith(".go") for p in since_paths(sample_copy, "3d"))
+    assert any(p.endswith(".rs") for p in since_paths(sample_copy, "3d"))
+    five_days_ago = datetime.datetime.fromtimestamp(now - 5 * 86400)  # local time, as typed
+    day = five_days_ago.date().isoformat()
+    midnight = datetime.datetime.fromisoformat(day).timestamp()
+    assert since_paths(sample_copy, day) == {p for p in everything if mtimes[p] >= midnight}
+    stamp = five_days_ago.isoformat(timespec="minutes")
+    assert since_paths(sample_copy, stamp) == \
+        {p for p in everything if mtimes[p] >= datetime.datetime.fromisoformat(stamp).timestamp()}
+    tomorrow = (datetime.datetime.now(datetime.UTC) + datetime.timedelta(days=1))
+    assert since_paths(sample_copy, tomorrow.isoformat()) == set()
+
+
+def test_since_follows_a_file_touched_after_indexing(sample_copy: Path) -> None:
+    import time
+
+    now = time.time()
+    mtimes = aged_repo(sample_copy, now)
+    go_file = sorted(p for p in mtimes if p.endswith(".go"))[0]
+    assert go_file not in since_paths(sample_copy, "1d", "dock")
+    os.utime(sample_copy / go_file)  # touched now, its content the same
+    code, _, err = run_cli("index", str(sample_copy), "--backend", "fake", "-q")
+    assert code == 0, err
+    assert go_file in since_paths(sample_copy, "1d", "dock")
+
+
+@pytest.mark.parametrize("value", ["yesterday", "3 days", "3d ago", "3y", "2026-13-01", ""])
+def test_since_refuses_what_it_cannot_read(indexed: Path, value: str) -> None:
+    code, out, err = run_cli("search", "refund", "--repo", str(indexed), "--backend", "fake",
+                             "--since", value)
+    assert (code, out) == (2, "")
+    assert err == ("error: --since wants an ISO date (2026-11-30), a date and time "
+                   "(2026-11-30T14:00) or an age (90m, 12h, 3d, 2w), not "
+                   f"'{value}'\n")

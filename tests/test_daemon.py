@@ -17,6 +17,7 @@ import threading
 import time
 from collections.abc import Callable, Iterator
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -215,7 +216,7 @@ def raw_exchange(path: Path, payload: bytes) -> bytes:
 
 def test_oversized_request_is_refused(daemon: Daemon) -> None:
     path = daemon.index.settings.index_dir / SOCKET_NAME
-    answer = raw_exchange(path, b'{"v": 1, "op": "search", "queries": ["' +
+    answer = raw_exchange(path, b'{"v": 2, "op": "search", "queries": ["' +
                           b"x" * (MAX_REQUEST_BYTES + 10) + b'"]}\n')
     response = json.loads(answer.splitlines()[0])
     assert response["ok"] is False and "request too large" in response["error"]
@@ -225,13 +226,21 @@ def test_oversized_request_is_refused(daemon: Daemon) -> None:
     (b"not json\n", "malformed request"),
     (b"[1, 2]\n", "malformed request"),
     (b'{"v": 99, "op": "search"}\n', "unsupported protocol version"),
-    (b'{"v": 1, "op": "read_file", "path": "/etc/passwd"}\n', "unknown op"),
-    (b'{"v": 1, "op": "search", "queries": "x"}\n', "'queries' must be a list"),
+    (b'{"v": 2, "op": "read_file", "path": "/etc/passwd"}\n', "unknown op"),
+    (b'{"v": 2, "op": "search", "queries": "x"}\n', "'queries' must be a list"),
+    (b'{"v": 2, "op": "search", "queries": ["x"]}\n', "a query must be an object"),
     # below 1: the same words as the in-process search (codeseek.search)
-    (b'{"v": 1, "op": "search", "queries": ["x"], "k": 0}\n', "-k must be at least 1, not 0"),
-    (b'{"v": 1, "op": "search", "queries": ["x"], "k": 2147483648}\n', "'k' must be"),
-    (b'{"v": 1, "op": "neighbours", "unit_id": "7"}\n', "'unit_id' must be"),
-    (b'{"v": 1, "op": "neighbours", "unit_id": 999999}\n', "no longer in the index"),
+    (b'{"v": 2, "op": "search", "queries": [{"text": "x", "k": 0}]}\n',
+     "-k must be at least 1, not 0"),
+    (b'{"v": 2, "op": "search", "queries": [{"text": "x", "k": 2147483648}]}\n', "'k' must be"),
+    (b'{"v": 2, "op": "search", "queries": [{"text": "x", "filters": {"since": "3d"}}]}\n',
+     "'since' must be a time in seconds since 1970, or null"),
+    (b'{"v": 2, "op": "search", "queries": [{"text": "x", "filters": {"colour": []}}]}\n',
+     "unknown filter 'colour'"),
+    (b'{"v": 2, "op": "search", "queries": [{"unit_id": 7}]}\n', "holds a text"),
+    (b'{"v": 2, "op": "neighbours", "query": {"unit_id": "7"}}\n', "'unit_id' must be"),
+    (b'{"v": 2, "op": "neighbours", "query": {"text": "x"}}\n', "holds 'unit_id'"),
+    (b'{"v": 2, "op": "neighbours", "query": {"unit_id": 999999}}\n', "no longer in the index"),
 ])
 def test_bad_requests_get_clear_errors(daemon: Daemon, line: bytes, words: str) -> None:
     response = json.loads(raw_exchange(daemon.index.settings.index_dir / SOCKET_NAME, line))
@@ -244,11 +253,11 @@ def test_bad_requests_get_clear_errors(daemon: Daemon, line: bytes, words: str) 
     st.binary(max_size=300),
     st.dictionaries(st.text(max_size=8), st.one_of(st.none(), st.integers(), st.text(max_size=20),
                     st.lists(st.text(max_size=10), max_size=3)), max_size=5).map(
-        lambda d: json.dumps({"v": 1, **d}).encode()),
+        lambda d: json.dumps({"v": 2, **d}).encode()),
 ))
 def test_fuzzed_requests_never_break_the_daemon(daemon: Daemon, payload: bytes) -> None:
     response = daemon.handle_line(payload)
-    assert response["v"] == 1 and isinstance(response["ok"], bool)
+    assert response["v"] == 2 and isinstance(response["ok"], bool)
     if not response["ok"]:
         assert isinstance(response["error"], str) and response["error"]
     for hits in response.get("results", []):
@@ -263,7 +272,7 @@ def test_the_neighbours_op_answers_as_the_library(daemon: Daemon, client: Daemon
         h.unit_id for h in daemon.index.neighbours(own.unit_id, 6, languages=["python"])]
     assert served and {h.query for h in served} == {f"neighbours of {own.qualname}"}
     # the op's old name is gone, and the error names the ops there are
-    response = daemon.handle_line(b'{"v": 1, "op": "similar", "unit_id": 1}')
+    response = daemon.handle_line(b'{"v": 2, "op": "similar", "query": {"unit_id": 1}}')
     assert response["error"] == "unknown op 'similar'; use search, neighbours, status or shutdown"
 
 
@@ -583,20 +592,30 @@ def test_a_batch_is_split_to_fit_the_daemons_limits() -> None:
         REQUEST_BYTES,
         search_requests,
     )
+    from codeseek.query import Filters, Query
 
-    filters: dict[str, list[str]] = {"languages": [], "paths": [], "kinds": []}
+    def batch(lines: list[str], k: int) -> list[Query]:
+        return [Query(text=text, k=k, filters=Filters(("python",))) for text in lines]
+
+    def texts(request: dict[str, Any]) -> list[str]:
+        return [query["text"] for query in request["queries"]]
+
     queries = [f"query {n} " + "é" * (n % 50) for n in range(2500)]
     for k in (10, 5000, 2**40):
-        requests = search_requests(queries, k, filters)
-        assert [q for request in requests for q in request["queries"]] == queries  # in order
+        requests = search_requests(batch(queries, k))
+        assert [q for request in requests for q in texts(request)] == queries  # in order
         for request in requests:
+            sent_k = request["queries"][0]["k"]
+            assert {query["k"] for query in request["queries"]} == {sent_k}
+            assert {tuple(query["filters"]["languages"]) for query in request["queries"]} == \
+                {("python",)}
             assert len(request["queries"]) <= min(QUERIES_PER_REQUEST, MAX_QUERIES)
-            assert len(request["queries"]) * request["k"] <= max(HITS_PER_REQUEST, request["k"])
-            assert len(json.dumps({"v": 1, **request})) + 1 <= REQUEST_BYTES
-    assert len(search_requests(queries, 10, filters)) == 2500 // QUERIES_PER_REQUEST
-    assert search_requests(queries, 2**40, filters)[0]["k"] == 2**31 - 1
+            assert len(request["queries"]) * sent_k <= max(HITS_PER_REQUEST, sent_k)
+            assert len(json.dumps({"v": 2, **request})) + 1 <= REQUEST_BYTES
+    assert len(search_requests(batch(queries, 10))) == 2500 // QUERIES_PER_REQUEST
+    assert search_requests(batch(queries, 2**40))[0]["queries"][0]["k"] == 2**31 - 1
     big = "x" * (2 * REQUEST_BYTES)  # one query over the usual size goes alone, whole
-    assert [r["queries"] for r in search_requests(["a", big, "b"], 10, filters)] == \
+    assert [texts(r) for r in search_requests(batch(["a", big, "b"], 10))] == \
         [["a"], [big], ["b"]]
 
 
@@ -635,9 +654,9 @@ def fake_daemon(path: Path, reply: bytes) -> threading.Thread:
 
 @pytest.mark.parametrize("reply, reason", [
     (b"", "it closed the connection"),
-    (b'{"v": 1, "ok": true, "results": [[{"path": "x"', "its answer broke off"),
+    (b'{"v": 2, "ok": true, "results": [[{"path": "x"', "its answer broke off"),
     (b"<html>\n", "its answer is not JSON"),
-    (b'{"v": 1, "ok": true, "results": []}\n', "its answer does not match the request"),
+    (b'{"v": 2, "ok": true, "results": []}\n', "its answer does not match the request"),
 ])
 def test_a_daemon_that_fails_is_an_error_not_a_quiet_fallback(
         fake_index: Index, monkeypatch: pytest.MonkeyPatch, reply: bytes, reason: str) -> None:
@@ -692,3 +711,117 @@ def test_the_log_names_the_updated_paths(fake_index: Index) -> None:
     odd.write_text('def ring():\n    """Ring."""\n', encoding="utf-8")
     assert watcher.apply({"python/harbour/bell\x1b[2J.py"})
     assert logged[-1].startswith("codeseek: updated python/harbour/bell\\x1b[2J.py: +1 ~0 -0")
+
+
+# -- the query seam ------------------------------------------------------------------------
+
+
+def age_files(repo: Path, old: float) -> set[str]:
+    """Set every Go and Rust file's modification time to ``old``; the paths set."""
+    aged: set[str] = set()
+    for path in sorted(repo.rglob("*")):
+        if path.suffix in (".go", ".rs") and ".codeseek" not in path.parts:
+            os.utime(path, (old, old))
+            aged.add(path.relative_to(repo).as_posix())
+    return aged
+
+
+def seam_queries(unit_id: int, now: float) -> list[object]:
+    from codeseek.query import Filters, Query
+
+    return [
+        Query(text="refund a rider", k=8),
+        Query(text="decode dock packet", k=5, filters=Filters(languages=("Go",))),
+        Query(text="plan the van route", k=6, filters=Filters(kinds=("function",))),
+        Query(text="fare for a ride", k=7, filters=Filters(paths=("rust/**",),
+                                                             kinds=("struct",))),
+        Query(text="parse a packet", k=9, filters=Filters(since=now - 3600)),
+        Query(text="parse a packet", k=9, filters=Filters(since=now + 86400)),
+        Query(unit_id=unit_id, k=6),
+        Query(unit_id=unit_id, k=6, filters=Filters(languages=("python",), since=now - 3600)),
+    ]
+
+
+def test_the_same_queries_give_the_same_hits_in_process_and_through_the_daemon(
+        sample_copy: Path) -> None:
+    from codeseek import SearchService, connect
+    from codeseek.client import DaemonService
+    from codeseek.query import Query
+
+    now = time.time()
+    aged = age_files(sample_copy, now - 30 * 86400)  # a month old: outside "since an hour"
+    index = open_index(sample_copy, create=True, embedder=FakeEmbedder())
+    running = Daemon(index, reconcile_seconds=3600)
+    running.start()
+    try:
+        service = connect(sample_copy, embedder=FakeEmbedder())
+        assert isinstance(service, DaemonService) and isinstance(service, SearchService)
+        unit_id = index.search("issue refund", 1)[0].unit_id
+        queries = seam_queries(unit_id, now)
+        searches = [q for q in queries if isinstance(q, Query) and q.text is not None]
+        near = [q for q in queries if isinstance(q, Query) and q.unit_id is not None]
+        served = running.queries_served
+        remote = list(service.search_many(searches))
+        remote_near = [service.neighbours(q) for q in near]
+        assert running.queries_served == served + len(searches)  # the daemon answered
+        assert not service.gone
+        local = index.search_many(searches)
+        assert remote == local  # every field of every hit: rank, score, similarity, text
+        assert remote_near == [index.neighbours(q) for q in near]
+        assert [service.search(q) for q in searches] == local
+        assert all(local[:4]) and all(remote_near)  # the filters leave something to compare
+        since_hour, since_tomorrow = local[4], local[5]
+        assert since_hour and not {h.path for h in since_hour} & aged
+        assert since_tomorrow == []
+        service.close()
+    finally:
+        running.stop()
+        index.close()
+
+
+def test_connect_picks_the_daemon_when_one_runs_and_the_index_otherwise(
+        daemon: Daemon) -> None:
+    from codeseek import Index, connect
+    from codeseek.client import DaemonService
+
+    repo = daemon.index.settings.repo
+    through = connect(repo)
+    assert isinstance(through, DaemonService)
+    status = through.daemon_status()
+    assert status is not None and (status["pid"], status["state"]) == (os.getpid(), "watching")
+    through.close()
+    for backend in ("fake", "onnx"):
+        local = connect(repo, backend=backend)  # an explicit backend: in process
+        assert isinstance(local, Index) and local.daemon_status() is None
+        local.close()
+    daemon.stop()
+    after = connect(repo, embedder=FakeEmbedder())  # no daemon: the index, in process
+    assert isinstance(after, Index)
+    assert after.search("refund a rider", 3)
+    after.close()
+
+
+def test_a_service_whose_daemon_stops_answers_in_process(daemon: Daemon) -> None:
+    from codeseek import Query, connect
+
+    repo = daemon.index.settings.repo
+    service = connect(repo, embedder=FakeEmbedder())
+    query = Query(text="refund a rider", k=4)
+    before = service.search(query)
+    assert service.daemon_status() is not None
+    index_dir = daemon.index.settings.index_dir
+    daemon.stop()
+    stale = socket.socket(socket.AF_UNIX, socket.SOCK_STREAM)
+    stale.bind(str(index_dir / SOCKET_NAME))  # a socket nobody listens on, as after a crash
+    stale.close()
+    assert service.search(query) == before  # the same hits, found in this process
+    assert service.daemon_status() is None
+    service.close()
+
+
+def test_the_daemon_answers_an_old_protocol_request_with_a_clear_error(daemon: Daemon) -> None:
+    response = daemon.handle_line(b'{"v": 1, "op": "search", "queries": ["refund"], "k": 3}')
+    assert response == {
+        "v": 2, "ok": False, "kind": "ProtocolError",
+        "error": "unsupported protocol version 1; this daemon speaks 2 (a codeseek of "
+                 "another version sent the request; use the same codeseek for both)"}

@@ -961,18 +961,23 @@ def daemon_exchange(path: Path, payload: bytes) -> list[dict[str, Any]]:
 
 
 @pytest.mark.parametrize("line, message", [
-    (b'{"v": 1, "op": "search", "queries": ["refund \\ud800 a rider"]}',
-     "malformed request: 'queries' holds a lone surrogate (text that is not valid Unicode)"),
-    (b'{"v": 1, "op": "search", "queries": ["refund"], "kinds": ["\\udfff"]}',
+    (b'{"v": 2, "op": "search", "queries": [{"text": "refund \\ud800 a rider"}]}',
+     "malformed request: 'text' holds a lone surrogate (text that is not valid Unicode)"),
+    (b'{"v": 2, "op": "search", "queries": [{"text": "refund", '
+     b'"filters": {"kinds": ["\\udfff"]}}]}',
      "malformed request: 'kinds' holds a lone surrogate (text that is not valid Unicode)"),
-    (b'{"v": 1, "op": "similar", "unit_id": 9223372036854775808}',  # 2**63
+    (b'{"v": 2, "op": "neighbours", "query": {"unit_id": 9223372036854775808}}',  # 2**63
      "malformed request: 'unit_id' holds a whole number outside 64 bits"),
-    (b'{"v": 1, "op": "similar", "unit_id": -9223372036854775809}',
+    (b'{"v": 2, "op": "neighbours", "query": {"unit_id": -9223372036854775809}}',
      "malformed request: 'unit_id' holds a whole number outside 64 bits"),
-    (b'{"v": 1, "op": "search", "queries": ["refund"], "k": 18446744073709551616}',
+    (b'{"v": 2, "op": "search", "queries": [{"text": "refund", "k": 18446744073709551616}]}',
      "malformed request: 'k' holds a whole number outside 64 bits"),
+    # the request of a codeseek of the first protocol gets an answer saying so
+    (b'{"v": 1, "op": "search", "queries": ["refund"]}',
+     "unsupported protocol version 1; this daemon speaks 2 (a codeseek of another version "
+     "sent the request; use the same codeseek for both)"),
     (b"[" * 30_000 + b"]" * 30_000, "malformed request: nested too deeply"),
-    (b'{"v": 1, "op": "search", "x": ' + b'{"a": ' * 30_000 + b"1" + b"}" * 30_001,
+    (b'{"v": 2, "op": "search", "x": ' + b'{"a": ' * 30_000 + b"1" + b"}" * 30_001,
      "malformed request: nested too deeply"),
 ])
 def test_bad_values_get_an_error_answer_and_the_daemon_serves_on(
@@ -980,8 +985,8 @@ def test_bad_values_get_an_error_answer_and_the_daemon_serves_on(
         line: bytes, message: str) -> None:
     daemon, logged = served
     path = daemon.index.settings.index_dir / SOCKET_NAME
-    first, status = daemon_exchange(path, line + b'\n{"v": 1, "op": "status"}\n')
-    assert first == {"v": 1, "ok": False, "error": message, "kind": "ProtocolError"}
+    first, status = daemon_exchange(path, line + b'\n{"v": 2, "op": "status"}\n')
+    assert first == {"v": 2, "ok": False, "error": message, "kind": "ProtocolError"}
     assert status["ok"] and status["daemon"]["state"] == "watching"  # the same connection
     assert "Traceback" not in capfd.readouterr().err
     assert not [m for m in logged if m.startswith("error")]
@@ -992,9 +997,9 @@ def test_a_path_pattern_may_hold_undecodable_bytes(served: tuple[Daemon, list[st
     # a pattern naming one is matched, as in process, not refused
     daemon, _ = served
     answer, = daemon_exchange(daemon.index.settings.index_dir / SOCKET_NAME,
-                              b'{"v": 1, "op": "search", "queries": ["refund"], '
-                              b'"paths": ["caf\\udce9/*"]}\n')
-    assert answer == {"v": 1, "ok": True, "results": [[]]}
+                              b'{"v": 2, "op": "search", "queries": [{"text": "refund", '
+                              b'"filters": {"paths": ["caf\\udce9/*"]}}]}\n')
+    assert answer == {"v": 2, "ok": True, "results": [[]]}
 
 
 def test_an_unexpected_failure_is_one_error_line(served: tuple[Daemon, list[str]],
@@ -1007,11 +1012,12 @@ def test_an_unexpected_failure_is_one_error_line(served: tuple[Daemon, list[str]
 
     monkeypatch.setattr(daemon.index, "search_many", broken)
     path = daemon.index.settings.index_dir / SOCKET_NAME
-    first, status = daemon_exchange(path, b'{"v": 1, "op": "search", "queries": ["x"]}\n'
-                                          b'{"v": 1, "op": "status"}\n')
+    first, status = daemon_exchange(path, b'{"v": 2, "op": "search", '
+                                          b'"queries": [{"text": "x"}]}\n'
+                                          b'{"v": 2, "op": "status"}\n')
     expected = ("the daemon failed answering a request: unexpected RuntimeError: "
                 "the gears slipped\\nat dock 7")
-    assert first == {"v": 1, "ok": False, "error": expected, "kind": "DaemonError"}
+    assert first == {"v": 2, "ok": False, "error": expected, "kind": "DaemonError"}
     assert status["ok"]
     assert logged[-1] == f"error: {expected}"
     assert "Traceback" not in capfd.readouterr().err
@@ -1041,24 +1047,29 @@ def test_a_failure_outside_a_request_is_one_log_line(served: tuple[Daemon, list[
 # Request lines for the sweep: raw bytes, JSON-like token soup (with the values that
 # once broke the daemon), deep nesting, and well-formed requests of random text
 # (lone surrogates included). Never a shutdown: the daemon must outlive the sweep.
-REQUEST_TOKENS = [b"{", b"}", b"[", b"]", b":", b",", b" ", b"\n", b'"v"', b"1", b"0", b"-1",
-                  b'"op"', b'"search"', b'"similar"', b'"status"', b'"queries"', b'"k"',
+REQUEST_TOKENS = [b"{", b"}", b"[", b"]", b":", b",", b" ", b"\n", b'"v"', b"1", b"2", b"0",
+                  b"-1", b'"op"', b'"search"', b'"neighbours"', b'"status"', b'"queries"',
+                  b'"query"', b'"text"', b'"filters"', b'"since"', b'"k"', b"1.5",
                   b'"unit_id"', b'"languages"', b'"paths"', b'"kinds"', b'"refund"', b'""',
                   b'"\\ud800"', b'"\\udc80x"', b'"\\u0000"', b"9223372036854775808",
                   b"-9223372036854775809", b"1e999", b"NaN", b"Infinity", b"null", b"true",
                   b"\xff", b"\x00", b"\xed\xa0\x80"]
 any_text = st.text(st.characters(exclude_categories=()), max_size=12)
+wire_query = st.fixed_dictionaries(
+    {}, optional={"text": any_text, "unit_id": st.integers(), "k": st.integers(),
+                  "filters": st.fixed_dictionaries(
+                      {}, optional={"languages": st.lists(any_text, max_size=2),
+                                    "paths": st.lists(any_text, max_size=2),
+                                    "kinds": st.lists(any_text, max_size=2),
+                                    "since": st.one_of(st.none(), st.floats(), st.integers())})})
 request_lines = st.one_of(
     st.binary(max_size=400),
     st.lists(st.sampled_from(REQUEST_TOKENS), max_size=80).map(b"".join),
     st.tuples(st.integers(1, 40_000), st.sampled_from([b"[]", b"{}"])).map(
         lambda depth_pair: depth_pair[1][:1] * depth_pair[0] + depth_pair[1][1:] * depth_pair[0]),
     st.fixed_dictionaries(
-        {"v": st.just(1), "op": st.sampled_from(["search", "similar", "status", "nope"])},
-        optional={"queries": st.lists(any_text, max_size=3), "k": st.integers(),
-                  "unit_id": st.integers(), "languages": st.lists(any_text, max_size=2),
-                  "paths": st.lists(any_text, max_size=2),
-                  "kinds": st.lists(any_text, max_size=2)},
+        {"v": st.just(2), "op": st.sampled_from(["search", "neighbours", "status", "nope"])},
+        optional={"queries": st.lists(wire_query, max_size=3), "query": wire_query},
     ).map(lambda request: json.dumps(request).encode()),
 )
 
@@ -1072,7 +1083,7 @@ def test_random_request_lines_get_one_answer_each_and_no_traceback(
     answers = daemon_exchange(daemon_process.index_dir / SOCKET_NAME, payload)
     assert len(answers) == payload.count(b"\n")  # one answer per line
     for answer in answers:
-        assert answer["v"] == 1 and isinstance(answer["ok"], bool)
+        assert answer["v"] == 2 and isinstance(answer["ok"], bool)
         if not answer["ok"]:
             assert answer["error"] and "\n" not in answer["error"]
             assert answer["kind"] != "DaemonError"  # only foreseen errors, none unexpected

@@ -28,7 +28,7 @@ from textual.widgets import Static
 from codeseek import FakeEmbedder, SearchHit
 from codeseek.api import Index, IndexStatus
 from codeseek.errors import InvalidQuery
-from codeseek.search import Filters
+from codeseek.query import Filters, Query
 from codeseek.tui.app import WARM_UP_QUERY, CodeseekApp, Request, _ProgressReport, _Stopped
 from codeseek.tui.backend import LocalIndexer, neighbour_hits
 from codeseek.tui.editor import editor_command
@@ -212,16 +212,25 @@ class ScriptedSearcher:
         self.calls: list[str] = []
         self.finished: list[str] = []
 
-    def search(self, query: str, k: int = 10, *, languages: Sequence[str] = (),
-               paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
-        self.calls.append(query)
-        if query in self.slow:
+    def search(self, query: Query) -> list[SearchHit]:
+        text = str(query.text)
+        self.calls.append(text)
+        if text in self.slow:
             assert self.gate.wait(SETTLE_SECONDS), "the test never opened the gate"
-        self.finished.append(query)
-        return [fake_hit(query)]
+        self.finished.append(text)
+        return [fake_hit(text)]
 
-    def neighbours(self, unit_id: int, k: int = 10, **filters: Sequence[str]) -> list[SearchHit]:
-        return [fake_hit(f"near {unit_id}")]
+    def search_many(self, queries: Sequence[Query]) -> list[list[SearchHit]]:
+        return [self.search(query) for query in queries]
+
+    def neighbours(self, query: Query) -> list[SearchHit]:
+        return [fake_hit(f"near {query.unit_id}")]
+
+    def daemon_status(self) -> dict[str, Any] | None:
+        return None  # in process
+
+    def close(self) -> None:
+        return None  # holds nothing
 
     def queries(self) -> list[str]:
         """The searches the user's typing asked for (not the start-up warm-up)."""
@@ -610,8 +619,8 @@ class HostileSearcher(ScriptedSearcher):
         super().__init__()
         self.path = path
 
-    def search(self, query: str, k: int = 10, **filters: Sequence[str]) -> list[SearchHit]:
-        hit = fake_hit(query)
+    def search(self, query: Query) -> list[SearchHit]:
+        hit = fake_hit(str(query.text))
         return [dataclasses.replace(
             hit, path=self.path, qualname=f"Dock{HOSTILE}.unlock", name="unlock",
             doc_summary=f"Unlock a dock{HOSTILE}. Then more.", start_line=2, end_line=3)]
@@ -1064,8 +1073,20 @@ class FrozenStatus:
     def __init__(self, index: Index) -> None:
         self.index = index
 
-    def search(self, query: str, k: int = 10, **filters: Sequence[str]) -> list[SearchHit]:
-        return self.index.search(query, k, **filters)
+    def search(self, query: Query) -> list[SearchHit]:
+        return self.index.search(query)
+
+    def search_many(self, queries: Sequence[Query]) -> list[list[SearchHit]]:
+        return self.index.search_many(queries)
+
+    def neighbours(self, query: Query) -> list[SearchHit]:
+        return self.index.neighbours(query)
+
+    def daemon_status(self) -> dict[str, Any] | None:
+        return None  # in process
+
+    def close(self) -> None:
+        return None  # the test closes its index
 
     def searcher(self) -> Any:
         return self.index.searcher()
@@ -1227,14 +1248,15 @@ async def test_a_light_terminal_gets_the_light_theme(index: Index, repo: Path) -
 
 @in_loop
 async def test_the_ui_searches_through_a_running_daemon(index: Index, repo: Path) -> None:
-    from codeseek.client import DaemonClient
     from codeseek.daemon import Daemon
-    from codeseek.tui.backend import DaemonSearcher
+    from codeseek.service import connect
+    from codeseek.tui.backend import service_state
 
     daemon = Daemon(index, reconcile_seconds=3600)
     daemon.start()
     try:
-        searcher = DaemonSearcher(DaemonClient(index.settings.index_dir))
+        searcher = connect(repo, index_dir=index.settings.index_dir)
+        assert searcher.daemon_status() is not None  # the daemon answers, not this process
         app = make_app(searcher, repo)
         async with app.run_test() as pilot:
             await ask(pilot, app, "issue refund")
@@ -1242,10 +1264,19 @@ async def test_the_ui_searches_through_a_running_daemon(index: Index, repo: Path
             assert [h.unit_id for h in app.hits] == [
                 h.unit_id for h in index.search("issue refund", app.k)]
             assert daemon.queries_served >= 1
-            near = searcher.neighbours(app.hits[0].unit_id, 5)
+            near = searcher.neighbours(Query(unit_id=app.hits[0].unit_id, k=5))
             assert [h.unit_id for h in near] == [
                 h.unit_id for h in index.neighbours(app.hits[0].unit_id, 5)]
             assert searcher.status().units == index.status().units
-            assert searcher.service_state().startswith(f"daemon {os.getpid()} · watching")
+            assert service_state(searcher).startswith(f"daemon {os.getpid()} · watching")
     finally:
         daemon.stop()
+
+
+def test_a_since_word_becomes_a_chip_and_a_time(monkeypatch: pytest.MonkeyPatch) -> None:
+    assert take_chips("since=3d refund ") == ("refund ", [("since", "3d")])
+    chips = FilterSet().added(("language", "go")).added(("since", "12h"))
+    monkeypatch.setattr(time, "time", lambda: 1_800_000_000.0)  # an age counts back from now
+    assert chips.as_filters() == Filters(("go",), (), (), 1_800_000_000.0 - 12 * 3600)
+    with pytest.raises(InvalidQuery, match="--since wants an ISO date"):
+        FilterSet().added(("since", "soon"))

@@ -36,11 +36,11 @@ from textual.worker import get_current_worker
 from codeseek.display import printable
 from codeseek.errors import CodeseekError, ConfigError, IndexNotFound
 from codeseek.languages import language_names
+from codeseek.query import Query
 from codeseek.search import NEIGHBOURS_OF, SearchHit
 from codeseek.tui.backend import (
     IndexBuilder,
     SearchBackend,
-    close_searcher,
     neighbour_hits,
     service_state,
 )
@@ -204,7 +204,8 @@ class CodeseekApp(App[int]):
         """Close the searcher (after the app has ended)."""
         with self._lock:
             searcher, self.searcher = self.searcher, None
-        close_searcher(searcher)
+        if searcher is not None:
+            searcher.close()
 
     # -- what the screen shows ------------------------------------------------------------
 
@@ -326,8 +327,8 @@ class CodeseekApp(App[int]):
         try:
             if request.near is not None:
                 return neighbour_hits(searcher, request.near, self.k, filters.as_filters())
-            return searcher.search(request.query, self.k, languages=filters.languages,
-                                   paths=filters.paths, kinds=filters.kinds)
+            return searcher.search(Query(text=request.query, k=self.k,
+                                         filters=filters.as_filters()))
         except (CodeseekError, OSError) as exc:
             return exc
 
@@ -415,7 +416,7 @@ class CodeseekApp(App[int]):
             outcome: Exception | None = None
             if searcher is not None:
                 try:
-                    searcher.search(WARM_UP_QUERY, 1)
+                    searcher.search(Query(text=WARM_UP_QUERY, k=1))
                 except (CodeseekError, OSError) as exc:
                     outcome = exc
         self._to_screen(self._warmed_up, outcome)
@@ -502,13 +503,13 @@ class CodeseekApp(App[int]):
             return
         try:
             fresh = builder.open_searcher()
-            fresh.search(WARM_UP_QUERY, 1)  # loads the vectors before anyone waits on them
+            fresh.search(Query(text=WARM_UP_QUERY, k=1))  # loads the vectors before any wait
         except (CodeseekError, OSError):
             return
         with self._lock:
             old, self.searcher = self.searcher, fresh
         if old is not None:
-            close_searcher(old)
+            old.close()
         self._to_screen(self._searcher_changed)
 
     def _searcher_changed(self) -> None:

@@ -1,13 +1,10 @@
-"""What the UI talks to: the searcher seam, the optional index builder, the neighbours.
+"""What the UI talks to: a search service, the optional index builder, the neighbours.
 
-The app needs only a :class:`SearchBackend`: the in-process
-:class:`~codeseek.api.Index` is one, and a client of the background service
-offers the same three methods (``search``, ``neighbours``, ``status``).
-Anything more is optional and found by name:
-
-* ``service_state()``: a few words on the background service and the file
-  watcher, shown in the index line.
-* ``close()``: called when the UI swaps searchers or quits.
+The app needs only a :class:`~codeseek.service.SearchService` (what
+:func:`codeseek.connect` returns: the in-process :class:`~codeseek.api.Index`
+or a running daemon); its ``daemon_status()`` gives the few words on the
+background service shown in the index line, and ``close()`` is called when the
+UI swaps searchers or quits.
 
 An :class:`IndexBuilder` (for the in-process case, :class:`LocalIndexer`)
 builds or refreshes the index in a worker thread and opens fresh searchers.
@@ -19,38 +16,23 @@ import os
 import threading
 from collections.abc import Sequence
 from pathlib import Path
-from typing import TYPE_CHECKING, Protocol, cast, runtime_checkable
+from typing import TYPE_CHECKING, Protocol, cast
 
 import numpy as np
 
 from codeseek.indexer import ProgressCallback, UpdateSummary
-from codeseek.search import Filters, SearchHit
+from codeseek.query import Filters, Query
+from codeseek.search import SearchHit
+from codeseek.service import SearchService
 
 if TYPE_CHECKING:
-    from codeseek.api import Index, IndexStatus
-    from codeseek.client import DaemonClient
+    from codeseek.api import Index
     from codeseek.embed import Embedder, Progress
 
 LOCAL_SERVICE_STATE = "in-process · not watching"
 
-
-@runtime_checkable
-class SearchBackend(Protocol):
-    """The two calls the UI makes of its searcher."""
-
-    def search(self, query: str, k: int = 10, *, languages: Sequence[str] = (),
-               paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
-        """The k best units for a query."""
-        ...
-
-    def neighbours(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
-                   paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
-        """The unit's neighbours: the k units whose meaning is nearest its own."""
-        ...
-
-    def status(self) -> IndexStatus:
-        """What the index holds and how fresh it is."""
-        ...
+SearchBackend = SearchService
+"""The UI's searcher: any search service (the name the UI's package exports)."""
 
 
 class IndexBuilder(Protocol):
@@ -60,24 +42,19 @@ class IndexBuilder(Protocol):
         """Bring the index up to date (called in a worker thread)."""
         ...
 
-    def open_searcher(self) -> SearchBackend:
+    def open_searcher(self) -> SearchService:
         """A new searcher over what the index holds now (raises IndexNotFound if none)."""
         ...
 
 
-def service_state(searcher: object) -> str:
+def service_state(searcher: SearchService) -> str:
     """A few words on the background service and the watcher behind a searcher."""
-    describe = getattr(searcher, "service_state", None)
-    if callable(describe):
-        return str(describe())
-    return LOCAL_SERVICE_STATE
-
-
-def close_searcher(searcher: object) -> None:
-    """Close a searcher that can be closed."""
-    close = getattr(searcher, "close", None)
-    if callable(close):
-        close()
+    daemon = searcher.daemon_status()
+    if daemon is None:
+        return LOCAL_SERVICE_STATE
+    pending = f" · {daemon['pending']} pending" if daemon["pending"] else ""
+    error = " · write error, retrying" if daemon["last_error"] else ""
+    return f"daemon {daemon['pid']} · watching ({daemon['watcher']}){pending}{error}"
 
 
 # -- the in-process index ------------------------------------------------------------
@@ -156,45 +133,8 @@ class LocalIndexer:
 # -- the neighbours -------------------------------------------------------------------
 
 
-def neighbour_hits(searcher: SearchBackend, hit: SearchHit, k: int,
+def neighbour_hits(searcher: SearchService, hit: SearchHit, k: int,
                    filters: Filters) -> list[SearchHit]:
     """``hit``'s neighbours: the k units whose meaning is nearest it, within the filters
     (the library's ``neighbours``, in process or through the daemon)."""
-    return searcher.neighbours(hit.unit_id, k, languages=filters.languages,
-                               paths=filters.paths, kinds=filters.kinds)
-
-
-# -- the background service ------------------------------------------------------------
-
-
-class DaemonSearcher:
-    """A running ``codeseek watch`` as the UI's searcher: the same answers from a
-    warm model, and an index the daemon keeps fresh by itself."""
-
-    def __init__(self, client: DaemonClient) -> None:
-        self.client = client
-
-    def search(self, query: str, k: int = 10, *, languages: Sequence[str] = (),
-               paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
-        """The daemon's answer to one query."""
-        return self.client.search_many([query], k, languages=languages, paths=paths,
-                                       kinds=kinds)[0]
-
-    def neighbours(self, unit_id: int, k: int = 10, *, languages: Sequence[str] = (),
-                   paths: Sequence[str] = (), kinds: Sequence[str] = ()) -> list[SearchHit]:
-        """The unit's neighbours, found by the daemon."""
-        return self.client.neighbours(unit_id, k, languages=languages, paths=paths,
-                                      kinds=kinds)
-
-    def status(self) -> IndexStatus:
-        """The index's status, as the daemon reports it."""
-        from codeseek.api import IndexStatus
-
-        return IndexStatus(**self.client.status()["index"])
-
-    def service_state(self) -> str:
-        """The daemon and its watcher, in a few words."""
-        daemon = self.client.status()["daemon"]
-        pending = f" · {daemon['pending']} pending" if daemon["pending"] else ""
-        error = " · write error, retrying" if daemon["last_error"] else ""
-        return f"daemon {daemon['pid']} · watching ({daemon['watcher']}){pending}{error}"
+    return searcher.neighbours(Query(unit_id=hit.unit_id, k=k, filters=filters))

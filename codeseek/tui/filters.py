@@ -1,8 +1,9 @@
 """Filters as the UI holds them: an ordered set of chips, typed as words of the query.
 
-Typing ``language=go``, ``unit=method`` or ``files=billing/`` in the query
-line followed by a space turns the word into a chip (the same three filters as
-``codeseek search --language/--unit/--files``). Chips keep the order they were
+Typing ``language=go``, ``unit=method``, ``files=billing/`` or ``since=3d`` in
+the query line followed by a space turns the word into a chip (the same filters
+as ``codeseek search --language/--unit/--files/--since``; an age counts back
+from each search). Chips keep the order they were
 added in, so "remove the last one" means what the user expects.
 """
 
@@ -12,13 +13,15 @@ import re
 from collections.abc import Sequence
 from dataclasses import dataclass
 
-from codeseek.search import Filters
+from codeseek.filtering import since_time
+from codeseek.query import Filters
 from codeseek.units import KINDS
 
 LANGUAGE = "language"
 FILES = "files"
 UNIT = "unit"
-FIELDS = (LANGUAGE, UNIT, FILES)
+SINCE = "since"
+FIELDS = (LANGUAGE, UNIT, FILES, SINCE)
 """Chip names, as typed in the query line (``NAME=VALUE``)."""
 
 _NAMES = "|".join(FIELDS)
@@ -53,9 +56,15 @@ class FilterSet:
         """Gitignore-style path patterns."""
         return self._values(FILES)
 
+    @property
+    def since(self) -> float | None:
+        """The time the last ``since`` chip names (None without one)."""
+        values = self._values(SINCE)
+        return since_time(values[-1]) if values else None
+
     def as_filters(self) -> Filters:
         """The library's filter record."""
-        return Filters(self.languages, self.paths, self.kinds)
+        return Filters(self.languages, self.paths, self.kinds, self.since)
 
     def added(self, chip: Chip) -> FilterSet:
         """With one more chip (checked first: raises CodeseekError when unknown)."""

@@ -1,0 +1,138 @@
+"""The query seam: one :class:`SearchService` protocol, and :func:`connect`, the one
+place that decides whether a search is answered by a running daemon or in process.
+
+A search service takes :class:`~codeseek.query.Query` values and gives
+:class:`~codeseek.hits.SearchHit` records. Two implement it: the in-process
+:class:`~codeseek.api.Index`, and :class:`~codeseek.client.DaemonService`, the
+client of a running ``codeseek watch``. The command line and the UI call
+:func:`connect` and use what it returns; neither knows which one it got.
+
+The rules :func:`connect` applies:
+
+* an explicit ``model`` or ``backend`` is answered in process (the daemon runs
+  its own model);
+* when no daemon listens on the index's socket (there is none, or a crashed
+  daemon left it), the index is searched in process, silently (also when the
+  daemon goes away between two calls): :meth:`SearchService.daemon_status`
+  says which answered last;
+* a daemon that listens but fails to answer is an error
+  (:class:`~codeseek.errors.DaemonError`), never a silent fallback.
+
+Light: the index is imported only when :func:`connect` opens one.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Callable, Iterable, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
+
+from codeseek.hits import SearchHit
+from codeseek.query import Query
+
+if TYPE_CHECKING:
+    from codeseek.api import Index
+    from codeseek.embed import Embedder
+
+Notice = Callable[[str], None]
+"""Where a service says something worth knowing that is not an error (stderr)."""
+
+
+@dataclass(frozen=True)
+class IndexStatus:
+    """What an index holds and how fresh it is."""
+
+    repo: str
+    index_dir: str
+    files: int
+    units: int
+    languages: dict[str, int]
+    skipped: dict[str, int]
+    files_with_syntax_errors: int
+    model_id: str | None
+    dim: int | None
+    generation: int
+    vectors_in_sync: bool
+    updated_at: float | None
+    bytes_on_disk: int
+    adapter: dict[str, object] | None = None
+
+    def to_json(self) -> dict[str, object]:
+        """A JSON-ready dict."""
+        return dict(self.__dict__)
+
+
+@runtime_checkable
+class SearchService(Protocol):
+    """What answers searches: the in-process index or a running daemon."""
+
+    def search(self, query: Query) -> list[SearchHit]:
+        """The best units for one query (at most ``query.k``)."""
+        ...
+
+    def search_many(self, queries: Sequence[Query]) -> Iterable[list[SearchHit]]:
+        """Each query's answer, in order (a daemon's are read as they arrive)."""
+        ...
+
+    def neighbours(self, query: Query) -> list[SearchHit]:
+        """The units whose meaning is nearest ``query.unit_id``'s own."""
+        ...
+
+    def status(self) -> IndexStatus:
+        """What the index holds and how fresh it is."""
+        ...
+
+    def daemon_status(self) -> dict[str, Any] | None:
+        """The daemon's own status (pid, state, watcher, ...); None in process."""
+        ...
+
+    def close(self) -> None:
+        """Release what the service holds."""
+        ...
+
+
+def connect(repo: str | os.PathLike[str] = ".", *,
+            index_dir: str | os.PathLike[str] | None = None,
+            model: str | os.PathLike[str] | None = None, backend: str | None = None,
+            embedder: Embedder | None = None, check: Callable[[Index], None] | None = None,
+            notice: Notice | None = None) -> SearchService:
+    """The search service of ``repo``'s index: its running daemon, or the index in process.
+
+    The index is opened first either way (so a missing or damaged index is the
+    same error), and ``check`` runs on it. ``embedder`` is the in-process model
+    (it does not turn the daemon away; ``model`` and ``backend`` do). ``notice``
+    hears why a query the daemon cannot take is answered in process.
+    """
+    from codeseek.api import open_index
+    from codeseek.client import DaemonClient, DaemonService
+
+    index = open_index(repo, index_dir=index_dir, model=model, backend=backend,
+                       embedder=embedder)
+    try:
+        if check is not None:
+            check(index)
+        if model is None and backend is None:
+            client = DaemonClient(index.settings.index_dir)
+            if client.present():
+                return DaemonService(client, index, notice)
+    except BaseException:
+        index.close()
+        raise
+    return index
+
+
+def daemon_status(repo: str | os.PathLike[str] = ".", *,
+                  index_dir: str | os.PathLike[str] | None = None) -> dict[str, Any] | None:
+    """The running daemon's own status, or None when no daemon listens on the index's
+    socket (a daemon that listens but fails raises :class:`~codeseek.errors.DaemonError`)."""
+    from codeseek.client import DaemonClient, DaemonUnavailable
+    from codeseek.config import load_settings
+
+    client = DaemonClient(load_settings(Path(repo), index_dir=index_dir).index_dir)
+    try:
+        daemon: dict[str, Any] = client.status()["daemon"]
+    except DaemonUnavailable:
+        return None
+    return daemon
