@@ -717,12 +717,19 @@ def test_the_log_names_the_updated_paths(fake_index: Index) -> None:
 
 
 def age_files(repo: Path, old: float) -> set[str]:
-    """Set every Go and Rust file's modification time to ``old``; the paths set."""
+    """Set every Go and Rust file's modification time to ``old`` and every other file's
+    to now (a copy keeps the checkout's own times, which may be of any age); the paths
+    set to ``old``."""
     aged: set[str] = set()
+    now = time.time()
     for path in sorted(repo.rglob("*")):
-        if path.suffix in (".go", ".rs") and ".codeseek" not in path.parts:
+        if not path.is_file() or ".codeseek" in path.parts:
+            continue
+        if path.suffix in (".go", ".rs"):
             os.utime(path, (old, old))
             aged.add(path.relative_to(repo).as_posix())
+        else:
+            os.utime(path, (now, now))
     return aged
 
 
