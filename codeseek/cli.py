@@ -880,12 +880,12 @@ def cmd_mcp(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         raise UsageError("--index-dir names one index; give it with one --repo")
     roots = [_root(repo) for repo in args.repos] or [_root(None)]
     try:
-        from codeseek.mcp_server import Tools, open_repositories, serve_stdio
-
         import mcp  # noqa: F401  (the optional extra)
     except ImportError as exc:
         raise CodeseekError("codeseek mcp needs the mcp package: pip install 'codeseek[mcp]'"
-                         ) from exc
+                            ) from exc
+    from codeseek.mcp_server import Tools, open_repositories, serve_stdio
+
     tools = Tools(open_repositories(roots, index_dir=args.index_dir, model=args.model,
                                     backend=args.backend))
     serve_stdio(tools)
