@@ -244,6 +244,10 @@ def bad_calls(repo: Path, outside: Path) -> list[tuple[str, dict[str, Any], str]
          f"error: {MAINTENANCE}: no unit named 'no_such_unit'"),
         ("neighbours", {"path": MAINTENANCE},
          "error: name the unit by qualname or by line, one of them"),
+        ("outline", {"path": "python/nothing.py"}, "error: python/nothing.py: no such file"),
+        ("outline", {"path": "python"}, "error: python: a folder, not a file"),
+        ("outline", {"path": "README.md"}, "error: README.md: left out: no supported language"),
+        ("outline", {"path": "."}, "error: .: the repository itself, not a file"),
         ("nosuch", {}, "error: no tool named 'nosuch'; the tools are search, neighbours, "
                        "outline, status"),
     ]
