@@ -291,6 +291,11 @@ class Tools:
             raise InvalidQuery("the query must be a string")
         if not query.strip():
             raise InvalidQuery("the query is empty; type what you are looking for")
+        try:
+            query.encode("utf-8")
+        except UnicodeEncodeError as exc:  # a lone surrogate escaped in the JSON
+            raise InvalidQuery(f"the query is not valid UTF-8 text: {printable(query)} "
+                               f"(character {exc.start + 1})") from None
         k = _k(args)
         repo = self._repo(args)
         options = self._filters(args, repo)

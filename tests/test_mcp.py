@@ -223,6 +223,9 @@ def bad_calls(repo: Path, outside: Path) -> list[tuple[str, dict[str, Any], str]
         ("search", {}, "error: search needs a query: what the code does, in plain words"),
         # the same words as `codeseek search ""`
         ("search", {"query": "  "}, "error: the query is empty; type what you are looking for"),
+        # the same words as `codeseek search` given bytes that are not UTF-8
+        ("search", {"query": "fare\udcff"},
+         "error: the query is not valid UTF-8 text: fare"),
         ("search", {"query": "x", "k": 0}, "error: k must be a whole number from 1 to 50, not 0"),
         ("search", {"query": "x", "k": 51},
          "error: k must be a whole number from 1 to 50, not 51"),
@@ -321,6 +324,11 @@ class Wire:
         self.process = process
         self.next_id = 0
 
+    def write(self, line: bytes) -> None:
+        assert self.process.stdin is not None
+        self.process.stdin.write(line)
+        self.process.stdin.flush()
+
     def send(self, method: str, params: dict[str, Any] | None = None,
              notify: bool = False) -> dict[str, Any] | None:
         message: dict[str, Any] = {"jsonrpc": "2.0", "method": method}
@@ -373,6 +381,11 @@ def test_raw_json_rpc_over_stdio(wire: Wire, indexed: Path) -> None:
     assert bad is not None and bad["result"]["isError"] is True
     assert bad["result"]["content"][0]["text"] == (
         "error: k must be a whole number from 1 to 50, not 0")
+    # a lone surrogate is not Unicode text: the SDK's transport drops such a message
+    # unanswered (the in-process test sees the tool's own error), and the server answers on
+    wire.write(b'{"jsonrpc": "2.0", "id": 99, "method": "tools/call", "params": {"name": '
+               b'"search", "arguments": {"query": "fare\\udcff"}}}\n')
+    wire.write(b"this line is not JSON\n")
     unknown = wire.send("tools/call", {"name": "grep", "arguments": {}})
     assert unknown is not None and unknown["result"]["isError"] is True
     found = wire.send("tools/call", {"name": "search", "arguments": {
