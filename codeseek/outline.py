@@ -67,6 +67,13 @@ def outline_repository_file(settings: Settings, rel_path: str) -> list[CodeUnit]
     version-control folder, a secret, generated, binary, a symbolic link, in a
     linked folder, too large...) is refused with its reason, as ``status --skipped``
     gives it, and nothing of it is read."""
+    try:
+        return _outline_repository_file(settings, rel_path)
+    except OSError as exc:  # a name too long for the file system, a loop of links...
+        raise RepositoryNotFound(f"{rel_path}: cannot read: {exc.strerror or exc}") from exc
+
+
+def _outline_repository_file(settings: Settings, rel_path: str) -> list[CodeUnit]:
     rules = IgnoreRules(settings.repo, settings.exclude)
     result = ScanResult()
     folder = rel_path.rsplit("/", 1)[0] if "/" in rel_path else ""

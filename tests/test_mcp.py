@@ -4,6 +4,7 @@ raw JSON-RPC on stdio, against bad input, and with a running daemon."""
 from __future__ import annotations
 
 import ast
+import errno
 import json
 import os
 import subprocess
@@ -251,6 +252,10 @@ def bad_calls(repo: Path, outside: Path) -> list[tuple[str, dict[str, Any], str]
         ("outline", {"path": "python"}, "error: python: a folder, not a file"),
         ("outline", {"path": "README.md"}, "error: README.md: left out: no supported language"),
         ("outline", {"path": "."}, "error: .: the repository itself, not a file"),
+        # the operating system's own words for the error (reference: os.strerror)
+        ("outline", {"path": "a" * 5000},
+         f"error: {'a' * 5000}: cannot read: {os.strerror(errno.ENAMETOOLONG)}"),
+        ("outline", {"path": "x/" * 3000 + "y.py"}, "error: x/x/x/"),
         ("nosuch", {}, "error: no tool named 'nosuch'; the tools are search, neighbours, "
                        "outline, status"),
     ]
