@@ -481,3 +481,25 @@ def test_help_does_not_import_the_sdk() -> None:
                 if "|" in line}
     assert "codeseek.cli" in imported
     assert not {"mcp", "mcp_types", "codeseek.mcp_server", "anyio"} & imported
+
+
+def test_mcp_without_the_sdk_says_how_to_install_it(indexed: Path,
+                                                    monkeypatch: pytest.MonkeyPatch) -> None:
+    import io
+
+    from codeseek.cli import main
+
+    monkeypatch.setitem(sys.modules, "mcp", None)  # `import mcp` raises ImportError
+    err = io.StringIO()
+    assert main(["mcp", "--repo", str(indexed)], out=io.StringIO(), err=err) == 1
+    assert err.getvalue() == ("error: codeseek mcp needs the mcp package: "
+                              "pip install 'codeseek[mcp]'\n")
+
+
+def test_one_index_folder_for_several_repositories_is_a_usage_error(indexed: Path,
+                                                                    tmp_path: Path) -> None:
+    result = subprocess.run([sys.executable, "-m", "codeseek", "mcp", "--repo", str(indexed),
+                             "--repo", str(tmp_path), "--index-dir", str(tmp_path / "ix")],
+                            capture_output=True, text=True, stdin=subprocess.DEVNULL, timeout=60)
+    assert result.returncode == 2
+    assert result.stderr == "error: --index-dir names one index; give it with one --repo\n"
