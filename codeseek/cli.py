@@ -75,7 +75,7 @@ def build_parser() -> argparse.ArgumentParser:
     parser.add_argument("--version", action="version", version=f"codeseek {__version__}")
     commands = parser.add_subparsers(dest="command", metavar="COMMAND")
     for add_parser in (_index_parser, _search_parser, _status_parser, _watch_parser,
-                       _outline_parser, _ui_parser, _eval_parser, _tune_parser):
+                       _outline_parser, _ui_parser, _eval_parser, _tune_parser, _mcp_parser):
         add_parser(commands)
     return parser
 
@@ -835,9 +835,42 @@ def cmd_tune(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     return EXIT_OK
 
 
+# -- mcp ---------------------------------------------------------------------------
+
+
+def _mcp_parser(commands: Any) -> None:
+    mcp = commands.add_parser(
+        "mcp", help="serve coding agents and editors: a Model Context Protocol server on stdio",
+        description="Answer Model Context Protocol requests on stdin and stdout with the tools "
+                    "search, neighbours, outline and status, through the running daemon when "
+                    "one watches the index (none is started), else in this process. Needs the "
+                    "mcp extra: pip install 'codeseek[mcp]'.")
+    mcp.add_argument("--repo", action="append", dest="repos", default=[], metavar="PATH",
+                     help="a repository to serve (repeatable; default: the current folder's "
+                          "repository); with several, the tools take a repo argument")
+    _common_index_options(mcp)
+
+
+def cmd_mcp(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    if args.index_dir and len(args.repos) > 1:
+        raise UsageError("--index-dir names one index; give it with one --repo")
+    roots = [_root(repo) for repo in args.repos] or [_root(None)]
+    try:
+        import mcp  # noqa: F401  (the optional extra)
+    except ImportError as exc:
+        raise CodeseekError("codeseek mcp needs the mcp package: pip install 'codeseek[mcp]'"
+                            ) from exc
+    from codeseek.mcp_server import Tools, open_repositories, serve_stdio
+
+    tools = Tools(open_repositories(roots, index_dir=args.index_dir, model=args.model,
+                                    backend=args.backend))
+    serve_stdio(tools)
+    return EXIT_OK
+
+
 COMMANDS = {"index": cmd_index, "search": cmd_search, "status": cmd_status,
             "watch": cmd_watch, "outline": cmd_outline, "ui": cmd_ui,
-            "eval": cmd_eval, "tune": cmd_tune}
+            "eval": cmd_eval, "tune": cmd_tune, "mcp": cmd_mcp}
 
 
 def main(argv: Sequence[str] | None = None, out: TextIO | None = None,

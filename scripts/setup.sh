@@ -38,7 +38,9 @@ fi
 echo "setup: installing codeseek and its dependencies into .venv (a few minutes the first time)" >&2
 .venv/bin/python -m pip install --quiet --upgrade pip
 # constraints.txt pins torch to the CPU build; see the comment there.
-.venv/bin/python -m pip install --quiet -c constraints.txt -e ".[dev]"
+# the extras the tests need: dev tools, and mcp for `codeseek mcp` (tests/test_mcp.py)
+EXTRAS="dev,mcp"
+.venv/bin/python -m pip install --quiet -c constraints.txt -e ".[$EXTRAS]"
 rm -f .venv/.codeseek-setup-*
 touch "$stamp"
 echo "setup: done" >&2
