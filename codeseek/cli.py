@@ -380,6 +380,8 @@ def _search_neighbours(args: argparse.Namespace, out: TextIO, err: TextIO) -> in
     """``search --neighbours PLACE``: the unit's neighbours, printed like a search."""
     if args.query is not None or args.batch is not None:
         raise UsageError("give a QUERY, --batch FILE or --neighbours PATH:NAME, only one")
+    if args.k < 1:
+        raise UsageError(f"-k must be at least 1, not {args.k}")
     filters = _search_filters(args)
     with _open(args.repo, args, create=False) as index:
         unit_id = _unit_of_place(index, args.neighbours)
@@ -401,7 +403,8 @@ def _unit_of_place(index: Index, place: str) -> int:
     or the name is fine (the first split naming an indexed file wins)."""
     splits = [at for at, char in enumerate(place) if char == ":" and 0 < at < len(place) - 1]
     if not splits:
-        raise InvalidQuery(f"--neighbours wants PATH:QUALNAME or PATH:LINE, not {place!r}")
+        raise UsageError(f"--neighbours wants PATH:QUALNAME or PATH:LINE, not "
+                         f"{printable(repr(place))}")
     root = index.settings.repo.resolve()
     outside: str | None = None
     for at in splits:
@@ -415,7 +418,7 @@ def _unit_of_place(index: Index, place: str) -> int:
             if index.has_file(relative):
                 return index.unit_at(relative, where)
     if outside is not None:
-        raise InvalidQuery(f"{outside}: outside the repository {root}")
+        raise UsageError(f"{printable(outside)}: outside the repository {printable(str(root))}")
     raise InvalidQuery(f"{place[:splits[0]]}: not a file of the index")
 
 
@@ -467,6 +470,9 @@ def _read_batch(source: str) -> list[str]:
             data = Path(source).read_bytes()
     except FileNotFoundError as exc:
         raise InvalidQuery(f"{source}: no such file") from exc
+    except IsADirectoryError as exc:
+        raise InvalidQuery(f"{source}: a folder, not a batch file; give one query per line "
+                           "in a file, or - for standard input") from exc
     except OSError as exc:
         raise InvalidQuery(f"{source}: cannot read the batch file: {exc}") from exc
     if isinstance(data, str):  # a text stream stood in for stdin (tests)

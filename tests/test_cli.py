@@ -649,18 +649,33 @@ def test_neighbours_of_a_line_take_the_innermost_unit(indexed: Path,
         indexed, "PaymentService.issue_refund", 3, languages=["go"])
 
 
-@pytest.mark.parametrize(("place", "message"), [
-    (f"{REFUND}:no_such_unit", f"{REFUND}: no unit named 'no_such_unit'"),
-    (f"{REFUND}:99999", f"{REFUND}: no unit holds line 99999"),
-    ("python/kestrune/nowhere.py:run", "python/kestrune/nowhere.py: not a file of the index"),
-    ("issue_refund", "--neighbours wants PATH:QUALNAME or PATH:LINE, not 'issue_refund'"),
+@pytest.mark.parametrize(("place", "message", "status"), [
+    (f"{REFUND}:no_such_unit", f"{REFUND}: no unit named 'no_such_unit'", 1),
+    (f"{REFUND}:99999", f"{REFUND}: no unit holds line 99999", 1),
+    ("python/kestrune/nowhere.py:run", "python/kestrune/nowhere.py: not a file of the index", 1),
+    # a value that cannot name a unit at all is a usage error, as a malformed --files is
+    ("issue_refund", "--neighbours wants PATH:QUALNAME or PATH:LINE, not 'issue_refund'", 2),
 ])
 def test_neighbours_of_an_unknown_unit_is_a_one_line_error(indexed: Path, place: str,
-                                                           message: str) -> None:
+                                                           message: str, status: int) -> None:
     code, out, err = run_cli("search", "--neighbours", place, "--repo", str(indexed),
                              "--backend", "fake")
-    assert (code, out) == (1, "")
+    assert (code, out) == (status, "")
     assert err == f"error: {message}\n"
+
+
+def test_neighbours_with_k_under_one_is_a_usage_error(indexed: Path) -> None:
+    code, out, err = run_cli("search", "--neighbours", f"{REFUND}:issue_refund", "-k", "0",
+                             "--repo", str(indexed), "--backend", "fake")
+    assert (code, out, err) == (2, "", "error: -k must be at least 1, not 0\n")
+
+
+def test_batch_from_a_folder_is_one_line(indexed: Path) -> None:
+    code, out, err = run_cli("search", "--batch", str(indexed), "--repo", str(indexed),
+                             "--backend", "fake")
+    assert (code, out) == (1, "")
+    assert err == (f"error: {indexed}: a folder, not a batch file; give one query per line in "
+                   "a file, or - for standard input\n")
 
 
 def test_neighbours_of_a_path_outside_the_repository(indexed: Path, tmp_path: Path,
@@ -669,7 +684,7 @@ def test_neighbours_of_a_path_outside_the_repository(indexed: Path, tmp_path: Pa
     monkeypatch.chdir(tmp_path)
     code, out, err = run_cli("search", "--neighbours", "elsewhere.py:run", "--repo",
                              str(indexed), "--backend", "fake")
-    assert (code, out) == (1, "")
+    assert (code, out) == (2, "")  # a usage error, as --files outside the repository is
     assert err == f"error: elsewhere.py: outside the repository {indexed.resolve()}\n"
 
 
