@@ -861,15 +861,15 @@ def cmd_mcp(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if args.index_dir and len(args.repos) > 1:
         raise UsageError("--index-dir names one index; give it with one --repo")
     roots = [_root(repo) for repo in args.repos] or [_root(None)]
-    try:
-        import mcp  # noqa: F401  (the optional extra)
-    except ImportError as exc:
-        raise CodeseekError("codeseek mcp needs the mcp package: pip install 'codeseek[mcp]'"
-                            ) from exc
+    import importlib.util
+
+    if importlib.util.find_spec("mcp") is None:  # the optional extra
+        raise CodeseekError("codeseek mcp needs the mcp package: pip install 'codeseek[mcp]'")
     from codeseek.mcp_server import Tools, open_repositories, serve_stdio
 
     tools = Tools(open_repositories(roots, index_dir=args.index_dir, model=args.model,
                                     backend=args.backend))
+    tools.warm_in_background()  # the model loads while the SDK does
     serve_stdio(tools)
     return EXIT_OK
 

@@ -32,6 +32,7 @@ the library in process.
 from __future__ import annotations
 
 import os
+import threading
 from collections.abc import Callable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -207,20 +208,48 @@ class Tools:
         if not repositories:
             raise InvalidQuery("serve at least one repository")
         self.repositories = list(repositories)
+        self._lock = threading.Lock()  # one call at a time, and none during the warm-up
+
+    def warm_in_background(self) -> threading.Thread:
+        """Open each repository's service and load its model in a thread, while the
+        server itself starts: the first search then finds them ready. A failure here
+        is left for the first call, which meets it again and answers with it."""
+        thread = threading.Thread(target=self._warm, name="codeseek-mcp-warm", daemon=True)
+        thread.start()
+        return thread
+
+    def _warm(self) -> None:
+        from codeseek.api import Index
+
+        with self._lock:
+            for repo in self.repositories:
+                try:
+                    service = repo.service()
+                    if isinstance(service, Index):
+                        service.searcher()  # the model and the vectors
+                except Exception:  # noqa: BLE001 - any failure resurfaces at the first call
+                    continue
 
     def specs(self) -> list[dict[str, Any]]:
         return tool_specs([repo.name for repo in self.repositories])
 
     def close(self) -> None:
-        for repo in self.repositories:
-            repo.close()
+        with self._lock:
+            for repo in self.repositories:
+                repo.close()
 
     def call(self, name: str, arguments: dict[str, Any] | None) -> ToolAnswer:
         """Run one tool; a bad call is an error answer, never an exception."""
+        handlers: dict[str, Callable[[dict[str, Any]], ToolAnswer]] = {
+            "search": self._search, "neighbours": self._neighbours,
+            "outline": self._outline, "status": self._status}
+        with self._lock:
+            return self._call(handlers, name, arguments)
+
+    def _call(self, handlers: dict[str, Callable[[dict[str, Any]], ToolAnswer]], name: str,
+              arguments: dict[str, Any] | None) -> ToolAnswer:
         from codeseek.client import DaemonUnavailable
 
-        handlers = {"search": self._search, "neighbours": self._neighbours,
-                    "outline": self._outline, "status": self._status}
         try:
             handler = handlers.get(name)
             if handler is None:

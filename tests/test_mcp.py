@@ -503,3 +503,25 @@ def test_one_index_folder_for_several_repositories_is_a_usage_error(indexed: Pat
                             capture_output=True, text=True, stdin=subprocess.DEVNULL, timeout=60)
     assert result.returncode == 2
     assert result.stderr == "error: --index-dir names one index; give it with one --repo\n"
+
+
+def test_the_warm_up_loads_the_model_before_the_first_call(indexed: Path) -> None:
+    tools = Tools(open_repositories([indexed], backend="fake"))
+    try:
+        tools.warm_in_background().join(timeout=60)
+        service = tools.repositories[0]._service
+        assert service is not None and service._searcher is not None  # type: ignore[attr-defined]
+        answer = tools.call("search", {"query": "token bucket", "k": 3})
+        assert not answer.is_error and f"{RATELIMIT}:" in answer.text
+    finally:
+        tools.close()
+
+
+def test_a_failed_warm_up_is_answered_at_the_first_call(sample_copy: Path) -> None:
+    tools = Tools(open_repositories([sample_copy], backend="fake"))  # no index yet
+    try:
+        tools.warm_in_background().join(timeout=60)
+        answer = tools.call("search", {"query": "token bucket"})
+        assert answer.is_error and answer.text.startswith("error: no index")
+    finally:
+        tools.close()
