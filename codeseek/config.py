@@ -15,7 +15,8 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
-from codeseek.errors import ConfigError
+from codeseek.errors import ConfigError, FileRefused
+from codeseek.safefs import read_regular_file
 
 INDEX_DIR_NAME = ".codeseek"
 CONFIG_FILE_NAME = "codeseek.toml"
@@ -24,6 +25,9 @@ BACKENDS = ("onnx", "torch", "fake")
 DEFAULT_MAX_FILE_BYTES = 1024 * 1024
 DEFAULT_BATCH_SIZE = 32
 DEFAULT_TOP_K = 10
+# codeseek.toml is read only if it is a regular file itself (not a link, not a FIFO)
+# of at most this many bytes; settings never need more
+MAX_CONFIG_FILE_BYTES = 1024 * 1024
 
 ENV_VARS: dict[str, str] = {
     "CODESEEK_INDEX_DIR": "folder of the index (default: <repo>/.codeseek)",
@@ -172,10 +176,11 @@ def _positive_int(value: Any, name: str, default: int) -> int:
 
 def _read_config_file(path: Path) -> dict[str, Any]:
     try:
-        with path.open("rb") as handle:
-            data = tomllib.load(handle)
+        data = tomllib.loads(read_regular_file(path, MAX_CONFIG_FILE_BYTES).decode("utf-8"))
     except FileNotFoundError:
         return {}
+    except FileRefused as exc:
+        raise ConfigError(f"{path}: cannot read settings: {exc}") from None
     except UnicodeDecodeError as exc:  # TOML is UTF-8 by definition (toml.io, v1.0.0)
         raise ConfigError(f"{path}: cannot read settings: not UTF-8 text (byte "
                           f"0x{exc.object[exc.start]:02x} at offset {exc.start})") from None

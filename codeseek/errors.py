@@ -71,6 +71,11 @@ class IndexFolderUnsafe(CodeseekError):
     """The index folder (or a file in it) cannot be used without risk to other files."""
 
 
+class FileRefused(CodeseekError):
+    """A file codeseek reads by name (a setting or ignore file, a source file) is a link,
+    not a regular file (a FIFO would block) or larger than the cap for it."""
+
+
 class IndexBuilding(CodeseekError):
     """The index has no finished build yet: one runs now, or the last one was cut short."""
 

@@ -31,13 +31,14 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from test_daemon import wait_for
 
-from codeseek import FakeEmbedder, open_index, safefs
+from codeseek import FakeEmbedder, config, open_index, safefs, scan
 from codeseek.api import Index
 from codeseek.cli import main
 from codeseek.client import SOCKET_NAME, DaemonClient, DaemonUnavailable
+from codeseek.config import load_settings
 from codeseek.daemon import Daemon
 from codeseek.display import printable
-from codeseek.errors import CodeseekError, IndexFolderUnsafe, InvalidQuery
+from codeseek.errors import CodeseekError, FileRefused, IndexFolderUnsafe, InvalidQuery
 
 
 def run_cli(*argv: str) -> tuple[int, str, str]:
@@ -563,6 +564,89 @@ def test_the_daemon_wire_format_keeps_a_non_utf8_path() -> None:
     assert SearchHit(**json.loads(wire)) == hit
 
 
+# Config and ignore files the repository ships that are not regular files of their own:
+# a FIFO (an open or read that blocks for ever) and a link to /dev/zero (endless bytes).
+# Each runs codeseek as a subprocess with a generous timeout, so a hang fails the test
+# instead of stopping the run (the timeout is a guard, not a measure of speed).
+GUARD_SECONDS = 120
+
+
+def _codeseek(*argv: str, cwd: Path | None = None) -> subprocess.CompletedProcess[str]:
+    try:
+        return subprocess.run([sys.executable, "-m", "codeseek", *argv], cwd=cwd,
+                              capture_output=True, text=True, timeout=GUARD_SECONDS,
+                              stdin=subprocess.DEVNULL, check=False)
+    except subprocess.TimeoutExpired as exc:
+        pytest.fail(f"codeseek {' '.join(argv)} hung: {exc}")
+
+
+def test_ignore_files_that_are_a_fifo_or_a_link_are_skipped_and_counted(
+        sample_copy: Path) -> None:
+    os.mkfifo(sample_copy / "python" / ".gitignore")
+    os.symlink("/dev/zero", sample_copy / "go" / ".gitignore")
+    (sample_copy / ".git" / "info").mkdir(parents=True)
+    os.mkfifo(sample_copy / ".git" / "info" / "exclude")
+    result = _codeseek("index", str(sample_copy), "--backend", "fake", "-q")
+    assert (result.returncode, result.stderr) == (0, "")
+    code, out, _err = run_cli("status", str(sample_copy), "--skipped", "--json")
+    assert code == 0
+    listed = json.loads(out)["skipped_files"]
+    refused = sorted(item["path"] for item in listed
+                     if item.get("reason") == scan.REASON_IGNORE_FILE)
+    assert refused == [".git/info/exclude", "go/.gitignore", "python/.gitignore"]
+
+
+def test_a_gitignore_over_the_cap_is_not_read(sample_copy: Path,
+                                              monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(scan, "MAX_IGNORE_FILE_BYTES", 64)
+    (sample_copy / "python" / ".gitignore").write_text("*.py\n" + "#" * 100 + "\n")
+    result = scan.scan_repository(load_settings(sample_copy))
+    assert ("python/.gitignore", scan.REASON_IGNORE_FILE) in result.skipped_paths
+    assert any(f.path.startswith("python/") for f in result.files)  # the rules were not used
+
+
+def test_a_source_file_swapped_for_a_fifo_after_the_scan_is_skipped(sample_copy: Path
+                                                                    ) -> None:
+    result = scan.scan_repository(load_settings(sample_copy))
+    source = result.files[0]
+    source.abs_path.unlink()
+    os.mkfifo(source.abs_path)  # after the scan's lstat: the open must not block
+    # a writer that opens and closes at once, so a blocking reader (the bug) gets an
+    # empty file instead of hanging the test run
+    writer = threading.Thread(target=lambda: os.close(os.open(source.abs_path, os.O_WRONLY)),
+                              daemon=True)
+    writer.start()
+    try:
+        with pytest.raises(scan.SkipFile) as skip:
+            scan.read_source(source, 1024 * 1024)
+    finally:
+        while writer.is_alive():  # release a writer still waiting for a reader
+            os.close(os.open(source.abs_path, os.O_RDONLY | os.O_NONBLOCK))
+            writer.join(0.05)
+    assert skip.value.args[0] == scan.REASON_UNREADABLE
+    source.abs_path.unlink()
+    os.symlink("/dev/zero", source.abs_path)
+    with pytest.raises(scan.SkipFile) as skip:
+        scan.read_source(source, 1024 * 1024)
+    assert skip.value.args[0] == scan.REASON_SYMLINK
+
+
+def test_read_regular_file_refuses_links_fifos_and_big_files(tmp_path: Path) -> None:
+    os.mkfifo(tmp_path / "fifo")
+    os.symlink("/dev/zero", tmp_path / "zero")
+    (tmp_path / "big").write_bytes(b"x" * 11)
+    (tmp_path / "ok").write_bytes(b"x" * 10)
+    for name, reason in [("fifo", "not a regular file"),
+                         ("zero", "a symbolic link (not followed)"),
+                         ("big", "larger than 10 bytes")]:
+        with pytest.raises(FileRefused) as refused:
+            safefs.read_regular_file(tmp_path / name, 10)
+        assert str(refused.value) == reason
+    assert safefs.read_regular_file(tmp_path / "ok", 10) == b"x" * 10
+    with pytest.raises(FileNotFoundError):
+        safefs.read_regular_file(tmp_path / "missing", 10)
+
+
 # == configuration and command-line values ==
 
 
@@ -633,6 +717,27 @@ def test_a_negative_seed_is_a_usage_error(indexed_copy: Path, command: str,
 def _config_error(repo: Path, toml: bytes) -> tuple[int, str, str]:
     (repo / "codeseek.toml").write_bytes(toml)
     return run_cli("index", str(repo), "--backend", "fake", "-q")
+
+
+def test_a_codeseek_toml_that_is_a_fifo_or_a_link_is_refused(sample_copy: Path) -> None:
+    toml = sample_copy / "codeseek.toml"
+    os.mkfifo(toml)
+    result = _codeseek("status", str(sample_copy))
+    assert (result.returncode, result.stderr) == (
+        1, f"error: {toml}: cannot read settings: not a regular file\n")
+    toml.unlink()
+    os.symlink("/dev/zero", toml)
+    result = _codeseek("status", str(sample_copy))
+    assert (result.returncode, result.stderr) == (
+        1, f"error: {toml}: cannot read settings: a symbolic link (not followed)\n")
+
+
+def test_a_codeseek_toml_over_the_cap_is_refused(sample_copy: Path) -> None:
+    toml = sample_copy / "codeseek.toml"
+    toml.write_bytes(b"#" * (config.MAX_CONFIG_FILE_BYTES + 1))
+    assert run_cli("status", str(sample_copy)) == (
+        1, "", f"error: {toml}: cannot read settings: larger than "
+               f"{config.MAX_CONFIG_FILE_BYTES} bytes\n")
 
 
 def test_a_codeseek_toml_that_is_not_utf8(sample_copy: Path) -> None:
