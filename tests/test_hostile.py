@@ -740,6 +740,119 @@ def test_a_codeseek_toml_over_the_cap_is_refused(sample_copy: Path) -> None:
                f"{config.MAX_CONFIG_FILE_BYTES} bytes\n")
 
 
+@pytest.mark.parametrize("value", ["../outside/deep/idx", "/tmp/elsewhere-idx",
+                                   "build/../../outside"])
+def test_codeseek_toml_cannot_place_the_index_outside_the_repository(
+        sample_copy: Path, value: str) -> None:
+    toml = sample_copy / "codeseek.toml"
+    assert _config_error(sample_copy, f'index_dir = "{value}"\n'.encode()) == (
+        1, "", f"error: {toml}: index_dir: {value} is outside the repository; codeseek.toml "
+               "may only place the index inside it (use --index-dir or CODESEEK_INDEX_DIR "
+               "for a folder elsewhere)\n")
+    assert sorted(p.name for p in sample_copy.parent.iterdir()) == ["repo"]
+    assert not Path("/tmp/elsewhere-idx").exists()
+
+
+def test_codeseek_toml_cannot_reach_out_through_a_link_inside(sample_copy: Path,
+                                                              tmp_path: Path) -> None:
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    (sample_copy / "build" / "out").symlink_to(outside)
+    code, _out, err = _config_error(sample_copy, b'index_dir = "build/out/idx"\n')
+    assert (code, err.endswith("is outside the repository; codeseek.toml may only place the "
+                               "index inside it (use --index-dir or CODESEEK_INDEX_DIR for a "
+                               "folder elsewhere)\n")) == (1, True)
+    assert list(outside.iterdir()) == []
+
+
+def test_the_options_may_still_place_the_index_outside(sample_copy: Path, tmp_path: Path,
+                                                       monkeypatch: pytest.MonkeyPatch) -> None:
+    (sample_copy / "codeseek.toml").write_text('index_dir = "../outside"\n')
+    index_quietly(sample_copy, "--index-dir", str(tmp_path / "mine"))
+    monkeypatch.setenv("CODESEEK_INDEX_DIR", str(tmp_path / "env"))
+    index_quietly(sample_copy)
+    assert (tmp_path / "mine" / "index.sqlite3").is_file()
+    assert (tmp_path / "env" / "index.sqlite3").is_file()
+
+
+def test_codeseek_toml_cannot_choose_the_model(sample_copy: Path, tmp_path: Path,
+                                               monkeypatch: pytest.MonkeyPatch) -> None:
+    toml = sample_copy / "codeseek.toml"
+    assert _config_error(sample_copy, b'model = "models/m"\n') == (
+        1, "", f"error: {toml}: model: codeseek.toml cannot choose the model (a repository "
+               "could make codeseek load code of its choosing); use --model or "
+               "CODESEEK_MODEL instead\n")
+    assert not (sample_copy / ".codeseek").exists()
+    # the user's own choice wins and the file's is never used
+    assert load_settings(sample_copy, model=tmp_path / "m").model == tmp_path / "m"
+    monkeypatch.setenv("CODESEEK_MODEL", str(tmp_path / "e"))
+    assert load_settings(sample_copy).model == tmp_path / "e"
+
+
+def test_no_model_is_loaded_with_remote_code() -> None:
+    # transformers runs a model folder's own Python only with trust_remote_code=True
+    # (its from_pretrained documentation): codeseek never passes it
+    source = (Path(__file__).resolve().parent.parent / "codeseek" / "embed.py").read_text()
+    assert "trust_remote_code" not in source
+
+
+@pytest.mark.parametrize(("where", "value", "message"), [
+    ("toml", "a\0b", "{toml}: index_dir: a\\x00b holds a NUL byte, which no file name "
+                     "can hold"),
+    ("option", "a\0b", "--index-dir: a\\x00b holds a NUL byte, which no file name can "
+                       "hold"),
+    ("env", "a\0b", "CODESEEK_INDEX_DIR: a\\x00b holds a NUL byte, which no file name "
+                    "can hold"),
+    ("toml", "~nosuchuser/x", "{toml}: index_dir: ~nosuchuser/x: no such user's home folder"),
+    ("option", "~nosuchuser/x", "--index-dir: ~nosuchuser/x: no such user's home folder"),
+    ("env", "~nosuchuser/x", "CODESEEK_INDEX_DIR: ~nosuchuser/x: no such user's home folder"),
+    ("model", "m\0", "--model: m\\x00 holds a NUL byte, which no file name can hold"),
+])
+def test_index_dir_with_a_nul_or_an_unknown_user(sample_copy: Path,
+                                                 monkeypatch: pytest.MonkeyPatch, where: str,
+                                                 value: str, message: str) -> None:
+    toml = sample_copy / "codeseek.toml"
+    extra: list[str] = []
+    if where == "toml":
+        toml.write_text(json.dumps({"index_dir": value})[1:-1].replace('": ', '" = ')
+                        .replace('"index_dir"', "index_dir") + "\n")
+    elif where == "option":
+        extra = ["--index-dir", value]
+    elif where == "model":
+        extra = ["--model", value]
+    else:
+        monkeypatch.setattr(os, "environ", {**os.environ, "CODESEEK_INDEX_DIR": value})
+    assert run_cli("index", str(sample_copy), "--backend", "fake", "-q", *extra) == (
+        1, "", f"error: {message.format(toml=toml)}\n")
+
+
+def test_an_index_folder_whose_name_is_not_utf8(sample_copy: Path, tmp_path: Path) -> None:
+    # b"\xff" is never UTF-8 (RFC 3629); hnswlib takes such a name only as bytes
+    index_dir = os.fsdecode(os.path.join(os.fsencode(tmp_path), b"\xffidx"))
+    index_quietly(sample_copy, "--index-dir", index_dir)
+    code, out, err = run_cli("search", "dock battery", "--repo", str(sample_copy), "--backend",
+                             "fake", "--index-dir", index_dir, "-k", "1", "--json")
+    assert (code, err) == (0, "")
+    assert json.loads(out.splitlines()[0])["path"]
+    assert {b"index.sqlite3", b"vectors.hnsw"} <= set(os.listdir(os.fsencode(index_dir)))
+
+
+def test_a_repository_in_a_folder_whose_name_is_not_utf8(sample_copy: Path,
+                                                         tmp_path: Path) -> None:
+    repo = os.fsdecode(os.path.join(os.fsencode(tmp_path), b"d\xe9p\xf4t"))
+    shutil.move(sample_copy, repo)
+    index_quietly(Path(repo))
+    assert run_cli("search", "dock battery", "--repo", repo, "--backend", "fake",
+                   "-k", "1")[0] == 0
+    # reading without write access goes through a SQLite URI of the name's bytes
+    os.chmod(Path(repo) / ".codeseek", 0o500)
+    try:
+        code, _out, err = run_cli("status", repo)
+    finally:
+        os.chmod(Path(repo) / ".codeseek", 0o700)
+    assert (code, err) == (0, "")
+
+
 def test_a_codeseek_toml_that_is_not_utf8(sample_copy: Path) -> None:
     # TOML files must be valid UTF-8 (the TOML v1.0.0 specification)
     assert _config_error(sample_copy, b'exclude = ["caf\xe9/"]\n') == (
