@@ -740,17 +740,17 @@ def test_a_codeseek_toml_over_the_cap_is_refused(sample_copy: Path) -> None:
                f"{config.MAX_CONFIG_FILE_BYTES} bytes\n")
 
 
-@pytest.mark.parametrize("value", ["../outside/deep/idx", "/tmp/elsewhere-idx",
+@pytest.mark.parametrize("value", ["../outside/deep/idx", "{absolute}",
                                    "build/../../outside"])
 def test_codeseek_toml_cannot_place_the_index_outside_the_repository(
         sample_copy: Path, value: str) -> None:
     toml = sample_copy / "codeseek.toml"
+    value = value.format(absolute=sample_copy.parent / "elsewhere-idx")
     assert _config_error(sample_copy, f'index_dir = "{value}"\n'.encode()) == (
         1, "", f"error: {toml}: index_dir: {value} is outside the repository; codeseek.toml "
                "may only place the index inside it (use --index-dir or CODESEEK_INDEX_DIR "
                "for a folder elsewhere)\n")
     assert sorted(p.name for p in sample_copy.parent.iterdir()) == ["repo"]
-    assert not Path("/tmp/elsewhere-idx").exists()
 
 
 def test_codeseek_toml_cannot_reach_out_through_a_link_inside(sample_copy: Path,
