@@ -372,8 +372,12 @@ class Index:
         units = self.store.units_of_file(path)
         if not units and not self.has_file(path):
             raise InvalidQuery(f"{path}: not a file of the index")
-        if where.isdigit():
+        # ASCII digits only: "²".isdigit() holds but int("²") fails, and "٣" is no
+        # line number a user types
+        if where.isascii() and where.isdecimal():
             line = int(where)
+            if line < 1:
+                raise InvalidQuery(f"{path}: line numbers start at 1, not {where}")
             holding = [s for s in units if s.unit.start_line <= line <= s.unit.end_line]
             if not holding:
                 raise InvalidQuery(f"{path}: no unit holds line {line}")

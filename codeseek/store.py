@@ -512,7 +512,7 @@ class Store:
         """The stored units of one file (its repository-relative path), in source order."""
         rows = self._query(
             f"SELECT {self._UNIT_COLUMNS} FROM units u JOIN files f ON f.id=u.file_id "
-            "WHERE f.path=? ORDER BY u.start_line, u.id", (path,)
+            "WHERE f.path=? ORDER BY u.start_line, u.id", (to_column(path),)
         )
         return [_stored_unit(row) for row in rows]
 

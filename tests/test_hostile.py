@@ -551,6 +551,18 @@ def test_a_gitignore_line_in_latin1_ignores_the_same_bytes(tmp_path: Path) -> No
     assert found == by_git == {b"tarif\xe8.py", b"plain.py"}
 
 
+def test_neighbours_of_a_unit_in_a_non_utf8_file(latin1_repo: Path) -> None:
+    index_quietly(latin1_repo)
+    place = "python/" + os.fsdecode(LATIN1_FILE) + ":tariff_for_zone"
+    code, out, err = run_cli("search", "--neighbours", place, "--repo", str(latin1_repo),
+                             "--backend", "fake", "-k", "2", "--json")
+    assert (code, err) == (0, "")
+    assert len(out.splitlines()) == 2
+    code, _out, err = run_cli("search", "--neighbours", "python/" + os.fsdecode(LATIN1_FILE)
+                              + ":3", "--repo", str(latin1_repo), "--backend", "fake")
+    assert (code, err) == (0, "")
+
+
 def test_the_daemon_wire_format_keeps_a_non_utf8_path() -> None:
     import dataclasses
 
@@ -837,20 +849,46 @@ def test_an_index_folder_whose_name_is_not_utf8(sample_copy: Path, tmp_path: Pat
     assert {b"index.sqlite3", b"vectors.hnsw"} <= set(os.listdir(os.fsencode(index_dir)))
 
 
-def test_a_repository_in_a_folder_whose_name_is_not_utf8(sample_copy: Path,
-                                                         tmp_path: Path) -> None:
+def _no_read_write_opens(monkeypatch: pytest.MonkeyPatch) -> None:
+    """sqlite3.connect as in a folder of mode 0500 (root ignores modes): only the
+    read-only URI opens."""
+    real_connect = sqlite3.connect
+
+    def no_writes(target, *args, **kwargs):  # type: ignore[no-untyped-def]
+        if not kwargs.get("uri"):
+            raise sqlite3.OperationalError("unable to open database file")
+        return real_connect(target, *args, **kwargs)
+
+    monkeypatch.setattr(sqlite3, "connect", no_writes)
+
+
+def test_a_repository_in_a_folder_whose_name_is_not_utf8(
+        sample_copy: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
     repo = os.fsdecode(os.path.join(os.fsencode(tmp_path), b"d\xe9p\xf4t"))
     shutil.move(sample_copy, repo)
     index_quietly(Path(repo))
     assert run_cli("search", "dock battery", "--repo", repo, "--backend", "fake",
                    "-k", "1")[0] == 0
     # reading without write access goes through a SQLite URI of the name's bytes
-    os.chmod(Path(repo) / ".codeseek", 0o500)
-    try:
-        code, _out, err = run_cli("status", repo)
-    finally:
-        os.chmod(Path(repo) / ".codeseek", 0o700)
+    _no_read_write_opens(monkeypatch)
+    code, out, err = run_cli("status", repo, "--json")
     assert (code, err) == (0, "")
+    assert json.loads(out)["units"] > 0
+
+
+@pytest.mark.parametrize(("where", "message"), [
+    # "²".isdigit() is true and int("²") raises (Python's str.isdigit documentation)
+    ("²", "python/kestrune/ratelimit.py: no unit named '²'"),
+    ("٣", "python/kestrune/ratelimit.py: no unit named '٣'"),
+    ("0", "python/kestrune/ratelimit.py: line numbers start at 1, not 0"),
+    ("99999999999999999999", "python/kestrune/ratelimit.py: no unit holds line "
+                             "99999999999999999999"),
+])
+def test_neighbours_of_a_line_that_is_not_a_line_number(indexed_copy: Path, where: str,
+                                                        message: str) -> None:
+    assert run_cli("search", "--neighbours", f"python/kestrune/ratelimit.py:{where}",
+                   "--repo", str(indexed_copy), "--backend", "fake") == (
+        1, "", f"error: {message}\n")
 
 
 def test_a_codeseek_toml_that_is_not_utf8(sample_copy: Path) -> None:
@@ -1394,6 +1432,24 @@ def test_a_store_in_a_folder_that_cannot_be_written_opens_read_only(
         assert store.read_only and store.counts()["units"] > 0
     finally:
         store.close()
+
+
+def test_a_read_only_store_trusts_no_schema(sample_copy: Path,
+                                           monkeypatch: pytest.MonkeyPatch) -> None:
+    # PRAGMA trusted_schema=OFF: a planted schema's views and triggers run no
+    # application functions (sqlite.org/pragma.html#pragma_trusted_schema)
+    from codeseek.store import Store
+
+    index_quietly(sample_copy)
+    for read_only in (False, True):
+        if read_only:
+            _no_read_write_opens(monkeypatch)
+        store = Store.open(sample_copy / ".codeseek", create=False)
+        try:
+            assert store.read_only is read_only
+            assert store._db.execute("PRAGMA trusted_schema").fetchone() == (0,)
+        finally:
+            store.close()
 
 
 def test_status_reports_a_store_garbled_mid_file(sample_copy: Path) -> None:
