@@ -37,12 +37,14 @@ from codeseek.errors import (
     InvalidSplit,
     ModelMismatch,
     RepositoryNotFound,
+    UsageError,
 )
 from codeseek.indexer import (
     ProgressCallback,
     Updater,
     UpdateSummary,
     load_vectors,
+    repository_record,
     save_vectors,
 )
 from codeseek.locks import ReadWriteLock
@@ -475,7 +477,29 @@ def open_index(
             raise RepositoryNotFound(f"{root}: no such folder")
         settings = load_settings(root, index_dir=index_dir, model=model, backend=backend)
     store = Store.open(settings.index_dir, create=create, repo=settings.repo)
+    try:
+        check_repository(settings, store)
+    except BaseException:
+        store.close()
+        raise
     return Index(settings, store, embedder)
+
+
+def check_repository(settings: Settings, store: Store) -> None:
+    """Refuse an index kept outside the repository that was built for another repository.
+
+    Every opening of an index checks it (:func:`open_index`: the CLI, the TUI, the
+    daemon). An index inside the repository (the default ``.codeseek``) moves with
+    it, so only an index elsewhere is checked; an index from before the manifest
+    recorded its repository is taken as it is.
+    """
+    if settings.index_dir.is_relative_to(settings.repo):
+        return
+    recorded = store.manifest().get("repo")
+    if recorded is not None and recorded != repository_record(settings.repo):
+        raise UsageError(f"the index at {settings.index_dir} was built for the repository "
+                         f"{recorded}, not {settings.repo}; give --repo {recorded}, or another "
+                         f"--index-dir for {settings.repo}")
 
 
 def remove_index_files(index_dir: Path) -> None:

@@ -27,6 +27,7 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from conftest import SAMPLE_REPO
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from test_daemon import wait_for
@@ -272,6 +273,41 @@ def test_an_index_folder_elsewhere_holding_other_files_is_refused(
     assert sorted(p.name for p in where.iterdir()) == ["letter.txt"]
 
 
+def _two_repositories(tmp_path: Path) -> tuple[Path, Path, Path]:
+    """Two copies of sample_repo and the index of the first, kept outside both."""
+    first, second = tmp_path / "first", tmp_path / "second"
+    shutil.copytree(SAMPLE_REPO, first, symlinks=True)
+    shutil.copytree(SAMPLE_REPO, second, symlinks=True)
+    index_dir = tmp_path / "first-index"
+    index_quietly(first, "--index-dir", str(index_dir))
+    return first, second, index_dir
+
+
+def test_a_rebuild_never_deletes_another_repositorys_index(tmp_path: Path) -> None:
+    first, second, index_dir = _two_repositories(tmp_path)
+    before = (index_dir / "index.sqlite3").read_bytes()
+    code, _out, err = run_cli("index", str(second), "--rebuild", "--backend", "fake", "-q",
+                              "--index-dir", str(index_dir))
+    assert (code, err) == (
+        2, f"error: the index at {index_dir} was built for the repository {first}, not "
+           f"{second}; give --repo {first}, or another --index-dir for {second}\n")
+    assert (index_dir / "index.sqlite3").read_bytes() == before
+    assert (index_dir / "vectors.hnsw").is_file()
+
+
+def test_every_opening_of_an_index_checks_its_repository(tmp_path: Path) -> None:
+    from codeseek.errors import UsageError
+    from codeseek.tui.backend import LocalIndexer
+
+    _first, second, index_dir = _two_repositories(tmp_path)
+    with pytest.raises(UsageError):
+        open_index(second, index_dir=index_dir, embedder=FakeEmbedder())
+    # the TUI's builder
+    indexer = LocalIndexer(second, index_dir=str(index_dir), embedder=FakeEmbedder())
+    with pytest.raises(UsageError):
+        indexer.update(None)
+
+
 # == terminal output: control characters escaped, JSON exact ==
 
 # The sequence sets the window title (OSC 0, ended by BEL) and clears the screen
@@ -381,6 +417,33 @@ def test_error_and_warning_lines_escape_file_names(sample_copy: Path) -> None:
     assert code == 0
     assert err == (f"warning: python/broken{HOSTILE_SHOWN}.py: syntax errors; indexed the "
                    "units that could be recovered\n")
+
+
+def test_a_warning_about_the_index_folder_is_escaped(sample_copy: Path, tmp_path: Path
+                                                     ) -> None:
+    where = tmp_path / f"idx{HOSTILE}"
+    where.mkdir()
+    where.chmod(0o755)
+    code, _out, err = run_cli("index", str(sample_copy), "--backend", "fake", "-q",
+                              "--index-dir", str(where))
+    assert code == 0
+    assert HOSTILE not in err and f"idx{HOSTILE_SHOWN}" in err
+    assert len(err.splitlines()) == 1
+
+
+def test_a_planted_kind_and_language_are_escaped(sample_copy: Path) -> None:
+    index_quietly(sample_copy)
+    db = sqlite3.connect(sample_copy / ".codeseek" / "index.sqlite3")
+    with db:
+        db.execute("UPDATE units SET kind=?", (HOSTILE,))
+        db.execute("UPDATE files SET language=?", (HOSTILE,))
+    db.close()
+    code, out, err = run_cli("search", "dock battery", "--repo", str(sample_copy),
+                             "--backend", "fake", "-k", "2")
+    assert (code, err) == (0, "")
+    assert HOSTILE not in out and f"[{HOSTILE_SHOWN}, {HOSTILE_SHOWN}]" in out
+    code, out, err = run_cli("status", str(sample_copy))
+    assert HOSTILE not in out + err
 
 
 # == file names and bytes: non-UTF-8 names, newlines in names ==
