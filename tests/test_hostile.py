@@ -308,6 +308,34 @@ def test_every_opening_of_an_index_checks_its_repository(tmp_path: Path) -> None
         indexer.update(None)
 
 
+def test_the_tui_reader_shows_only_regular_files_inside_the_repository(
+        sample_copy: Path, tmp_path: Path) -> None:
+    import dataclasses
+
+    from codeseek.search import SearchHit
+    from codeseek.tui.render import SourceCache
+
+    secret = "def secret():\n    return 'the outside file'\n"
+    (sample_copy.parent / "secret.txt.py").write_text(secret)
+    (sample_copy / "python" / "away.py").symlink_to(sample_copy.parent / "secret.txt.py")
+    os.mkfifo(sample_copy / "python" / "pipe.py")
+    (sample_copy / "python" / "big.py").write_text(secret + "#" * 200)
+    hit = SearchHit(query="q", rank=1, score=0.1, similarity=0.5, path="", start_line=1,
+                    end_line=2, language="python", kind="function", name="secret",
+                    qualname="secret", signature="", doc_summary="",
+                    snippet="the indexed lines", unit_id=1)
+    reader = SourceCache(sample_copy, max_bytes=100)
+    for planted in ["../secret.txt.py", str(sample_copy.parent / "secret.txt.py"),
+                    "python/../../secret.txt.py", "python/away.py", "python/pipe.py",
+                    "python/big.py"]:
+        shown = reader.unit(dataclasses.replace(hit, path=planted))
+        assert shown.code == "the indexed lines", planted
+        assert "outside" not in shown.code
+    (sample_copy / "python" / "fine.py").write_text(secret)
+    assert "the outside file" in reader.unit(dataclasses.replace(hit, path="python/fine.py")
+                                             ).code
+
+
 # == terminal output: control characters escaped, JSON exact ==
 
 # The sequence sets the window title (OSC 0, ended by BEL) and clears the screen
