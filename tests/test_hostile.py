@@ -1065,6 +1065,10 @@ def test_git_matches_nothing_with_an_unclosed_bracket(tmp_path: Path) -> None:
                             cwd=tmp_path, env=env, capture_output=True, text=True,
                             check=True).stdout
     assert {p for p in listed.split("\0") if p} == {"[", "a", "[a", ".gitignore"}
+    # codeseek's own matcher gives git's answer for the same names
+    rules = scan.IgnoreRules(tmp_path)
+    assert {name for name in ("[", "a", "[a", ".gitignore")
+            if not rules.is_ignored(name, is_dir=False)} == {p for p in listed.split("\0") if p}
 
 
 
@@ -1255,9 +1259,9 @@ def daemon_exchange(path: Path, payload: bytes) -> list[dict[str, Any]]:
      "malformed request: 'queries' holds a lone surrogate (text that is not valid Unicode)"),
     (b'{"v": 1, "op": "search", "queries": ["refund"], "kinds": ["\\udfff"]}',
      "malformed request: 'kinds' holds a lone surrogate (text that is not valid Unicode)"),
-    (b'{"v": 1, "op": "similar", "unit_id": 9223372036854775808}',  # 2**63
+    (b'{"v": 1, "op": "neighbours", "unit_id": 9223372036854775808}',  # 2**63
      "malformed request: 'unit_id' holds a whole number outside 64 bits"),
-    (b'{"v": 1, "op": "similar", "unit_id": -9223372036854775809}',
+    (b'{"v": 1, "op": "neighbours", "unit_id": -9223372036854775809}',
      "malformed request: 'unit_id' holds a whole number outside 64 bits"),
     (b'{"v": 1, "op": "search", "queries": ["refund"], "k": 18446744073709551616}',
      "malformed request: 'k' holds a whole number outside 64 bits"),
@@ -1332,7 +1336,7 @@ def test_a_failure_outside_a_request_is_one_log_line(served: tuple[Daemon, list[
 # once broke the daemon), deep nesting, and well-formed requests of random text
 # (lone surrogates included). Never a shutdown: the daemon must outlive the sweep.
 REQUEST_TOKENS = [b"{", b"}", b"[", b"]", b":", b",", b" ", b"\n", b'"v"', b"1", b"0", b"-1",
-                  b'"op"', b'"search"', b'"similar"', b'"status"', b'"queries"', b'"k"',
+                  b'"op"', b'"search"', b'"neighbours"', b'"status"', b'"queries"', b'"k"',
                   b'"unit_id"', b'"languages"', b'"paths"', b'"kinds"', b'"refund"', b'""',
                   b'"\\ud800"', b'"\\udc80x"', b'"\\u0000"', b"9223372036854775808",
                   b"-9223372036854775809", b"1e999", b"NaN", b"Infinity", b"null", b"true",
@@ -1344,7 +1348,7 @@ request_lines = st.one_of(
     st.tuples(st.integers(1, 40_000), st.sampled_from([b"[]", b"{}"])).map(
         lambda depth_pair: depth_pair[1][:1] * depth_pair[0] + depth_pair[1][1:] * depth_pair[0]),
     st.fixed_dictionaries(
-        {"v": st.just(1), "op": st.sampled_from(["search", "similar", "status", "nope"])},
+        {"v": st.just(1), "op": st.sampled_from(["search", "neighbours", "status", "nope"])},
         optional={"queries": st.lists(any_text, max_size=3), "k": st.integers(),
                   "unit_id": st.integers(), "languages": st.lists(any_text, max_size=2),
                   "paths": st.lists(any_text, max_size=2),
@@ -1711,10 +1715,10 @@ _NAMES = st.lists(st.binary(min_size=1, max_size=16), max_size=6)
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
 @given(first=_NAMES, second=_NAMES, query=st.binary(max_size=24),
        lines=st.lists(st.binary(max_size=24), max_size=4), ignore=st.binary(max_size=24),
-       as_json=st.booleans())
+       as_json=st.booleans(), place=st.binary(max_size=24), piped=st.booleans())
 def test_random_bytes_as_names_queries_and_batch_lines(
         first: list[bytes], second: list[bytes], query: bytes, lines: list[bytes],
-        ignore: bytes, as_json: bool) -> None:
+        ignore: bytes, as_json: bool, place: bytes, piped: bool) -> None:
     with tempfile.TemporaryDirectory() as temp:
         repo = Path(temp) / "repo"
         root = os.fsencode(repo)
@@ -1726,6 +1730,10 @@ def test_random_bytes_as_names_queries_and_batch_lines(
         _check_run(["index", str(repo), "-q", *common])
         _write_tree(root, [n for n in map(_posix_name, second) if n], 100)  # an update
         (repo / ".gitignore").write_bytes(ignore)  # random bytes as ignore rules too
+        if piped:  # a FIFO as a folder's ignore file: skipped, never opened for a read
+            os.mkdir(repo / "piped")
+            os.mkfifo(repo / "piped" / ".gitignore")
+            (repo / "piped" / "pump.py").write_text('def pump():\n    """A pump."""\n')
         _check_run(["index", str(repo), "-q", *common])
         view = ["--json"] if as_json else []
         # a query argument as sys.argv holds it (PEP 383); "--" keeps it positional
@@ -1733,6 +1741,10 @@ def test_random_bytes_as_names_queries_and_batch_lines(
         batch = Path(temp) / "batch.txt"
         batch.write_bytes(b"\n".join(lines))
         _check_run(["search", "--batch", str(batch), "--repo", str(repo), *common])
+        # a random PATH:NAME (sys.argv never holds a NUL: execve's strings end at one)
+        for near in (place, b"base.py:" + place):
+            _check_run(["search", "--neighbours", os.fsdecode(near.replace(b"\0", b"")),
+                        "--repo", str(repo), *common, *view])
         _check_run(["outline", str(repo), *view])
         _check_run(["status", str(repo)])
         fresh = Path(temp) / "fresh-index"
