@@ -38,12 +38,14 @@ from codeseek.errors import (
     ModelMismatch,
     RepositoryNotFound,
     TooFewExamples,
+    UsageError,
 )
 from codeseek.indexer import (
     ProgressCallback,
     Updater,
     UpdateSummary,
     load_vectors,
+    repository_record,
     save_vectors,
 )
 from codeseek.locks import ReadWriteLock
@@ -409,8 +411,12 @@ class Index:
         units = self.store.units_of_file(path)
         if not units and not self.has_file(path):
             raise InvalidQuery(f"{path}: not a file of the index")
-        if where.isdigit():
+        # ASCII digits only: "²".isdigit() holds but int("²") fails, and "٣" is no
+        # line number a user types
+        if where.isascii() and where.isdecimal():
             line = int(where)
+            if line < 1:
+                raise InvalidQuery(f"{path}: line numbers start at 1, not {where}")
             holding = [s for s in units if s.unit.start_line <= line <= s.unit.end_line]
             if not holding:
                 raise InvalidQuery(f"{path}: no unit holds line {line}")
@@ -525,7 +531,29 @@ def open_index(
             raise RepositoryNotFound(f"{root}: no such folder")
         settings = load_settings(root, index_dir=index_dir, model=model, backend=backend)
     store = Store.open(settings.index_dir, create=create, repo=settings.repo)
+    try:
+        check_repository(settings, store)
+    except BaseException:
+        store.close()
+        raise
     return Index(settings, store, embedder)
+
+
+def check_repository(settings: Settings, store: Store) -> None:
+    """Refuse an index kept outside the repository that was built for another repository.
+
+    Every opening of an index checks it (:func:`open_index`: the CLI, the TUI, the
+    daemon). An index inside the repository (the default ``.codeseek``) moves with
+    it, so only an index elsewhere is checked; an index from before the manifest
+    recorded its repository is taken as it is.
+    """
+    if settings.index_dir.is_relative_to(settings.repo):
+        return
+    recorded = store.manifest().get("repo")
+    if recorded is not None and recorded != repository_record(settings.repo):
+        raise UsageError(f"the index at {settings.index_dir} was built for the repository "
+                         f"{recorded}, not {settings.repo}; give --repo {recorded}, or another "
+                         f"--index-dir for {settings.repo}")
 
 
 def remove_index_files(index_dir: Path) -> None:

@@ -10,6 +10,7 @@ modules are imported inside the commands, so ``codeseek --help`` answers at once
 from __future__ import annotations
 
 import argparse
+import contextlib
 import io
 import json
 import os
@@ -201,12 +202,7 @@ def _open(repo: str | None, args: argparse.Namespace, *, create: bool) -> Index:
                            backend=args.backend, create=create)
     except IndexNotFound as exc:
         raise IndexNotFound(f"{exc}{NO_INDEX_HINT}") from exc
-    try:
-        _check_repository(index)
-    except BaseException:
-        index.close()
-        raise
-    return index
+    return index  # open_index checked that the index is this repository's
 
 
 def _connect(repo: str | None, args: argparse.Namespace, err: TextIO) -> SearchService:
@@ -217,7 +213,7 @@ def _connect(repo: str | None, args: argparse.Namespace, err: TextIO) -> SearchS
 
     try:
         return connect(_root(repo), index_dir=args.index_dir, model=args.model,
-                       backend=args.backend, check=_check_repository,
+                       backend=args.backend,  # open_index checks the index's repository
                        notice=lambda message: print(message, file=err))
     except IndexNotFound as exc:
         raise IndexNotFound(f"{exc}{NO_INDEX_HINT}") from exc
@@ -226,31 +222,13 @@ def _connect(repo: str | None, args: argparse.Namespace, err: TextIO) -> SearchS
 NO_INDEX_HINT = "; for an index built elsewhere, give --index-dir DIR or set CODESEEK_INDEX_DIR"
 
 
-def _check_repository(index: Index) -> None:
-    """Refuse an index kept outside the repository that was built for another repository.
-
-    An index inside the repository (the default ``.codeseek``) moves with it, so only an
-    index elsewhere is checked; an index from before the manifest recorded its repository
-    is taken as it is.
-    """
-    from codeseek.indexer import repository_record
-
-    settings = index.settings
-    if settings.index_dir.is_relative_to(settings.repo):
-        return
-    recorded = index.store.manifest().get("repo")
-    if recorded is not None and recorded != repository_record(settings.repo):
-        raise UsageError(f"the index at {settings.index_dir} was built for the repository "
-                         f"{recorded}, not {settings.repo}; give --repo {recorded}, or another "
-                         f"--index-dir for {settings.repo}")
-
-
 # -- index -------------------------------------------------------------------------
 
 
 def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     from codeseek.api import remove_index_files
     from codeseek.config import load_settings
+    from codeseek.errors import IndexCorrupt, IndexFormatMismatch, IndexNotFound
 
     daemon_pid = _running_daemon_pid(args)
     if daemon_pid is not None:
@@ -261,6 +239,10 @@ def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
               "nothing to do", file=out)
         return EXIT_OK
     if args.rebuild:
+        # the repository check first: --rebuild never deletes another repository's index
+        # nothing there, or nothing readable: rebuilding is the remedy
+        with contextlib.suppress(IndexNotFound, IndexCorrupt, IndexFormatMismatch):
+            _open(args.path, args, create=False).close()
         settings = load_settings(_root(args.path), index_dir=args.index_dir)
         remove_index_files(settings.index_dir)
     with _open(args.path, args, create=True) as index:
@@ -293,7 +275,7 @@ def _running_daemon_pid(args: argparse.Namespace) -> int | None:
 def _print_notes(index: Index, err: TextIO) -> None:
     """The index folder's warnings (said once, when the index is made)."""
     for note in index.notes:
-        print(f"warning: {note}", file=err)
+        print(f"warning: {printable(note)}", file=err)  # a note may quote a path
 
 
 class _LineProgress:
@@ -517,7 +499,8 @@ def _print_hits(hits: Sequence[SearchHit], out: TextIO) -> None:
         return
     columns = _columns()
     for hit in hits:  # repository text is escaped: shown, never obeyed by the terminal
-        print(f"{hit.rank:>2}. {printable(hit.qualname)}  [{hit.kind}, {hit.language}]  "
+        print(f"{hit.rank:>2}. {printable(hit.qualname)}  "
+              f"[{printable(hit.kind)}, {printable(hit.language)}]  "
               f"{printable(hit.path)}:{hit.start_line}", file=out)
         if hit.doc_summary:
             print(f"    {_clip(printable(hit.doc_summary), columns - 4)}", file=out)
@@ -616,7 +599,7 @@ def format_status(status: IndexStatus, daemon: dict[str, Any] | None) -> str:
         f"model        {printable(status.model_id or 'none yet')} ({status.dim or '-'} dimensions)",
         f"contents     {status.files} files, {status.units} units",
     ]
-    lines += [f"             {count:>6} {language}"
+    lines += [f"             {count:>6} {printable(language)}"
               for language, count in sorted(status.languages.items())]
     lines.append(f"updated      {updated} (generation {status.generation}; vector index "
                  f"{'in sync' if status.vectors_in_sync else 'will be rebuilt on next search'})")
@@ -675,8 +658,8 @@ def cmd_outline(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
             }
             out.write(json.dumps(record, ensure_ascii=False) + "\n")
         else:
-            out.write(f"{printable(unit.path)}:{unit.start_line}-{unit.end_line} {unit.kind} "
-                      f"{printable(unit.qualname)}\n")
+            out.write(f"{printable(unit.path)}:{unit.start_line}-{unit.end_line} "
+                      f"{printable(unit.kind)} {printable(unit.qualname)}\n")
     return EXIT_OK
 
 

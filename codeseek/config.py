@@ -15,7 +15,9 @@ from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any
 
-from codeseek.errors import ConfigError
+from codeseek.display import printable
+from codeseek.errors import ConfigError, FileRefused
+from codeseek.safefs import read_regular_file
 
 INDEX_DIR_NAME = ".codeseek"
 CONFIG_FILE_NAME = "codeseek.toml"
@@ -24,6 +26,9 @@ BACKENDS = ("onnx", "torch", "fake")
 DEFAULT_MAX_FILE_BYTES = 1024 * 1024
 DEFAULT_BATCH_SIZE = 32
 DEFAULT_TOP_K = 10
+# codeseek.toml is read only if it is a regular file itself (not a link, not a FIFO)
+# of at most this many bytes; settings never need more
+MAX_CONFIG_FILE_BYTES = 1024 * 1024
 
 ENV_VARS: dict[str, str] = {
     "CODESEEK_INDEX_DIR": "folder of the index (default: <repo>/.codeseek)",
@@ -98,18 +103,32 @@ def load_settings(
         """Where a setting came from, for its error message."""
         return env_name if env.get(env_name) else f"{root / CONFIG_FILE_NAME}: {key}"
 
-    def pick_path(arg: Any, env_name: str, key: str) -> Path | None:
+    def pick_path(arg: Any, env_name: str, key: str, option: str) -> Path | None:
         # an argument or variable is the user's, from where they stand; a value in
         # codeseek.toml belongs to the repository and is relative to its root
         chosen = pick(arg, env_name, key)
-        _check_path(chosen, where(env_name, key))
+        from_file = arg is None and not env.get(env_name)
+        name = where(env_name, key) if arg is None else option
+        _check_path(chosen, name)
         if not chosen:
             return None
-        from_file = arg is None and not env.get(env_name)
-        return _resolve_against(root if from_file else Path.cwd(), chosen)
+        if from_file and key == "model":
+            # the repository's author writes codeseek.toml: a model folder it picks is
+            # code it runs (the torch backend unpickles weights)
+            raise ConfigError(f"{name}: codeseek.toml cannot choose the model (a "
+                              "repository could make codeseek load code of its choosing); "
+                              "use --model or CODESEEK_MODEL instead")
+        path = _resolve_against(root if from_file else Path.cwd(), chosen, name)
+        if from_file and not path.resolve().is_relative_to(root):
+            # nor write outside it: only --index-dir and CODESEEK_INDEX_DIR may
+            raise ConfigError(f"{name}: {printable(str(chosen))} is outside the repository; "
+                              "codeseek.toml may only place the index inside it (use "
+                              "--index-dir or CODESEEK_INDEX_DIR for a folder elsewhere)")
+        return path
 
-    index_path = pick_path(index_dir, "CODESEEK_INDEX_DIR", "index_dir") or root / INDEX_DIR_NAME
-    model_path = pick_path(model, "CODESEEK_MODEL", "model")
+    index_path = (pick_path(index_dir, "CODESEEK_INDEX_DIR", "index_dir", "--index-dir")
+                  or root / INDEX_DIR_NAME)
+    model_path = pick_path(model, "CODESEEK_MODEL", "model", "--model")
     chosen_backend = str(pick(backend, "CODESEEK_BACKEND", "backend") or DEFAULT_BACKEND)
     if chosen_backend not in BACKENDS:
         raise ConfigError(
@@ -137,10 +156,17 @@ def load_settings(
     )
 
 
-def _resolve_against(base: Path, value: str | os.PathLike[str]) -> Path:
+def _resolve_against(base: Path, value: str | os.PathLike[str], name: str) -> Path:
     """``value`` as an absolute path: itself if absolute, else relative to ``base``."""
-    path = Path(value).expanduser()
-    return path if path.is_absolute() else (base / path).resolve()
+    if "\0" in os.fspath(value):
+        raise ConfigError(f"{name}: {printable(os.fspath(value))} holds a NUL byte, which "
+                          "no file name can hold")
+    try:
+        path = Path(value).expanduser()
+        return path if path.is_absolute() else (base / path).resolve()
+    except RuntimeError:  # "~user" of no known user (pathlib's expanduser)
+        raise ConfigError(f"{name}: {printable(os.fspath(value))}: no such user's home "
+                          "folder") from None
 
 
 MAX_SETTING_INT = 2**40  # 1 TiB: far above any real limit, far below what read() takes
@@ -172,10 +198,11 @@ def _positive_int(value: Any, name: str, default: int) -> int:
 
 def _read_config_file(path: Path) -> dict[str, Any]:
     try:
-        with path.open("rb") as handle:
-            data = tomllib.load(handle)
+        data = tomllib.loads(read_regular_file(path, MAX_CONFIG_FILE_BYTES).decode("utf-8"))
     except FileNotFoundError:
         return {}
+    except FileRefused as exc:
+        raise ConfigError(f"{path}: cannot read settings: {exc}") from None
     except UnicodeDecodeError as exc:  # TOML is UTF-8 by definition (toml.io, v1.0.0)
         raise ConfigError(f"{path}: cannot read settings: not UTF-8 text (byte "
                           f"0x{exc.object[exc.start]:02x} at offset {exc.start})") from None

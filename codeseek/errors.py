@@ -17,6 +17,8 @@ where they are raised, with ``raise ... from exc``.
     ├── IndexWriteError          the index could not be written (disk full, ...)
     ├── IndexFolderUnsafe        the index folder is a link, another user's, open to others'
     │                            writes, holds a link, or holds files that are not an index
+    ├── FileRefused              a file read by name (settings, ignore file, source) is a
+    │                            link, not a regular file (a FIFO) or over its size cap
     ├── IndexBuilding            the index is being built (or its first build was cut short)
     ├── ModelUnavailable         the embedding model folder is missing or broken
     ├── ModelMismatch            the index was built with another model
@@ -70,6 +72,11 @@ class IndexWriteError(CodeseekError):
 
 class IndexFolderUnsafe(CodeseekError):
     """The index folder (or a file in it) cannot be used without risk to other files."""
+
+
+class FileRefused(CodeseekError):
+    """A file codeseek reads by name (a setting or ignore file, a source file) is a link,
+    not a regular file (a FIFO would block) or larger than the cap for it."""
 
 
 class IndexBuilding(CodeseekError):

@@ -27,7 +27,7 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import BinaryIO
 
-from codeseek.errors import IndexFolderUnsafe, IndexWriteError
+from codeseek.errors import FileRefused, IndexFolderUnsafe, IndexWriteError
 
 USER_ONLY = 0o600
 FOLDER_MODE = 0o700
@@ -194,6 +194,35 @@ def read_bytes(path: Path) -> bytes:
     """A regular file's bytes, read without following a link."""
     with os.fdopen(open_regular(path, os.O_RDONLY), "rb") as handle:
         return handle.read()
+
+
+def read_regular_file(path: Path, cap: int) -> bytes:
+    """The bytes of a file the repository holds (a setting or ignore file, a source file),
+    read only if it is a regular file itself and at most ``cap`` bytes.
+
+    Opened with ``O_NOFOLLOW | O_NONBLOCK`` and checked with ``fstat`` on the open
+    descriptor, so neither a link (to ``/dev/zero``, to a file outside) nor a FIFO
+    (an ``open`` or ``read`` that never returns) is read, even one swapped in after
+    a caller's ``lstat``. Raises :class:`FileRefused` (its message is the reason,
+    without the path) for a link, a file that is not regular or one over ``cap``;
+    OSError (missing, unreadable) passes through.
+    """
+    try:
+        fd = os.open(path, os.O_RDONLY | _NOFOLLOW)
+    except OSError as exc:
+        if exc.errno == errno.ELOOP:
+            raise FileRefused("a symbolic link (not followed)") from exc
+        raise
+    with os.fdopen(fd, "rb") as handle:
+        info = os.fstat(fd)
+        if not stat.S_ISREG(info.st_mode):
+            raise FileRefused("not a regular file")
+        if info.st_size > cap:
+            raise FileRefused(f"larger than {cap} bytes")
+        data = handle.read(cap + 1)
+    if len(data) > cap:  # it grew after the fstat
+        raise FileRefused(f"larger than {cap} bytes")
+    return data
 
 
 def check_socket(path: Path) -> bool:

@@ -13,6 +13,7 @@ for a reason is counted under that reason.
 
 from __future__ import annotations
 
+import errno
 import os
 import re
 import stat
@@ -23,7 +24,9 @@ from fnmatch import fnmatch
 from pathlib import Path
 
 from codeseek.config import Settings
+from codeseek.errors import FileRefused
 from codeseek.languages import LanguageSpec, spec_for_path
+from codeseek.safefs import read_regular_file
 
 VCS_DIRS = frozenset({".git", ".hg", ".svn", ".bzr", "_darcs"})
 VENDOR_DIRS = frozenset({"node_modules", ".venv", "venv", "site-packages", "vendor",
@@ -39,6 +42,11 @@ GENERATED_MARKERS = (b"@generated", b"DO NOT EDIT", b"Code generated", b"autogen
                      b"auto-generated")
 MINIFIED_MEAN_LINE = 400  # common practice: hand-written code averages well under 100
 BINARY_SNIFF_BYTES = 8192
+# An ignore file (.gitignore, .git/info/exclude) is read only if it is a regular file
+# itself, not through a link (git does not follow a symlinked in-tree .gitignore
+# either, since git 2.32: its release notes), and at most this large; one refused is
+# left unread and counted under REASON_IGNORE_FILE.
+MAX_IGNORE_FILE_BYTES = 1024 * 1024
 
 # The reasons a file is left out, as status shows them.
 REASON_IGNORED = "ignored by .gitignore or exclude rules"
@@ -56,6 +64,7 @@ REASON_UNREADABLE = "unreadable"
 REASON_OTHER = "no supported language"
 REASON_PARSE_BUDGET = "parsing took longer than the per-file time budget"
 REASON_INDEX = "the index folder"  # never entered, never listed
+REASON_IGNORE_FILE = "ignore file not read (a link, not a regular file, or too large)"
 
 
 @dataclass(frozen=True)
@@ -263,14 +272,24 @@ class IgnoreRules:
     def __init__(self, root: Path, extra_patterns: tuple[str, ...] = ()) -> None:
         self.root = root
         self._extra = IgnoreFile(list(extra_patterns))
-        self._info_exclude = _load_ignore_file(root / ".git" / "info" / "exclude")
+        self.refused: dict[str, str] = {}  # ignore files left unread: path -> why
+        self._info_exclude = self._load(INFO_EXCLUDE)
         self._files: dict[str, IgnoreFile | None] = {}
+
+    def _load(self, rel_path: str) -> IgnoreFile | None:
+        self.refused.pop(rel_path, None)
+        try:
+            loaded = _load_ignore_file(self.root / rel_path)
+        except FileRefused as exc:
+            self.refused[rel_path] = str(exc)
+            return None
+        return loaded
 
     def spec_of(self, dir_rel: str) -> IgnoreFile | None:
         """The parsed .gitignore of one folder (``""`` is the root), cached."""
         if dir_rel not in self._files:
-            folder = self.root / dir_rel if dir_rel else self.root
-            self._files[dir_rel] = _load_ignore_file(folder / ".gitignore")
+            self._files[dir_rel] = self._load(f"{dir_rel}/.gitignore" if dir_rel
+                                              else ".gitignore")
         return self._files[dir_rel]
 
     def forget(self, dir_rel: str) -> None:
@@ -300,14 +319,21 @@ class IgnoreRules:
         return False
 
 
+INFO_EXCLUDE = ".git/info/exclude"
+
+
 def _load_ignore_file(path: Path) -> IgnoreFile | None:
+    """The ignore file at ``path``, None when there is none; raises FileRefused for a
+    link, a FIFO or anything else that is not a regular file, or one too large."""
     try:
-        # surrogateescape: a pattern holding bytes that are not UTF-8 matches the same
-        # bytes of a file name (git matches bytes), not a replacement character
-        lines = path.read_text(encoding="utf-8", errors="surrogateescape").splitlines()
+        data = read_regular_file(path, MAX_IGNORE_FILE_BYTES)
     except (FileNotFoundError, NotADirectoryError, IsADirectoryError, PermissionError):
         return None
-    return IgnoreFile(lines)
+    except OSError:
+        return None
+    # surrogateescape: a pattern holding bytes that are not UTF-8 matches the same
+    # bytes of a file name (git matches bytes), not a replacement character
+    return IgnoreFile(data.decode("utf-8", errors="surrogateescape").splitlines())
 
 
 def folder_reason(name: str, settings: Settings) -> str | None:
@@ -390,6 +416,8 @@ def scan_repository(
     result = ScanResult()
     index_dir = os.path.realpath(settings.index_dir)
     start = start.strip("/")
+    if not start and INFO_EXCLUDE in rules.refused:
+        result.skip(INFO_EXCLUDE, REASON_IGNORE_FILE)
     if start and not entered(settings, rules, start, result, index_dir):
         return result
     for rel_path, entry in _walk(settings.repo, start, rules, settings, result, index_dir):
@@ -468,6 +496,10 @@ def _walk(
                 elif reason != REASON_INDEX:
                     result.skip(rel + "/", reason)
                 continue
+            if entry.name == ".gitignore" and rules.spec_of(current) is None \
+                    and rel in rules.refused:
+                result.skip(rel, REASON_IGNORE_FILE)
+                continue
             if rules.is_ignored(rel, is_dir=False):
                 result.skip(rel, REASON_IGNORED)
                 continue
@@ -480,13 +512,19 @@ def _walk(
 
 def read_source(source: SourceFile, max_bytes: int) -> bytes:
     """The bytes of a file to parse; raises SkipFile(reason) when it must be left out."""
+    # the scan's lstat is no promise: a link or a FIFO may have been swapped in since,
+    # so the open follows no link and never blocks, and the open file must be regular
     try:
-        with open(source.abs_path, "rb") as handle:
-            data = handle.read(max_bytes + 1)
+        fd = os.open(source.abs_path, os.O_RDONLY | os.O_NOFOLLOW | os.O_NONBLOCK | os.O_CLOEXEC)
     except FileNotFoundError:
         raise SkipFile(REASON_VANISHED) from None
-    except IsADirectoryError:
-        raise SkipFile(REASON_UNREADABLE) from None
+    except OSError as exc:
+        raise SkipFile(REASON_SYMLINK if exc.errno == errno.ELOOP else REASON_UNREADABLE) from None
+    try:
+        with os.fdopen(fd, "rb") as handle:
+            if not stat.S_ISREG(os.fstat(handle.fileno()).st_mode):
+                raise SkipFile(REASON_UNREADABLE)
+            data = handle.read(max_bytes + 1)
     except OSError:
         raise SkipFile(REASON_UNREADABLE) from None
     reason = content_reason(data, max_bytes)

@@ -21,6 +21,7 @@ the same.
 from __future__ import annotations
 
 import math
+import os
 import sqlite3
 import time
 from collections.abc import Iterable, Iterator, Sequence
@@ -134,11 +135,13 @@ def _connect_read_only(path: Path) -> sqlite3.Connection:
     """A read-only connection: ``mode=ro`` reads the WAL when its files are there; with
     no WAL file at all, the store is whole in the main file and ``immutable`` reads it
     without the shared-memory file a read-only folder cannot hold."""
-    uri = f"file:{quote(str(path))}?mode=ro"
+    uri = f"file:{quote(os.fsencode(path))}?mode=ro"  # the name's bytes, whatever they are
     if safefs.lstat_or_none(Path(str(path) + "-wal")) is None:
         uri += "&immutable=1"
-    return sqlite3.connect(uri, uri=True, timeout=30.0, check_same_thread=False,
-                           isolation_level=None)
+    db = sqlite3.connect(uri, uri=True, timeout=30.0, check_same_thread=False,
+                         isolation_level=None)
+    db.execute("PRAGMA trusted_schema=OFF")  # a planted schema runs no functions
+    return db
 
 
 def _translate(exc: sqlite3.Error, path: Path) -> Exception:
@@ -511,7 +514,7 @@ class Store:
         """The stored units of one file (its repository-relative path), in source order."""
         rows = self._query(
             f"SELECT {self._UNIT_COLUMNS} FROM units u JOIN files f ON f.id=u.file_id "
-            "WHERE f.path=? ORDER BY u.start_line, u.id", (path,)
+            "WHERE f.path=? ORDER BY u.start_line, u.id", (to_column(path),)
         )
         return [_stored_unit(row) for row in rows]
 

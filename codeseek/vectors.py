@@ -11,6 +11,7 @@ serialises writers against readers.
 
 from __future__ import annotations
 
+import os
 import threading
 from collections.abc import Sequence
 from pathlib import Path
@@ -63,7 +64,7 @@ class VectorIndex:
             return None
         try:
             raw = hnswlib.Index(space="cosine", dim=dim)
-            raw.load_index(str(path), allow_replace_deleted=True)
+            raw.load_index(os.fsencode(path), allow_replace_deleted=True)  # bytes: any name
             stored = {int(x) for x in raw.get_ids_list()}
             if not expected <= stored:
                 return None
@@ -146,7 +147,7 @@ class VectorIndex:
         with self._lock:
             try:
                 with safefs.replacing(path) as pending:
-                    self._index.save_index(str(pending.path))
+                    self._index.save_index(os.fsencode(pending.path))  # bytes: any name
             except (OSError, RuntimeError) as exc:
                 raise IndexWriteError(f"{path}: cannot save the vector index: {exc}") from exc
 

@@ -22,16 +22,15 @@ def repository(tmp_path: Path, toml: str) -> Path:
 
 def test_relative_paths_in_codeseek_toml_are_relative_to_the_repository(
         tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
-    repo = repository(tmp_path, '[codeseek]\nindex_dir = "build/idx"\nmodel = "models/m"\n')
+    repo = repository(tmp_path, '[codeseek]\nindex_dir = "build/idx"\n')
     monkeypatch.chdir(repo / "pkg" / "deep")
     settings = load_settings(repo, env={})
     assert settings.index_dir == repo / "build" / "idx"
-    assert settings.model == repo / "models" / "m"
     # the same file read from the root, or through a relative repository path, agrees
     monkeypatch.chdir(repo)
     assert load_settings(".", env={}).index_dir == repo / "build" / "idx"
     monkeypatch.chdir(repo / "pkg")
-    assert load_settings("..", env={}).model == repo / "models" / "m"
+    assert load_settings("..", env={}).index_dir == repo / "build" / "idx"
 
 
 def test_relative_arguments_and_variables_are_relative_to_where_the_user_stands(

@@ -27,17 +27,19 @@ from pathlib import Path
 from typing import Any
 
 import pytest
+from conftest import SAMPLE_REPO
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from test_daemon import wait_for
 
-from codeseek import FakeEmbedder, open_index, safefs
+from codeseek import FakeEmbedder, config, open_index, safefs, scan
 from codeseek.api import Index
 from codeseek.cli import main
 from codeseek.client import SOCKET_NAME, DaemonClient, DaemonUnavailable
+from codeseek.config import load_settings
 from codeseek.daemon import Daemon
 from codeseek.display import printable
-from codeseek.errors import CodeseekError, IndexFolderUnsafe, InvalidQuery
+from codeseek.errors import CodeseekError, FileRefused, IndexFolderUnsafe, InvalidQuery
 
 
 def run_cli(*argv: str) -> tuple[int, str, str]:
@@ -328,6 +330,69 @@ def test_a_seal_key_that_is_a_link_is_not_used(sample_copy: Path, tmp_path: Path
     assert planted.read_bytes() == b"k" * 32
 
 
+def _two_repositories(tmp_path: Path) -> tuple[Path, Path, Path]:
+    """Two copies of sample_repo and the index of the first, kept outside both."""
+    first, second = tmp_path / "first", tmp_path / "second"
+    shutil.copytree(SAMPLE_REPO, first, symlinks=True)
+    shutil.copytree(SAMPLE_REPO, second, symlinks=True)
+    index_dir = tmp_path / "first-index"
+    index_quietly(first, "--index-dir", str(index_dir))
+    return first, second, index_dir
+
+
+def test_a_rebuild_never_deletes_another_repositorys_index(tmp_path: Path) -> None:
+    first, second, index_dir = _two_repositories(tmp_path)
+    before = (index_dir / "index.sqlite3").read_bytes()
+    code, _out, err = run_cli("index", str(second), "--rebuild", "--backend", "fake", "-q",
+                              "--index-dir", str(index_dir))
+    assert (code, err) == (
+        2, f"error: the index at {index_dir} was built for the repository {first}, not "
+           f"{second}; give --repo {first}, or another --index-dir for {second}\n")
+    assert (index_dir / "index.sqlite3").read_bytes() == before
+    assert (index_dir / "vectors.hnsw").is_file()
+
+
+def test_every_opening_of_an_index_checks_its_repository(tmp_path: Path) -> None:
+    from codeseek.errors import UsageError
+    from codeseek.tui.backend import LocalIndexer
+
+    _first, second, index_dir = _two_repositories(tmp_path)
+    with pytest.raises(UsageError):
+        open_index(second, index_dir=index_dir, embedder=FakeEmbedder())
+    # the TUI's builder
+    indexer = LocalIndexer(second, index_dir=str(index_dir), embedder=FakeEmbedder())
+    with pytest.raises(UsageError):
+        indexer.update(None)
+
+
+def test_the_tui_reader_shows_only_regular_files_inside_the_repository(
+        sample_copy: Path, tmp_path: Path) -> None:
+    import dataclasses
+
+    from codeseek.search import SearchHit
+    from codeseek.tui.render import SourceCache
+
+    secret = "def secret():\n    return 'the outside file'\n"
+    (sample_copy.parent / "secret.txt.py").write_text(secret)
+    (sample_copy / "python" / "away.py").symlink_to(sample_copy.parent / "secret.txt.py")
+    os.mkfifo(sample_copy / "python" / "pipe.py")
+    (sample_copy / "python" / "big.py").write_text(secret + "#" * 200)
+    hit = SearchHit(query="q", rank=1, score=0.1, similarity=0.5, path="", start_line=1,
+                    end_line=2, language="python", kind="function", name="secret",
+                    qualname="secret", signature="", doc_summary="",
+                    snippet="the indexed lines", unit_id=1)
+    reader = SourceCache(sample_copy, max_bytes=100)
+    for planted in ["../secret.txt.py", str(sample_copy.parent / "secret.txt.py"),
+                    "python/../../secret.txt.py", "python/away.py", "python/pipe.py",
+                    "python/big.py"]:
+        shown = reader.unit(dataclasses.replace(hit, path=planted))
+        assert shown.code == "the indexed lines", planted
+        assert "outside" not in shown.code
+    (sample_copy / "python" / "fine.py").write_text(secret)
+    assert "the outside file" in reader.unit(dataclasses.replace(hit, path="python/fine.py")
+                                             ).code
+
+
 # == terminal output: control characters escaped, JSON exact ==
 
 # The sequence sets the window title (OSC 0, ended by BEL) and clears the screen
@@ -437,6 +502,33 @@ def test_error_and_warning_lines_escape_file_names(sample_copy: Path) -> None:
     assert code == 0
     assert err == (f"warning: python/broken{HOSTILE_SHOWN}.py: syntax errors; indexed the "
                    "units that could be recovered\n")
+
+
+def test_a_warning_about_the_index_folder_is_escaped(sample_copy: Path, tmp_path: Path
+                                                     ) -> None:
+    where = tmp_path / f"idx{HOSTILE}"
+    where.mkdir()
+    where.chmod(0o755)
+    code, _out, err = run_cli("index", str(sample_copy), "--backend", "fake", "-q",
+                              "--index-dir", str(where))
+    assert code == 0
+    assert HOSTILE not in err and f"idx{HOSTILE_SHOWN}" in err
+    assert len(err.splitlines()) == 1
+
+
+def test_a_planted_kind_and_language_are_escaped(sample_copy: Path) -> None:
+    index_quietly(sample_copy)
+    db = sqlite3.connect(sample_copy / ".codeseek" / "index.sqlite3")
+    with db:
+        db.execute("UPDATE units SET kind=?", (HOSTILE,))
+        db.execute("UPDATE files SET language=?", (HOSTILE,))
+    db.close()
+    code, out, err = run_cli("search", "dock battery", "--repo", str(sample_copy),
+                             "--backend", "fake", "-k", "2")
+    assert (code, err) == (0, "")
+    assert HOSTILE not in out and f"[{HOSTILE_SHOWN}, {HOSTILE_SHOWN}]" in out
+    code, out, err = run_cli("status", str(sample_copy))
+    assert HOSTILE not in out + err
 
 
 # == file names and bytes: non-UTF-8 names, newlines in names ==
@@ -607,6 +699,18 @@ def test_a_gitignore_line_in_latin1_ignores_the_same_bytes(tmp_path: Path) -> No
     assert found == by_git == {b"tarif\xe8.py", b"plain.py"}
 
 
+def test_neighbours_of_a_unit_in_a_non_utf8_file(latin1_repo: Path) -> None:
+    index_quietly(latin1_repo)
+    place = "python/" + os.fsdecode(LATIN1_FILE) + ":tariff_for_zone"
+    code, out, err = run_cli("search", "--neighbours", place, "--repo", str(latin1_repo),
+                             "--backend", "fake", "-k", "2", "--json")
+    assert (code, err) == (0, "")
+    assert len(out.splitlines()) == 2
+    code, _out, err = run_cli("search", "--neighbours", "python/" + os.fsdecode(LATIN1_FILE)
+                              + ":3", "--repo", str(latin1_repo), "--backend", "fake")
+    assert (code, err) == (0, "")
+
+
 def test_the_daemon_wire_format_keeps_a_non_utf8_path() -> None:
     import dataclasses
 
@@ -618,6 +722,89 @@ def test_the_daemon_wire_format_keeps_a_non_utf8_path() -> None:
     # the daemon sends json.dumps(asdict(hit)) (ASCII escapes), the client rebuilds the hit
     wire = json.dumps(dataclasses.asdict(hit)).encode("utf-8")
     assert SearchHit(**json.loads(wire)) == hit
+
+
+# Config and ignore files the repository ships that are not regular files of their own:
+# a FIFO (an open or read that blocks for ever) and a link to /dev/zero (endless bytes).
+# Each runs codeseek as a subprocess with a generous timeout, so a hang fails the test
+# instead of stopping the run (the timeout is a guard, not a measure of speed).
+GUARD_SECONDS = 120
+
+
+def _codeseek(*argv: str, cwd: Path | None = None) -> subprocess.CompletedProcess[str]:
+    try:
+        return subprocess.run([sys.executable, "-m", "codeseek", *argv], cwd=cwd,
+                              capture_output=True, text=True, timeout=GUARD_SECONDS,
+                              stdin=subprocess.DEVNULL, check=False)
+    except subprocess.TimeoutExpired as exc:
+        pytest.fail(f"codeseek {' '.join(argv)} hung: {exc}")
+
+
+def test_ignore_files_that_are_a_fifo_or_a_link_are_skipped_and_counted(
+        sample_copy: Path) -> None:
+    os.mkfifo(sample_copy / "python" / ".gitignore")
+    os.symlink("/dev/zero", sample_copy / "go" / ".gitignore")
+    (sample_copy / ".git" / "info").mkdir(parents=True)
+    os.mkfifo(sample_copy / ".git" / "info" / "exclude")
+    result = _codeseek("index", str(sample_copy), "--backend", "fake", "-q")
+    assert (result.returncode, result.stderr) == (0, "")
+    code, out, _err = run_cli("status", str(sample_copy), "--skipped", "--json")
+    assert code == 0
+    listed = json.loads(out)["skipped_files"]
+    refused = sorted(item["path"] for item in listed
+                     if item.get("reason") == scan.REASON_IGNORE_FILE)
+    assert refused == [".git/info/exclude", "go/.gitignore", "python/.gitignore"]
+
+
+def test_a_gitignore_over_the_cap_is_not_read(sample_copy: Path,
+                                              monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(scan, "MAX_IGNORE_FILE_BYTES", 64)
+    (sample_copy / "python" / ".gitignore").write_text("*.py\n" + "#" * 100 + "\n")
+    result = scan.scan_repository(load_settings(sample_copy))
+    assert ("python/.gitignore", scan.REASON_IGNORE_FILE) in result.skipped_paths
+    assert any(f.path.startswith("python/") for f in result.files)  # the rules were not used
+
+
+def test_a_source_file_swapped_for_a_fifo_after_the_scan_is_skipped(sample_copy: Path
+                                                                    ) -> None:
+    result = scan.scan_repository(load_settings(sample_copy))
+    source = result.files[0]
+    source.abs_path.unlink()
+    os.mkfifo(source.abs_path)  # after the scan's lstat: the open must not block
+    # a writer that opens and closes at once, so a blocking reader (the bug) gets an
+    # empty file instead of hanging the test run
+    writer = threading.Thread(target=lambda: os.close(os.open(source.abs_path, os.O_WRONLY)),
+                              daemon=True)
+    writer.start()
+    try:
+        with pytest.raises(scan.SkipFile) as skip:
+            scan.read_source(source, 1024 * 1024)
+    finally:
+        while writer.is_alive():  # release a writer still waiting for a reader
+            os.close(os.open(source.abs_path, os.O_RDONLY | os.O_NONBLOCK))
+            writer.join(0.05)
+    assert skip.value.args[0] == scan.REASON_UNREADABLE
+    source.abs_path.unlink()
+    os.symlink("/dev/zero", source.abs_path)
+    with pytest.raises(scan.SkipFile) as skip:
+        scan.read_source(source, 1024 * 1024)
+    assert skip.value.args[0] == scan.REASON_SYMLINK
+
+
+def test_read_regular_file_refuses_links_fifos_and_big_files(tmp_path: Path) -> None:
+    os.mkfifo(tmp_path / "fifo")
+    os.symlink("/dev/zero", tmp_path / "zero")
+    (tmp_path / "big").write_bytes(b"x" * 11)
+    (tmp_path / "ok").write_bytes(b"x" * 10)
+    for name, reason in [("fifo", "not a regular file"),
+                         ("zero", "a symbolic link (not followed)"),
+                         ("big", "larger than 10 bytes")]:
+        with pytest.raises(FileRefused) as refused:
+            safefs.read_regular_file(tmp_path / name, 10)
+        assert str(refused.value) == reason
+    assert safefs.read_regular_file(tmp_path / "ok", 10) == b"x" * 10
+    with pytest.raises(FileNotFoundError):
+        safefs.read_regular_file(tmp_path / "missing", 10)
 
 
 # == configuration and command-line values ==
@@ -690,6 +877,166 @@ def test_a_negative_seed_is_a_usage_error(indexed_copy: Path, command: str,
 def _config_error(repo: Path, toml: bytes) -> tuple[int, str, str]:
     (repo / "codeseek.toml").write_bytes(toml)
     return run_cli("index", str(repo), "--backend", "fake", "-q")
+
+
+def test_a_codeseek_toml_that_is_a_fifo_or_a_link_is_refused(sample_copy: Path) -> None:
+    toml = sample_copy / "codeseek.toml"
+    os.mkfifo(toml)
+    result = _codeseek("status", str(sample_copy))
+    assert (result.returncode, result.stderr) == (
+        1, f"error: {toml}: cannot read settings: not a regular file\n")
+    toml.unlink()
+    os.symlink("/dev/zero", toml)
+    result = _codeseek("status", str(sample_copy))
+    assert (result.returncode, result.stderr) == (
+        1, f"error: {toml}: cannot read settings: a symbolic link (not followed)\n")
+
+
+def test_a_codeseek_toml_over_the_cap_is_refused(sample_copy: Path) -> None:
+    toml = sample_copy / "codeseek.toml"
+    toml.write_bytes(b"#" * (config.MAX_CONFIG_FILE_BYTES + 1))
+    assert run_cli("status", str(sample_copy)) == (
+        1, "", f"error: {toml}: cannot read settings: larger than "
+               f"{config.MAX_CONFIG_FILE_BYTES} bytes\n")
+
+
+@pytest.mark.parametrize("value", ["../outside/deep/idx", "{absolute}",
+                                   "build/../../outside"])
+def test_codeseek_toml_cannot_place_the_index_outside_the_repository(
+        sample_copy: Path, value: str) -> None:
+    toml = sample_copy / "codeseek.toml"
+    value = value.format(absolute=sample_copy.parent / "elsewhere-idx")
+    assert _config_error(sample_copy, f'index_dir = "{value}"\n'.encode()) == (
+        1, "", f"error: {toml}: index_dir: {value} is outside the repository; codeseek.toml "
+               "may only place the index inside it (use --index-dir or CODESEEK_INDEX_DIR "
+               "for a folder elsewhere)\n")
+    assert sorted(p.name for p in sample_copy.parent.iterdir()) == ["repo"]
+
+
+def test_codeseek_toml_cannot_reach_out_through_a_link_inside(sample_copy: Path,
+                                                              tmp_path: Path) -> None:
+    outside = tmp_path / "outside"
+    outside.mkdir()
+    (sample_copy / "build" / "out").symlink_to(outside)
+    code, _out, err = _config_error(sample_copy, b'index_dir = "build/out/idx"\n')
+    assert (code, err.endswith("is outside the repository; codeseek.toml may only place the "
+                               "index inside it (use --index-dir or CODESEEK_INDEX_DIR for a "
+                               "folder elsewhere)\n")) == (1, True)
+    assert list(outside.iterdir()) == []
+
+
+def test_the_options_may_still_place_the_index_outside(sample_copy: Path, tmp_path: Path,
+                                                       monkeypatch: pytest.MonkeyPatch) -> None:
+    (sample_copy / "codeseek.toml").write_text('index_dir = "../outside"\n')
+    index_quietly(sample_copy, "--index-dir", str(tmp_path / "mine"))
+    monkeypatch.setenv("CODESEEK_INDEX_DIR", str(tmp_path / "env"))
+    index_quietly(sample_copy)
+    assert (tmp_path / "mine" / "index.sqlite3").is_file()
+    assert (tmp_path / "env" / "index.sqlite3").is_file()
+
+
+def test_codeseek_toml_cannot_choose_the_model(sample_copy: Path, tmp_path: Path,
+                                               monkeypatch: pytest.MonkeyPatch) -> None:
+    toml = sample_copy / "codeseek.toml"
+    assert _config_error(sample_copy, b'model = "models/m"\n') == (
+        1, "", f"error: {toml}: model: codeseek.toml cannot choose the model (a repository "
+               "could make codeseek load code of its choosing); use --model or "
+               "CODESEEK_MODEL instead\n")
+    assert not (sample_copy / ".codeseek").exists()
+    # the user's own choice wins and the file's is never used
+    assert load_settings(sample_copy, model=tmp_path / "m").model == tmp_path / "m"
+    monkeypatch.setenv("CODESEEK_MODEL", str(tmp_path / "e"))
+    assert load_settings(sample_copy).model == tmp_path / "e"
+
+
+def test_no_model_is_loaded_with_remote_code() -> None:
+    # transformers runs a model folder's own Python only with trust_remote_code=True
+    # (its from_pretrained documentation): codeseek never passes it
+    source = (Path(__file__).resolve().parent.parent / "codeseek" / "embed.py").read_text()
+    assert "trust_remote_code" not in source
+
+
+@pytest.mark.parametrize(("where", "value", "message"), [
+    ("toml", "a\0b", "{toml}: index_dir: a\\x00b holds a NUL byte, which no file name "
+                     "can hold"),
+    ("option", "a\0b", "--index-dir: a\\x00b holds a NUL byte, which no file name can "
+                       "hold"),
+    ("env", "a\0b", "CODESEEK_INDEX_DIR: a\\x00b holds a NUL byte, which no file name "
+                    "can hold"),
+    ("toml", "~nosuchuser/x", "{toml}: index_dir: ~nosuchuser/x: no such user's home folder"),
+    ("option", "~nosuchuser/x", "--index-dir: ~nosuchuser/x: no such user's home folder"),
+    ("env", "~nosuchuser/x", "CODESEEK_INDEX_DIR: ~nosuchuser/x: no such user's home folder"),
+    ("model", "m\0", "--model: m\\x00 holds a NUL byte, which no file name can hold"),
+])
+def test_index_dir_with_a_nul_or_an_unknown_user(sample_copy: Path,
+                                                 monkeypatch: pytest.MonkeyPatch, where: str,
+                                                 value: str, message: str) -> None:
+    toml = sample_copy / "codeseek.toml"
+    extra: list[str] = []
+    if where == "toml":
+        toml.write_text(json.dumps({"index_dir": value})[1:-1].replace('": ', '" = ')
+                        .replace('"index_dir"', "index_dir") + "\n")
+    elif where == "option":
+        extra = ["--index-dir", value]
+    elif where == "model":
+        extra = ["--model", value]
+    else:
+        monkeypatch.setattr(os, "environ", {**os.environ, "CODESEEK_INDEX_DIR": value})
+    assert run_cli("index", str(sample_copy), "--backend", "fake", "-q", *extra) == (
+        1, "", f"error: {message.format(toml=toml)}\n")
+
+
+def test_an_index_folder_whose_name_is_not_utf8(sample_copy: Path, tmp_path: Path) -> None:
+    # b"\xff" is never UTF-8 (RFC 3629); hnswlib takes such a name only as bytes
+    index_dir = os.fsdecode(os.path.join(os.fsencode(tmp_path), b"\xffidx"))
+    index_quietly(sample_copy, "--index-dir", index_dir)
+    code, out, err = run_cli("search", "dock battery", "--repo", str(sample_copy), "--backend",
+                             "fake", "--index-dir", index_dir, "-k", "1", "--json")
+    assert (code, err) == (0, "")
+    assert json.loads(out.splitlines()[0])["path"]
+    assert {b"index.sqlite3", b"vectors.hnsw"} <= set(os.listdir(os.fsencode(index_dir)))
+
+
+def _no_read_write_opens(monkeypatch: pytest.MonkeyPatch) -> None:
+    """sqlite3.connect as in a folder of mode 0500 (root ignores modes): only the
+    read-only URI opens."""
+    real_connect = sqlite3.connect
+
+    def no_writes(target, *args, **kwargs):  # type: ignore[no-untyped-def]
+        if not kwargs.get("uri"):
+            raise sqlite3.OperationalError("unable to open database file")
+        return real_connect(target, *args, **kwargs)
+
+    monkeypatch.setattr(sqlite3, "connect", no_writes)
+
+
+def test_a_repository_in_a_folder_whose_name_is_not_utf8(
+        sample_copy: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    repo = os.fsdecode(os.path.join(os.fsencode(tmp_path), b"d\xe9p\xf4t"))
+    shutil.move(sample_copy, repo)
+    index_quietly(Path(repo))
+    assert run_cli("search", "dock battery", "--repo", repo, "--backend", "fake",
+                   "-k", "1")[0] == 0
+    # reading without write access goes through a SQLite URI of the name's bytes
+    _no_read_write_opens(monkeypatch)
+    code, out, err = run_cli("status", repo, "--json")
+    assert (code, err) == (0, "")
+    assert json.loads(out)["units"] > 0
+
+
+@pytest.mark.parametrize(("where", "message"), [
+    # "²".isdigit() is true and int("²") raises (Python's str.isdigit documentation)
+    ("²", "python/kestrune/ratelimit.py: no unit named '²'"),
+    ("٣", "python/kestrune/ratelimit.py: no unit named '٣'"),
+    ("0", "python/kestrune/ratelimit.py: line numbers start at 1, not 0"),
+    ("99999999999999999999", "python/kestrune/ratelimit.py: no unit holds line "
+                             "99999999999999999999"),
+])
+def test_neighbours_of_a_line_that_is_not_a_line_number(indexed_copy: Path, where: str,
+                                                        message: str) -> None:
+    assert run_cli("search", "--neighbours", f"python/kestrune/ratelimit.py:{where}",
+                   "--repo", str(indexed_copy), "--backend", "fake") == (
+        1, "", f"error: {message}\n")
 
 
 def test_a_codeseek_toml_that_is_not_utf8(sample_copy: Path) -> None:
@@ -775,6 +1122,10 @@ def test_git_matches_nothing_with_an_unclosed_bracket(tmp_path: Path) -> None:
                             cwd=tmp_path, env=env, capture_output=True, text=True,
                             check=True).stdout
     assert {p for p in listed.split("\0") if p} == {"[", "a", "[a", ".gitignore"}
+    # codeseek's own matcher gives git's answer for the same names
+    rules = scan.IgnoreRules(tmp_path)
+    assert {name for name in ("[", "a", "[a", ".gitignore")
+            if not rules.is_ignored(name, is_dir=False)} == {p for p in listed.split("\0") if p}
 
 
 
@@ -1246,6 +1597,24 @@ def test_a_store_in_a_folder_that_cannot_be_written_opens_read_only(
         store.close()
 
 
+def test_a_read_only_store_trusts_no_schema(sample_copy: Path,
+                                           monkeypatch: pytest.MonkeyPatch) -> None:
+    # PRAGMA trusted_schema=OFF: a planted schema's views and triggers run no
+    # application functions (sqlite.org/pragma.html#pragma_trusted_schema)
+    from codeseek.store import Store
+
+    index_quietly(sample_copy)
+    for read_only in (False, True):
+        if read_only:
+            _no_read_write_opens(monkeypatch)
+        store = Store.open(sample_copy / ".codeseek", create=False)
+        try:
+            assert store.read_only is read_only
+            assert store._db.execute("PRAGMA trusted_schema").fetchone() == (0,)
+        finally:
+            store.close()
+
+
 def test_status_reports_a_store_garbled_mid_file(sample_copy: Path) -> None:
     assert run_cli("index", str(sample_copy), "--backend", "fake")[0] == 0
     db = sample_copy / ".codeseek" / "index.sqlite3"
@@ -1414,10 +1783,10 @@ _NAMES = st.lists(st.binary(min_size=1, max_size=16), max_size=6)
           suppress_health_check=[HealthCheck.too_slow, HealthCheck.function_scoped_fixture])
 @given(first=_NAMES, second=_NAMES, query=st.binary(max_size=24),
        lines=st.lists(st.binary(max_size=24), max_size=4), ignore=st.binary(max_size=24),
-       as_json=st.booleans())
+       as_json=st.booleans(), place=st.binary(max_size=24), piped=st.booleans())
 def test_random_bytes_as_names_queries_and_batch_lines(
         first: list[bytes], second: list[bytes], query: bytes, lines: list[bytes],
-        ignore: bytes, as_json: bool) -> None:
+        ignore: bytes, as_json: bool, place: bytes, piped: bool) -> None:
     with tempfile.TemporaryDirectory() as temp:
         repo = Path(temp) / "repo"
         root = os.fsencode(repo)
@@ -1429,6 +1798,10 @@ def test_random_bytes_as_names_queries_and_batch_lines(
         _check_run(["index", str(repo), "-q", *common])
         _write_tree(root, [n for n in map(_posix_name, second) if n], 100)  # an update
         (repo / ".gitignore").write_bytes(ignore)  # random bytes as ignore rules too
+        if piped:  # a FIFO as a folder's ignore file: skipped, never opened for a read
+            os.mkdir(repo / "piped")
+            os.mkfifo(repo / "piped" / ".gitignore")
+            (repo / "piped" / "pump.py").write_text('def pump():\n    """A pump."""\n')
         _check_run(["index", str(repo), "-q", *common])
         view = ["--json"] if as_json else []
         # a query argument as sys.argv holds it (PEP 383); "--" keeps it positional
@@ -1436,6 +1809,10 @@ def test_random_bytes_as_names_queries_and_batch_lines(
         batch = Path(temp) / "batch.txt"
         batch.write_bytes(b"\n".join(lines))
         _check_run(["search", "--batch", str(batch), "--repo", str(repo), *common])
+        # a random PATH:NAME (sys.argv never holds a NUL: execve's strings end at one)
+        for near in (place, b"base.py:" + place):
+            _check_run(["search", "--neighbours", os.fsdecode(near.replace(b"\0", b"")),
+                        "--repo", str(repo), *common, *view])
         _check_run(["outline", str(repo), *view])
         _check_run(["status", str(repo)])
         fresh = Path(temp) / "fresh-index"

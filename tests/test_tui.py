@@ -13,6 +13,7 @@ import dataclasses
 import functools
 import io
 import os
+import sqlite3
 import stat
 import threading
 import time
@@ -488,6 +489,23 @@ async def test_the_editor_gets_plus_line_and_the_path(index: Index, repo: Path,
         assert record.read_text(encoding="utf-8").splitlines() == [
             f"+{REFUND_LINE}", str(repo / REFUND_PATH)]
         assert app.locations == []
+
+
+@in_loop
+async def test_the_editor_never_opens_a_planted_path_outside_the_repository(
+        index: Index, repo: Path, tmp_path: Path) -> None:
+    # a planted index names a file outside the repository: the editor is not started
+    script, record = fake_editor(tmp_path, "vi")
+    db = sqlite3.connect(repo / ".codeseek" / "index.sqlite3")
+    with db:
+        db.execute("UPDATE files SET path=? WHERE path=?", ("../secret.py", REFUND_PATH))
+    db.close()
+    app = make_app(index, repo, env={"VISUAL": str(script)})
+    async with app.run_test() as pilot:
+        await open_top_hit(app, pilot)
+        await wait_until(pilot, lambda: app.locations != [])
+        assert app.locations[0].startswith("../secret.py:")
+        assert not record.exists()
 
 
 @in_loop

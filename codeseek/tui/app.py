@@ -63,6 +63,7 @@ from codeseek.tui.render import (
     index_summary,
     reader_code,
     reader_header,
+    repository_file,
 )
 from codeseek.tui.screens import KeyList
 from codeseek.tui.theme import HARBOUR, HARBOUR_LIGHT, code_look, light_background
@@ -639,7 +640,10 @@ class CodeseekApp(App[int]):
         if hit is None:
             return
         place = self._place(hit)
-        path = self.repo / hit.path if self.repo is not None else Path(hit.path)
+        path = repository_file(self.repo, hit.path) if self.repo is not None else None
+        if path is None:  # a planted index may name a file outside the repository
+            self._fall_back(place, "the hit's file is not inside the repository")
+            return
         try:
             command = editor_command(self.env, path, hit.start_line)
         except ConfigError as exc:

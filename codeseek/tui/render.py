@@ -13,7 +13,7 @@ import os
 import re
 import time
 from dataclasses import dataclass
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 from typing import TYPE_CHECKING
 
 from rich.console import Console, ConsoleOptions, Group, RenderableType, RenderResult
@@ -24,8 +24,11 @@ from rich.syntax import Syntax
 from rich.text import Text
 from textual.content import Content
 
+from codeseek.config import DEFAULT_MAX_FILE_BYTES
 from codeseek.display import printable, printable_block
+from codeseek.errors import FileRefused
 from codeseek.languages import spec_for_path
+from codeseek.safefs import read_regular_file
 from codeseek.search import STOPWORDS, SearchHit
 from codeseek.tui.theme import CodeLook, code_look
 from codeseek.units import split_identifier
@@ -127,17 +130,42 @@ class UnitSource:
     note: str = ""
 
 
-class SourceCache:
-    """Reads units' code from the repository's files, keeping recently read files."""
+def repository_file(repo: Path, stored: str) -> Path | None:
+    """The file a hit's stored path names, or None when it is not one of the repository's.
 
-    def __init__(self, repo: Path | None, keep: int = 32) -> None:
+    A stored path comes from the index, which a cloned repository may have planted:
+    an absolute path, a ``..`` part, or a link leading out of the repository is
+    refused (the file must resolve inside the repository root).
+    """
+    relative = PurePosixPath(stored)
+    if not stored or relative.is_absolute() or ".." in relative.parts or "\0" in stored:
+        return None
+    path = repo / relative
+    try:
+        inside = path.resolve().is_relative_to(repo.resolve())
+    except (OSError, RuntimeError, ValueError):
+        return None
+    return path if inside else None
+
+
+class SourceCache:
+    """Reads units' code from the repository's files, keeping recently read files.
+
+    Only a regular file inside the repository (:func:`repository_file`), opened
+    without following a link or blocking on a FIFO, of at most ``max_bytes`` (the
+    indexer's limit) is read; anything else shows the indexed first lines.
+    """
+
+    def __init__(self, repo: Path | None, keep: int = 32,
+                 max_bytes: int = DEFAULT_MAX_FILE_BYTES) -> None:
         self.repo = repo
         self.keep = keep
+        self.max_bytes = max_bytes
         self._files: dict[str, tuple[int, list[str]]] = {}
 
     def _lines(self, path: Path, cr_newlines: bool) -> list[str] | None:
         try:
-            stamp = path.stat().st_mtime_ns
+            stamp = os.lstat(path).st_mtime_ns
         except OSError:
             return None
         key = f"{path}\0{cr_newlines}"
@@ -145,8 +173,8 @@ class SourceCache:
         if cached is not None and cached[0] == stamp:
             return cached[1]
         try:
-            text = path.read_text(encoding="utf-8", errors="replace")
-        except OSError:
+            text = read_regular_file(path, self.max_bytes).decode("utf-8", errors="replace")
+        except (OSError, FileRefused):
             return None
         # lines end where the parser ends them: at "\n" (and at a lone "\r" in a language
         # where it ends a line); str.splitlines would also break at form feeds, "\x1c" to
@@ -166,8 +194,8 @@ class SourceCache:
         """The unit's lines from its file; the indexed first lines if the file changed."""
         spec = spec_for_path(hit.path)
         cr_newlines = spec is not None and spec.cr_newlines
-        lines = (self._lines(self.repo / hit.path, cr_newlines) if self.repo is not None
-                 else None)
+        path = repository_file(self.repo, hit.path) if self.repo is not None else None
+        lines = self._lines(path, cr_newlines) if path is not None else None
         if lines is None or hit.end_line > len(lines) or hit.start_line < 1:
             return UnitSource(hit.snippet, hit.start_line,
                               "the file changed or is gone; showing the indexed first lines")
