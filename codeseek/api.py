@@ -38,21 +38,19 @@ from codeseek.errors import (
     ModelMismatch,
     RepositoryNotFound,
     TooFewExamples,
-    UsageError,
 )
 from codeseek.indexer import (
     ProgressCallback,
     Updater,
     UpdateSummary,
     load_vectors,
-    repository_record,
     save_vectors,
 )
 from codeseek.locks import ReadWriteLock
 from codeseek.query import DEFAULT_K, Filters, Query, as_queries, filters_of
 from codeseek.scan import ScanResult, SourceFile
 from codeseek.search import DEFAULT_FUSION, Fusion, Searcher, SearchHit, neighbour_units
-from codeseek.service import IndexStatus
+from codeseek.service import IndexStatus, repository_mismatch
 from codeseek.store import DB_NAME, Store, unlink_all
 from codeseek.vectors import HNSW_NAME, VectorIndex
 
@@ -543,17 +541,16 @@ def check_repository(settings: Settings, store: Store) -> None:
     """Refuse an index kept outside the repository that was built for another repository.
 
     Every opening of an index checks it (:func:`open_index`: the CLI, the TUI, the
-    daemon). An index inside the repository (the default ``.codeseek``) moves with
-    it, so only an index elsewhere is checked; an index from before the manifest
-    recorded its repository is taken as it is.
+    daemon; :func:`codeseek.connect` checks the same through a running daemon). An
+    index inside the repository (the default ``.codeseek``) moves with it, so only an
+    index elsewhere is checked; an index from before the manifest recorded its
+    repository is taken as it is.
     """
     if settings.index_dir.is_relative_to(settings.repo):
         return
-    recorded = store.manifest().get("repo")
-    if recorded is not None and recorded != repository_record(settings.repo):
-        raise UsageError(f"the index at {settings.index_dir} was built for the repository "
-                         f"{recorded}, not {settings.repo}; give --repo {recorded}, or another "
-                         f"--index-dir for {settings.repo}")
+    mismatch = repository_mismatch(settings, store.manifest().get("repo"))
+    if mismatch is not None:
+        raise mismatch
 
 
 def remove_index_files(index_dir: Path) -> None:

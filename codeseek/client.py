@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import json
 import socket
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import replace
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
@@ -269,17 +269,26 @@ class DaemonService:
 
     Each call opens its own connection. When no daemon listens (a crashed daemon's
     socket, or one stopped since), the call and every later one are answered in
-    process by ``index``, the same index opened locally; so is a query too large
-    for any request (said to ``notice``). A daemon that listens but fails raises
-    :class:`~codeseek.errors.DaemonError`.
+    process by the same index opened locally (``open_local``, called only then, so
+    a search through a daemon never loads the index's modules); so is a query too
+    large for any request (said to ``notice``). A daemon that listens but fails
+    raises :class:`~codeseek.errors.DaemonError`.
     """
 
-    def __init__(self, client: DaemonClient, index: Index,
+    def __init__(self, client: DaemonClient, open_local: Callable[[], Index],
                  notice: Notice | None = None) -> None:
         self.client = client
-        self.index = index
+        self._open_local = open_local
+        self._index: Index | None = None
         self.notice = notice
         self.gone = False  # no daemon listened at the last call: the index answers
+
+    @property
+    def index(self) -> Index:
+        """The index in this process, opened on first need."""
+        if self._index is None:
+            self._index = self._open_local()
+        return self._index
 
     def search(self, query: Query) -> list[SearchHit]:
         """One query's answer."""
@@ -326,5 +335,7 @@ class DaemonService:
         return None
 
     def close(self) -> None:
-        """Close the local index."""
-        self.index.close()
+        """Close the local index, if it was opened."""
+        if self._index is not None:
+            self._index.close()
+            self._index = None

@@ -29,11 +29,13 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, Protocol, runtime_checkable
 
+from codeseek.errors import UsageError
 from codeseek.hits import SearchHit
 from codeseek.query import Query
 
 if TYPE_CHECKING:
     from codeseek.api import Index
+    from codeseek.config import Settings
     from codeseek.embed import Embedder
 
 Notice = Callable[[str], None]
@@ -105,22 +107,76 @@ def connect(repo: str | os.PathLike[str] = ".", *,
     (it does not turn the daemon away; ``model`` and ``backend`` do). ``notice``
     hears why a query the daemon cannot take is answered in process.
     """
-    from codeseek.api import open_index
     from codeseek.client import DaemonClient, DaemonService
 
-    index = open_index(repo, index_dir=index_dir, model=model, backend=backend,
-                       embedder=embedder)
+    def open_local() -> Index:
+        from codeseek.api import open_index
+
+        return open_index(repo, index_dir=index_dir, model=model, backend=backend,
+                          embedder=embedder)
+
+    if check is None and model is None and backend is None:
+        # a running daemon answers without this process loading the index's modules
+        from codeseek import safefs
+        from codeseek.config import load_settings
+
+        settings = load_settings(Path(repo), index_dir=index_dir)
+        client = DaemonClient(settings.index_dir)
+        if client.present():
+            safefs.check_index_dir(settings.index_dir)  # the refusal open_index would give
+            if not settings.index_dir.is_relative_to(settings.repo):  # else it moves with it
+                mismatch = repository_mismatch(settings,
+                                               _recorded_repository(settings.index_dir))
+                if mismatch is not None:
+                    raise mismatch
+            return DaemonService(client, open_local, notice)
+    index = open_local()
     try:
         if check is not None:
             check(index)
         if model is None and backend is None:
             client = DaemonClient(index.settings.index_dir)
             if client.present():
-                return DaemonService(client, index, notice)
+                return DaemonService(client, lambda: index, notice)
     except BaseException:
         index.close()
         raise
     return index
+
+
+def repository_mismatch(settings: Settings, recorded: str | None) -> UsageError | None:
+    """The error for an index kept outside its repository that was built for another
+    repository (``recorded``, from the manifest); None when it is this repository's, when
+    it lies inside the repository (it moves with it), or when nothing was recorded."""
+    if settings.index_dir.is_relative_to(settings.repo) or recorded is None:
+        return None
+    if recorded == os.fsencode(settings.repo).decode("utf-8", "backslashreplace"):
+        return None
+    return UsageError(f"the index at {settings.index_dir} was built for the repository "
+                      f"{recorded}, not {settings.repo}; give --repo {recorded}, or another "
+                      f"--index-dir for {settings.repo}")
+
+
+def _recorded_repository(index_dir: Path) -> str | None:
+    """The repository the manifest records, read with sqlite3 alone (read-only, no
+    schema trusted); None when there is none or it cannot be read (the daemon, which
+    has the index open, then answers for it)."""
+    import sqlite3
+    from urllib.parse import quote
+
+    try:
+        db = sqlite3.connect(f"file:{quote(os.fsencode(index_dir / 'index.sqlite3'))}?mode=ro",
+                             uri=True, timeout=5.0)
+    except sqlite3.Error:
+        return None
+    try:
+        db.execute("PRAGMA trusted_schema=OFF")
+        row = db.execute("SELECT value FROM manifest WHERE key = 'repo'").fetchone()
+    except sqlite3.Error:
+        return None
+    finally:
+        db.close()
+    return str(row[0]) if row else None
 
 
 def daemon_status(repo: str | os.PathLike[str] = ".", *,

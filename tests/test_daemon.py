@@ -832,3 +832,43 @@ def test_the_daemon_answers_an_old_protocol_request_with_a_clear_error(daemon: D
         "v": 2, "ok": False, "kind": "ProtocolError",
         "error": "unsupported protocol version 1; this daemon speaks 2 (a codeseek of "
                  "another version sent the request; use the same codeseek for both)"}
+
+
+def test_a_search_through_the_daemon_loads_none_of_the_index_modules(daemon: Daemon) -> None:
+    """The point of a warm daemon: the searching process only speaks to its socket.
+    CPython's own import tracer (python -X importtime) says what was imported."""
+    repo = daemon.index.settings.repo
+    result = subprocess.run([sys.executable, "-X", "importtime", "-m", "codeseek", "search",
+                             "refund a rider", "--repo", str(repo), "-k", "3", "--json"],
+                            capture_output=True, text=True, timeout=120)
+    assert result.returncode == 0, result.stderr
+    assert len(result.stdout.splitlines()) == 3
+    imported = {line.rsplit("|", 1)[-1].strip() for line in result.stderr.splitlines()
+                if line.startswith("import time:")}
+    assert "codeseek.client" in imported  # the tracer saw the search's own imports
+    assert not imported & {"numpy", "hnswlib", "onnxruntime", "codeseek.api",
+                           "codeseek.store", "torch"}
+
+
+def test_through_a_daemon_an_index_elsewhere_still_refuses_another_repository(
+        sample_copy: Path, tmp_path: Path) -> None:
+    from codeseek import connect
+    from codeseek.errors import UsageError
+
+    where = tmp_path / "kept-elsewhere"
+    index = open_index(sample_copy, index_dir=where, create=True, embedder=FakeEmbedder())
+    running = Daemon(index, reconcile_seconds=3600)
+    running.start()
+    try:
+        other = tmp_path / "other"
+        other.mkdir()
+        with pytest.raises(UsageError, match="was built for the repository"):
+            connect(other, index_dir=where)
+        served = connect(sample_copy, index_dir=where)  # its own repository is served
+        try:
+            assert served.daemon_status() is not None
+        finally:
+            served.close()
+    finally:
+        running.stop()
+        index.close()
