@@ -351,10 +351,7 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         hits = next(iter(results))
     finally:
         service.close()
-    if args.json:
-        _print_json(hits, out)
-    else:
-        _print_hits(hits, out)
+    _print_answer(hits, args.json, out)
     return EXIT_OK
 
 
@@ -372,11 +369,16 @@ def _search_neighbours(args: argparse.Namespace, out: TextIO, err: TextIO) -> in
         hits = service.neighbours(Query(unit_id=unit_id, k=args.k, filters=filters))
     finally:
         service.close()
-    if args.json:
+    _print_answer(hits, args.json, out)
+    return EXIT_OK
+
+
+def _print_answer(hits: Sequence[SearchHit], as_json: bool, out: TextIO) -> None:
+    """One answer's hits: JSON Lines with ``--json``, else the plain listing."""
+    if as_json:
         _print_json(hits, out)
     else:
         _print_hits(hits, out)
-    return EXIT_OK
 
 
 def _unit_of_place(index: Index, place: str) -> int:

@@ -13,9 +13,9 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+from test_cli import run_cli
 
 from codeseek.api import Index
-from codeseek.cli import main
 from codeseek.evaluate import (
     DEPTH,
     Split,
@@ -259,12 +259,6 @@ def test_question_depth_keeps_the_served_candidates() -> None:
 
     # Searcher.ranked fuses max(CANDIDATES, 3k) of each side: the depth must not raise it
     assert 3 * QUESTION_DEPTH <= CANDIDATES and DEPTH == CANDIDATES
-
-
-def run_cli(*argv: str) -> tuple[int, str, str]:
-    out, err = io.StringIO(), io.StringIO()
-    code = main(list(argv), out=out, err=err)
-    return code, out.getvalue(), err.getvalue()
 
 
 @pytest.fixture
