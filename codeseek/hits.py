@@ -25,6 +25,9 @@ class SearchHit:
         doc_summary: the first paragraph of its doc.
         snippet: the first lines of its code.
         unit_id: the unit's row id in the index.
+        confidence: how sure the hit is, in [0, 1]: where its cosine falls among the
+            best cosines off-topic questions get on this index (see
+            :mod:`codeseek.confidence`); None for neighbours answers.
     """
 
     query: str
@@ -42,6 +45,7 @@ class SearchHit:
     doc_summary: str
     snippet: str
     unit_id: int
+    confidence: float | None = None
 
     def to_json(self) -> dict[str, object]:
         """The JSON Lines record of this hit (a path that is not UTF-8: see
@@ -53,4 +57,5 @@ class SearchHit:
             "language": self.language, "kind": self.kind, "name": self.name,
             "qualname": self.qualname, "signature": self.signature,
             "doc_summary": self.doc_summary, "snippet": self.snippet,
+            "confidence": None if self.confidence is None else round(self.confidence, 6),
         }

@@ -19,13 +19,14 @@ from __future__ import annotations
 
 import re
 from collections.abc import Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 
 import numpy as np
 import pathspec
 
 from codeseek.adapter import QueryAdapter
 from codeseek.client import MAX_K
+from codeseek.confidence import OFF_TOPIC_QUERIES, Baseline
 from codeseek.embed import Embedder
 from codeseek.errors import InvalidQuery
 from codeseek.hits import SearchHit
@@ -195,6 +196,17 @@ class Searcher:
         self.lock = lock or ReadWriteLock()
         self.adapter = adapter
         self.fusion = fusion or DEFAULT_FUSION
+        self._baseline: tuple[object, Baseline] | None = None
+
+    def baseline(self) -> Baseline:
+        """The off-topic questions' best cosines on this index state (computed once per
+        store generation, vector index and adapter; the caller holds the read lock)."""
+        key = (self.store.generation(), id(self.vectors), id(self.adapter))
+        if self._baseline is None or self._baseline[0] != key:
+            matrix = self.query_vectors(OFF_TOPIC_QUERIES)
+            best = [hits[0][1] for hits in (self.vectors.search(v, 1) for v in matrix) if hits]
+            self._baseline = (key, Baseline.of(best))
+        return self._baseline[1]
 
     def search(self, query: str, k: int = 10, filters: Filters | None = None) -> list[SearchHit]:
         """The k best units for one query."""
@@ -262,13 +274,28 @@ class Searcher:
                 pool: set[int] | None) -> list[SearchHit]:
         ranked, similarity = self.ranked(query, vector, k, pool)
         units = self.store.units_by_ids([unit_id for unit_id, _ in ranked])
+        cosines = self._cosines(vector, [unit_id for unit_id, _ in ranked], similarity)
+        baseline = self.baseline()
         hits: list[SearchHit] = []
         for unit_id, score in ranked:
             stored = units.get(unit_id)
             if stored is None:
                 continue
-            hits.append(_hit(query, len(hits) + 1, score, similarity.get(unit_id), stored))
+            hit = _hit(query, len(hits) + 1, score, similarity.get(unit_id), stored)
+            hits.append(replace(hit, confidence=baseline.confidence(cosines.get(unit_id))))
         return hits
+
+    def _cosines(self, vector: np.ndarray, ids: list[int],
+                 similarity: dict[int, float]) -> dict[int, float]:
+        """Each unit's cosine to the query: the dense side's, else (a keyword-only hit)
+        from its stored vector, so its confidence rests on the same evidence; a unit with
+        no stored vector has none (its confidence is None)."""
+        cosines = {i: similarity[i] for i in ids if i in similarity}
+        missing = [i for i in ids if i not in similarity]
+        if missing:
+            labels, matrix = self.store.unit_vectors(self.model_id, self.vectors.dim, missing)
+            cosines.update(exact_search(vector, labels, matrix, len(labels)))
+        return cosines
 
 
 def _hit(query: str, rank: int, score: float, similarity: float | None,
