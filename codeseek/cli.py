@@ -21,6 +21,7 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
 from codeseek import __version__
+from codeseek.confidence import weak_note
 from codeseek.display import json_path, printable, printable_block
 from codeseek.errors import (
     CodeseekError,
@@ -499,6 +500,9 @@ def _print_hits(hits: Sequence[SearchHit], out: TextIO) -> None:
     if not hits:
         print("no matches; try other words or fewer filters", file=out)
         return
+    note = weak_note([hit.confidence for hit in hits])  # see codeseek.confidence
+    if note:
+        print(note, file=out)
     columns = _columns()
     for hit in hits:  # repository text is escaped: shown, never obeyed by the terminal
         print(f"{hit.rank:>2}. {printable(hit.qualname)}  "

@@ -197,9 +197,11 @@ def test_daemon_and_in_process_search_agree(daemon: Daemon, client: DaemonClient
     local = open_index(daemon.index.settings.repo, index_dir=tmp_path / "other", create=True,
                        embedder=FakeEmbedder())
     local.update()
-    assert [[(h.path, h.qualname, h.start_line) for h in hits] for hits in remote] == \
-        [[(h.path, h.qualname, h.start_line) for h in hits]
+    assert [[(h.path, h.qualname, h.start_line, h.confidence) for h in hits]
+            for hits in remote] == \
+        [[(h.path, h.qualname, h.start_line, h.confidence) for h in hits]
          for hits in local.search_many(queries, 8)]
+    assert all(h.confidence is not None for hits in remote for h in hits)
 
 
 def raw_exchange(path: Path, payload: bytes) -> bytes:
