@@ -37,7 +37,7 @@ OFF_TOPIC_QUERIES: tuple[str, ...] = (
     "what do owls eat at night",
     "how to brew a strong cup of tea",
     "the tallest mountains on the continent",
-    "quantum chromodynamics lattice",
+    "how to fold a paper crane",
     "painting a watercolour landscape at sunset",
     "folk songs sung at a village wedding",
     "how to tie a sailing knot",

@@ -115,3 +115,42 @@ def test_the_first_export_says_what_it_does(tmp_path: Path,
                              "(once, about 10 s)")
     load_embedder(settings)  # exported: nothing more to say
     assert capfd.readouterr() == ("", "")
+
+
+# -- confidence per hit (codeseek.confidence) with the real model ---------------------------
+
+
+def test_nonsense_question_is_weak_and_a_real_one_is_not(sample_index: Index) -> None:
+    from codeseek.confidence import is_weak
+
+    nonsense = sample_index.search("quantum chromodynamics lattice", 10)
+    assert nonsense and all(is_weak(h.confidence) for h in nonsense)
+    real = sample_index.search("drain the upload queue", 10)
+    assert not is_weak(max(h.confidence or 0.0 for h in real))
+
+
+def test_stdlib_docstrings_find_their_function_with_confidence(tmp_path: Path) -> None:
+    # real code with real docstrings: the Python standard library on this machine
+    repo = tmp_path / "stdlib"
+    repo.mkdir()
+    for name in ("textwrap.py", "colorsys.py", "shlex.py"):
+        shutil.copy(STDLIB / name, repo / name)
+    index = open_index(repo, create=True)
+    index.update()
+    try:
+        searcher = index.searcher()
+        with searcher.lock.read():
+            top_off_topic = max(searcher.baseline().cosines)
+        # the questions paraphrase the docstrings of textwrap.dedent, colorsys.rgb_to_hsv
+        # and shlex.quote
+        for question, name in (("remove common leading whitespace from every line", "dedent"),
+                               ("convert a red green blue colour to hue saturation value",
+                                "rgb_to_hsv"),
+                               ("escape a string for use in a shell command line", "quote")):
+            hits = index.search(question, 5)
+            found = [h for h in hits if h.name == name]
+            assert found, (question, [h.name for h in hits])
+            assert found[0].similarity is not None and found[0].similarity > top_off_topic
+            assert found[0].confidence == 1.0
+    finally:
+        index.close()
