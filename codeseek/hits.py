@@ -25,6 +25,8 @@ class SearchHit:
         doc_summary: the first paragraph of its doc.
         snippet: the first lines of its code.
         unit_id: the unit's row id in the index.
+        repo: the repository root the hit comes from, set only when several
+            repositories are searched at once (:mod:`codeseek.multi`); None otherwise.
     """
 
     query: str
@@ -42,6 +44,7 @@ class SearchHit:
     doc_summary: str
     snippet: str
     unit_id: int
+    repo: str | None = None
 
     def to_json(self) -> dict[str, object]:
         """The JSON Lines record of this hit (a path that is not UTF-8: see
@@ -53,4 +56,5 @@ class SearchHit:
             "language": self.language, "kind": self.kind, "name": self.name,
             "qualname": self.qualname, "signature": self.signature,
             "doc_summary": self.doc_summary, "snippet": self.snippet,
+            **({} if self.repo is None else {"repo": self.repo}),
         }
