@@ -196,8 +196,9 @@ def test_merged_halves_agree_with_one_index_of_the_whole(tmp_path: Path) -> None
             index.close()
     print(f"mean top-10 overlap {means}")
     # measured with the fake embedder (hashed words, no model): served 0.75,
-    # restandardised 0.73; with the real model see README. The fake embedder's dense side
-    # is word hashing, so the halves' BM25 statistics decide most of the gap; the issue's
-    # 0.9 is a real-model target (FAKE_FLOOR is a regression floor, not that target).
+    # restandardised 0.73; with the packaged model (scripts/bench_multi.py): served 0.66,
+    # restandardised 0.65-0.67. The issue's 0.9 target is NOT met by either: a unit's
+    # fused score depends on the other units of its index, so halves rank differently
+    # from the whole. FAKE_FLOOR is a regression floor, not that target.
     assert means["served"] >= FAKE_FLOOR
     assert means["restandardised"] >= FAKE_FLOOR
