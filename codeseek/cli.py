@@ -100,8 +100,12 @@ def _search_parser(commands: Any) -> None:
                                  description="Rank the functions, methods and classes that "
                                              "match a natural-language query.")
     search.add_argument("query", nargs="?", metavar="QUERY", help="what you are looking for")
-    search.add_argument("--repo", metavar="PATH",
-                        help="repository root (default: the current folder's repository)")
+    search.add_argument("--repo", action="append", dest="repos", default=[], metavar="PATH",
+                        help="repository root (default: the current folder's repository); "
+                             "repeat it to search several repositories at once")
+    search.add_argument("--workspace", metavar="FILE",
+                        help="search the repositories a TOML file lists "
+                             "([workspace] repos = [...], paths relative to the file)")
     search.add_argument("-k", type=int, default=10, metavar="N",
                         help="number of results (default: 10)")
     search.add_argument("--language", action="append", dest="languages", default=[],
@@ -220,6 +224,45 @@ def _connect(repo: str | None, args: argparse.Namespace, err: TextIO) -> SearchS
         raise IndexNotFound(f"{exc}{NO_INDEX_HINT}") from exc
 
 
+def _search_repos(args: argparse.Namespace) -> list[str]:
+    """The repositories ``search`` asks: the ``--repo`` options, then a workspace's."""
+    repos = list(args.repos)
+    if args.workspace is not None:
+        from codeseek.multi import workspace_repos
+
+        try:
+            repos += [str(path) for path in workspace_repos(Path(args.workspace))]
+        except ValueError as exc:
+            raise UsageError(str(exc)) from exc
+    if len(repos) > 1 and args.index_dir is not None:
+        raise UsageError("--index-dir names one index; give it with one --repo")
+    return repos
+
+
+def _connect_all(repos: Sequence[str], args: argparse.Namespace, err: TextIO) -> SearchService:
+    """One service over every repository's own (:class:`codeseek.multi.MultiService`);
+    a missing repository or index is a usage error naming it."""
+    from codeseek.errors import IndexNotFound
+    from codeseek.multi import MultiService
+
+    services: list[tuple[str, SearchService]] = []
+    try:
+        for repo in repos:
+            root = Path(repo)
+            if not root.is_dir():
+                raise UsageError(f"{printable(repo)}: no such repository folder")
+            try:
+                services.append((str(root.resolve()), _connect(repo, args, err)))
+            except IndexNotFound as exc:
+                raise UsageError(f"{printable(repo)}: no index here; run codeseek index "
+                                 f"{printable(repo)} first") from exc
+    except BaseException:
+        for _, service in services:
+            service.close()
+        raise
+    return MultiService(services)
+
+
 NO_INDEX_HINT = "; for an index built elsewhere, give --index-dir DIR or set CODESEEK_INDEX_DIR"
 
 
@@ -330,6 +373,10 @@ def format_summary(summary: UpdateSummary) -> str:
 
 
 def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    repos = _search_repos(args)
+    args.repo = repos[0] if repos else None
+    if len(repos) > 1 and (args.neighbours is not None or args.files):
+        raise UsageError("--neighbours and --files work in one repository; give one --repo")
     if args.neighbours is not None:
         return _search_neighbours(args, out, err)
     if args.batch is None and args.query is None:
@@ -343,7 +390,7 @@ def cmd_search(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     lines = _read_batch(args.batch) if args.batch is not None else [_query_text(args.query)]
     filters = _search_filters(args)
     queries = [Query(text=line, k=args.k, filters=filters) for line in lines if line]
-    service = _connect(args.repo, args, err)
+    service = _connect(args.repo, args, err) if len(repos) < 2 else _connect_all(repos, args, err)
     try:
         results: Iterable[list[SearchHit]] = service.search_many(queries) if queries else []
         if args.batch is not None:
@@ -507,12 +554,17 @@ def _print_hits(hits: Sequence[SearchHit], out: TextIO) -> None:
     for hit in hits:  # repository text is escaped: shown, never obeyed by the terminal
         print(f"{hit.rank:>2}. {printable(hit.qualname)}  "
               f"[{printable(hit.kind)}, {printable(hit.language)}]  "
-              f"{printable(hit.path)}:{hit.start_line}", file=out)
+              f"{_shown_path(hit)}:{hit.start_line}", file=out)
         if hit.doc_summary:
             print(f"    {_clip(printable(hit.doc_summary), columns - 4)}", file=out)
         for number, line in shown_code_lines(hit):
             print(f"    {number:>5} | {_clip(printable_block(line), columns - 12)}", file=out)
         print(file=out)
+
+
+def _shown_path(hit: SearchHit) -> str:
+    """The hit's path; under its repository's root when several are searched."""
+    return printable(hit.path if hit.repo is None else str(Path(hit.repo) / hit.path))
 
 
 CODE_LINES = 3

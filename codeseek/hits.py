@@ -28,6 +28,8 @@ class SearchHit:
         confidence: how sure the hit is, in [0, 1]: where its cosine falls among the
             best cosines off-topic questions get on this index (see
             :mod:`codeseek.confidence`); None for neighbours answers.
+        repo: the repository root the hit comes from, set only when several
+            repositories are searched at once (:mod:`codeseek.multi`); None otherwise.
     """
 
     query: str
@@ -46,6 +48,7 @@ class SearchHit:
     snippet: str
     unit_id: int
     confidence: float | None = None
+    repo: str | None = None
 
     def to_json(self) -> dict[str, object]:
         """The JSON Lines record of this hit (a path that is not UTF-8: see
@@ -58,4 +61,5 @@ class SearchHit:
             "qualname": self.qualname, "signature": self.signature,
             "doc_summary": self.doc_summary, "snippet": self.snippet,
             "confidence": None if self.confidence is None else round(self.confidence, 6),
+            **({} if self.repo is None else {"repo": self.repo}),
         }

@@ -1,0 +1,204 @@
+"""Search across several repositories (codeseek/multi.py, ``search --repo A --repo B``)."""
+
+from __future__ import annotations
+
+import json
+import shutil
+import sysconfig
+from pathlib import Path
+
+import pytest
+from test_cli import run_cli
+
+from codeseek import FakeEmbedder, open_index
+from codeseek.hits import SearchHit
+from codeseek.multi import MERGE_KINDS, MultiService, merge, standardised
+from codeseek.query import Query
+
+SAMPLE_REPO = Path(__file__).resolve().parent.parent / "sample_repo"
+
+
+def _split_sample(tmp_path: Path) -> tuple[Path, Path]:
+    """sample_repo's Python files in one repository, every other file in another."""
+    first, second = tmp_path / "first", tmp_path / "second"
+    for source in sorted(p for p in SAMPLE_REPO.rglob("*") if p.is_file()):
+        relative = source.relative_to(SAMPLE_REPO)
+        target = (first if relative.parts[0] == "python" else second) / relative
+        target.parent.mkdir(parents=True, exist_ok=True)
+        shutil.copyfile(source, target)
+    for repo in (first, second):
+        code, _, err = run_cli("index", str(repo), "--backend", "fake", "-q")
+        assert code == 0, err
+    return first, second
+
+
+def test_two_repositories_give_hits_from_both_with_their_repo(tmp_path: Path) -> None:
+    first, second = _split_sample(tmp_path)
+    code, out, err = run_cli("search", "fare for a ride", "--repo", str(first), "--repo",
+                             str(second), "--backend", "fake", "--json", "-k", "20")
+    assert code == 0, err
+    records = [json.loads(line) for line in out.splitlines()]
+    assert [r["rank"] for r in records] == list(range(1, 21))
+    assert {r["repo"] for r in records} == {str(first.resolve()), str(second.resolve())}
+    for record in records:  # each hit's file is in the repository it names
+        assert (Path(record["repo"]) / record["path"]).is_file()
+        assert record["path"].startswith("python/") == (record["repo"] == str(first.resolve()))
+    scores = [r["score"] for r in records]
+    assert scores == sorted(scores, reverse=True)
+    # plain output names each hit under its repository's root
+    code, plain, _ = run_cli("search", "fare for a ride", "--repo", str(first), "--repo",
+                             str(second), "--backend", "fake", "-k", "20")
+    assert code == 0
+    assert str(first.resolve() / "python") in plain and str(second.resolve()) in plain
+
+
+def test_one_repository_keeps_its_records_without_repo(tmp_path: Path) -> None:
+    first, _ = _split_sample(tmp_path)
+    code, out, _ = run_cli("search", "fare", "--repo", str(first), "--backend", "fake",
+                           "--json", "-k", "3")
+    assert code == 0
+    assert all("repo" not in json.loads(line) for line in out.splitlines())
+
+
+def test_batch_over_several_repositories_matches_one_by_one(tmp_path: Path) -> None:
+    first, second = _split_sample(tmp_path)
+    queries = ["fare for a ride", "", "retry an upload with backoff"]
+    batch = tmp_path / "queries.txt"
+    batch.write_text("\n".join(queries) + "\n", encoding="utf-8")
+    repos = ["--repo", str(first), "--repo", str(second), "--backend", "fake", "-k", "5"]
+    code, out, err = run_cli("search", "--batch", str(batch), *repos)
+    assert code == 0, err
+    lines = out.splitlines()
+    assert json.loads(lines[5]) == {"query": "", "rank": None, "hits": 0}
+    for query, chunk in ((queries[0], lines[:5]), (queries[2], lines[6:])):
+        _, single, _ = run_cli("search", query, *repos, "--json")
+        assert chunk == single.splitlines()
+
+
+def test_workspace_file_lists_repositories_relative_to_it(tmp_path: Path) -> None:
+    first, second = _split_sample(tmp_path)
+    folder = tmp_path / "ws"
+    folder.mkdir()
+    workspace = folder / "team.toml"
+    workspace.write_text('[workspace]\nrepos = ["../first", "../second"]\n', encoding="utf-8")
+    code, out, err = run_cli("search", "fare for a ride", "--workspace", str(workspace),
+                             "--backend", "fake", "--json", "-k", "20")
+    assert code == 0, err
+    _, direct, _ = run_cli("search", "fare for a ride", "--repo", str(first), "--repo",
+                           str(second), "--backend", "fake", "--json", "-k", "20")
+    assert out == direct
+
+
+@pytest.mark.parametrize(("text", "problem"), [
+    (None, "no such workspace file"),
+    ("[workspace\nrepos = 1", "not valid TOML"),
+    ('[workspace]\nrepos = "first"\n', "wants [workspace] repos"),
+    ("[other]\n", "wants [workspace] repos"),
+])
+def test_bad_workspace_file_is_a_one_line_usage_error(tmp_path: Path, text: str | None,
+                                                      problem: str) -> None:
+    workspace = tmp_path / "team.toml"
+    if text is not None:
+        workspace.write_text(text, encoding="utf-8")
+    code, _, err = run_cli("search", "fare", "--workspace", str(workspace), "--backend", "fake")
+    assert code == 2
+    assert problem in err and str(workspace) in err and len(err.strip().splitlines()) == 1
+
+
+def test_missing_repository_or_index_is_a_one_line_usage_error(tmp_path: Path) -> None:
+    first, _ = _split_sample(tmp_path)
+    bare = tmp_path / "bare"
+    bare.mkdir()
+    for other, problem in ((tmp_path / "gone", "no such repository folder"),
+                           (bare, "no index here")):
+        code, _, err = run_cli("search", "fare", "--repo", str(first), "--repo", str(other),
+                               "--backend", "fake")
+        assert code == 2
+        assert problem in err and str(other) in err and len(err.strip().splitlines()) == 1
+    code, _, err = run_cli("search", "--neighbours", "python/kestrune/config.py:1", "--repo",
+                           str(first), "--repo", str(first), "--backend", "fake")
+    assert code == 2 and "one --repo" in err
+
+
+def _hit(score: float, name: str, similarity: float | None = 0.5) -> SearchHit:
+    return SearchHit(query="q", rank=1, score=score, similarity=similarity, path=f"{name}.py",
+                     start_line=1, end_line=2, language="python", kind="function", name=name,
+                     qualname=name, signature="", doc_summary="", snippet="", unit_id=1)
+
+
+def test_merge_orders_by_served_or_restandardised_scores() -> None:
+    low = [_hit(s, f"low{i}") for i, s in enumerate([3.0, 2.0, 1.0])]
+    high = [_hit(s, f"high{i}") for i, s in enumerate([30.0, 20.0, 10.0])]
+    served = merge([("a", low), ("b", high)], 4)
+    assert [h.name for h in served] == ["high0", "high1", "high2", "low0"]
+    assert [h.score for h in served] == [30.0, 20.0, 10.0, 3.0]
+    # the second index's scores are ten times the first's; standardised, its best is
+    # no better than the first's best, so the first (given first) wins the tie
+    merged = merge([("a", low), ("b", high)], 4, "restandardised")
+    assert [h.name for h in merged] == ["low0", "high0", "low1", "high1"]
+    assert [h.repo for h in merged] == ["a", "b", "a", "b"]
+    assert [h.rank for h in merged] == [1, 2, 3, 4]
+    # reference: the population z-score by hand, (3 - 2) / sqrt(2/3)
+    assert standardised(low)[0] == pytest.approx(1 / (2 / 3) ** 0.5)
+    assert standardised([_hit(1.0, "x")]) == [0.0]
+
+
+def _top(hits: list[SearchHit]) -> set[str]:
+    return {f"{h.path}:{h.qualname}:{h.start_line}" for h in hits}
+
+
+# Real open-source code: these packages of the Python standard library installed on this
+# machine (sysconfig's "stdlib" path), split into two halves by alternate file.
+STDLIB_PACKAGES = ("json", "email", "logging", "http", "urllib", "xml/dom")
+FAKE_FLOOR = 0.65
+STDLIB_QUERIES = [
+    "parse a JSON document from a string", "encode an object as JSON text",
+    "decode a quoted printable header", "format a log record with a timestamp",
+    "rotate log files when they grow too large", "send an HTTP request and read the response",
+    "parse cookies from a header", "split a URL into its parts", "quote special characters "
+    "in a URL", "build a multipart email message", "parse an email address list",
+    "handler that writes log records to a stream", "read the status line of a server reply",
+    "create a DOM element with attributes", "serialize a DOM tree to XML text",
+    "guess the character set of a message", "follow a redirect", "basic authentication "
+    "with a password", "escape HTML characters", "find a logger by its dotted name",
+]
+
+
+def test_merged_halves_agree_with_one_index_of_the_whole(tmp_path: Path) -> None:
+    """The merged top-10 of two halves of a tree against the top-10 of one index of it."""
+    stdlib = Path(sysconfig.get_paths()["stdlib"])
+    whole, halves = tmp_path / "whole", [tmp_path / "half0", tmp_path / "half1"]
+    files = sorted(p for package in STDLIB_PACKAGES for p in (stdlib / package).rglob("*.py")
+                   if "test" not in p.parts)
+    assert len(files) > 40
+    for number, source in enumerate(files):
+        relative = source.relative_to(stdlib)
+        for target in (whole / relative, halves[number % 2] / relative):
+            target.parent.mkdir(parents=True, exist_ok=True)
+            shutil.copyfile(source, target)
+    indexes = [open_index(root, create=True, embedder=FakeEmbedder())
+               for root in (whole, *halves)]
+    try:
+        for index in indexes:
+            index.update()
+        multi = MultiService([(str(root), index) for root, index in zip(halves, indexes[1:],
+                                                                          strict=True)])
+        queries = [Query(text=text, k=10) for text in STDLIB_QUERIES]
+        single = list(indexes[0].search_many(queries))
+        means = {}
+        for kind in MERGE_KINDS:
+            multi.kind = kind
+            merged = list(multi.search_many(queries))
+            overlaps = [len(_top(m) & _top(s)) / 10 for m, s in zip(merged, single, strict=True)]
+            means[kind] = sum(overlaps) / len(overlaps)
+    finally:
+        for index in indexes:
+            index.close()
+    print(f"mean top-10 overlap {means}")
+    # measured with the fake embedder (hashed words, no model): served 0.75,
+    # restandardised 0.73; with the packaged model (scripts/bench_multi.py): served 0.66,
+    # restandardised 0.65-0.67. The issue's 0.9 target is NOT met by either: a unit's
+    # fused score depends on the other units of its index, so halves rank differently
+    # from the whole. FAKE_FLOOR is a regression floor, not that target.
+    assert means["served"] >= FAKE_FLOOR
+    assert means["restandardised"] >= FAKE_FLOOR
