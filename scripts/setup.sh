@@ -38,8 +38,9 @@ fi
 echo "setup: installing codeseek and its dependencies into .venv (a few minutes the first time)" >&2
 .venv/bin/python -m pip install --quiet --upgrade pip
 # constraints.txt pins torch to the CPU build; see the comment there.
-# the extras the tests need: dev tools, and mcp for `codeseek mcp` (tests/test_mcp.py)
-EXTRAS="dev,mcp"
+# the extras the tests need: dev tools, mcp for `codeseek mcp` (tests/test_mcp.py),
+# ray for `codeseek index --ray` (tests/test_ray.py) and static for the distilled tier
+EXTRAS="dev,mcp,ray,static"
 .venv/bin/python -m pip install --quiet -c constraints.txt -e ".[$EXTRAS]"
 rm -f .venv/.codeseek-setup-*
 touch "$stamp"
