@@ -244,8 +244,9 @@ class Index:
             if built_with != embedder.model_id and tier_of(built_with) != self.tier:
                 raise ModelMismatch(
                     f"the index holds vectors of the {tier_of(built_with)} tier, not the "
-                    f"{self.tier} tier; run `codeseek index --tier {self.tier}` to re-embed "
-                    "it, or search without --tier")
+                    f"{self.tier} tier asked for (--tier, CODESEEK_TIER or codeseek.toml "
+                    f"`tier`); run `codeseek index --tier {self.tier}` to re-embed it, or "
+                    f"ask for the {tier_of(built_with)} tier")
             if built_with != embedder.model_id:
                 raise ModelMismatch(
                     f"the index was built with model {built_with}, not {embedder.model_id}; "

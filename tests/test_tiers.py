@@ -235,6 +235,29 @@ def test_an_index_keeps_its_tier_and_refuses_another(sample_copy: Path) -> None:
         assert {hit.tier for hit in index.search("refund a rider")} == {"int8"}
 
 
+def test_the_ui_embeds_queries_with_the_index_own_tier(sample_copy: Path) -> None:
+    from codeseek.tui.backend import LocalIndexer
+
+    with open_index(sample_copy, create=True, backend="fake", tier="int8") as index:
+        index.update()
+    builder = LocalIndexer(sample_copy, backend="fake")  # no tier named anywhere
+    with builder.open_searcher() as searcher:
+        assert {hit.tier for hit in searcher.search("refund a rider")} == {"int8"}
+    assert builder.embedder.model_id.endswith("+int8")
+
+
+def test_a_tier_from_the_environment_is_named_in_the_mismatch(
+        sample_copy: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    with open_index(sample_copy, create=True, backend="fake") as index:
+        index.update()
+    monkeypatch.setenv("CODESEEK_TIER", "static")
+    with open_index(sample_copy, backend="fake") as index, pytest.raises(
+            ModelMismatch, match=r"full tier, not the static tier asked for \(--tier, "
+                                 r"CODESEEK_TIER or codeseek.toml `tier`\).*ask for the "
+                                 r"full tier$"):
+        index.search("refund a rider")
+
+
 def test_tier_is_a_new_json_field_and_changes_no_other(sample_copy: Path) -> None:
     from dataclasses import replace
 
