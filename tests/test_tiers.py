@@ -128,13 +128,18 @@ def test_int8_quantises_matmul_weights_per_channel_and_keeps_the_table(tmp_path:
     np.testing.assert_allclose(np.linalg.norm(vectors, axis=1), 1.0, rtol=1e-5)
 
 
-def test_int8_graph_is_made_once_and_atomically(tmp_path: Path) -> None:
+def test_int8_graph_is_made_once_and_atomically(tmp_path: Path,
+                                                capsys: pytest.CaptureFixture[str]) -> None:
+    from codeseek.tiers import INT8_NOTICE
+
     tiny_transformer(tmp_path / "model", tmp_path / "cache")
     Int8Embedder(tmp_path / "model", "tiny", tmp_path / "cache")
+    assert capsys.readouterr().err == INT8_NOTICE + "\n"  # one line, the first time
     graph = int8_path(tmp_path / "cache", "tiny")
     made = graph.stat().st_mtime_ns
     again = Int8Embedder(tmp_path / "model", "tiny", tmp_path / "cache")
     assert graph.stat().st_mtime_ns == made  # cached, not quantised again
+    assert capsys.readouterr().err == ""  # and nothing said
     assert again.encode(["dock"]).shape == (1, HIDDEN)
     assert sorted(p.name for p in graph.parent.iterdir()) == ["model.int8.onnx", "model.onnx"]
 
@@ -160,7 +165,8 @@ def _tiny_static(folder: Path, cache_dir: Path) -> np.ndarray:
     return rows
 
 
-def test_static_tier_averages_token_rows(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_static_tier_averages_token_rows(tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+                                        capsys: pytest.CaptureFixture[str]) -> None:
     pytest.importorskip("model2vec")
     import codeseek.tiers as tiers
 
@@ -171,6 +177,7 @@ def test_static_tier_averages_token_rows(tmp_path: Path, monkeypatch: pytest.Mon
 
     monkeypatch.setattr(tiers, "distil_static", no_distilling)
     embedder = StaticEmbedder(tmp_path / "model", "tiny", tmp_path / "cache")
+    assert capsys.readouterr().err == ""  # cached: no notice
     assert embedder.model_id.endswith("+static256") and embedder.dim == 16
     texts = [*TEXTS, "fare unheard"]
     vectors = embedder.encode(texts)
@@ -182,8 +189,9 @@ def test_static_tier_averages_token_rows(tmp_path: Path, monkeypatch: pytest.Mon
     assert embedder.encode([]).shape == (0, 16)
 
 
-def test_a_failed_distillation_leaves_nothing_behind(tmp_path: Path,
-                                                    monkeypatch: pytest.MonkeyPatch) -> None:
+def test_a_failed_distillation_leaves_nothing_behind(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch,
+        capsys: pytest.CaptureFixture[str]) -> None:
     import types
 
     class HalfSaved:
@@ -200,6 +208,9 @@ def test_a_failed_distillation_leaves_nothing_behind(tmp_path: Path,
     (tmp_path / "model" / "config.json").write_text("{}", encoding="utf-8")
     with pytest.raises(ModelUnavailable, match="disk full"):
         StaticEmbedder(tmp_path / "model", "tiny", tmp_path / "cache")
+    from codeseek.tiers import STATIC_NOTICE
+
+    assert capsys.readouterr().err == STATIC_NOTICE + "\n"  # said before the long step
     assert list((tmp_path / "cache" / "static").iterdir()) == []
 
 
@@ -292,6 +303,8 @@ def test_cli_tier_option(sample_copy: Path, capsys: pytest.CaptureFixture[str]) 
                                                    "int8 tier, not the static tier")
     code, out, _ = run_cli("status", str(sample_copy))
     assert code == 0 and "\ntier         int8\n" in out
+    code, out, _ = run_cli("status", str(sample_copy), "--json")
+    assert code == 0 and json.loads(out)["tier"] == "int8"
     with pytest.raises(SystemExit) as stop:  # argparse's own usage error
         main(["index", str(sample_copy), "--tier", "fp16"])
     assert stop.value.code == 2
