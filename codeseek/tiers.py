@@ -272,8 +272,3 @@ def load_tier_embedder(settings: Settings, tier: str | None = None) -> Embedder:
         _check_cache_folder(static_dir(settings.cache_dir, fingerprint).parent,
                             settings.cache_dir)
     return StaticEmbedder(folder, fingerprint, settings.cache_dir)
-
-
-def embedder_tier(embedder: Embedder) -> str:
-    """The tier an embedder's vectors belong to."""
-    return getattr(embedder, "tier", None) or tier_of(embedder.model_id) or "full"
