@@ -26,7 +26,7 @@ from codeseek.adapter import (
     save_adapter,
 )
 from codeseek.config import Settings, load_settings
-from codeseek.embed import Embedder, load_embedder
+from codeseek.embed import Embedder
 from codeseek.errors import (
     IndexBuilding,
     IndexCorrupt,
@@ -52,6 +52,7 @@ from codeseek.scan import ScanResult, SourceFile
 from codeseek.search import DEFAULT_FUSION, Fusion, Searcher, SearchHit, neighbour_units
 from codeseek.service import IndexStatus, repository_mismatch
 from codeseek.store import DB_NAME, Store, unlink_all
+from codeseek.tiers import DEFAULT_TIER, load_tier_embedder, tier_of
 from codeseek.vectors import HNSW_NAME, VectorIndex
 
 if TYPE_CHECKING:
@@ -88,10 +89,19 @@ class Index:
 
     @property
     def embedder(self) -> Embedder:
-        """The embedding model, loaded on first use."""
+        """The embedding model of :attr:`tier`, loaded on first use."""
         if self._embedder is None:
-            self._embedder = load_embedder(self.settings)
+            self._embedder = load_tier_embedder(self.settings, self.tier)
         return self._embedder
+
+    @property
+    def tier(self) -> str:
+        """The embedding tier this index embeds with: the one the settings name, else
+        the one its vectors were made with, else DEFAULT_TIER (a new index)."""
+        if self._embedder is not None:
+            return tier_of(self._embedder.model_id) or DEFAULT_TIER
+        return (self.settings.tier or tier_of(self.store.manifest().get("model_id"))
+                or DEFAULT_TIER)
 
     # -- writing ---------------------------------------------------------------------
 
@@ -231,6 +241,12 @@ class Index:
                     "build it with `codeseek index`"
                 )
             embedder = self.embedder
+            if built_with != embedder.model_id and tier_of(built_with) != self.tier:
+                raise ModelMismatch(
+                    f"the index holds vectors of the {tier_of(built_with)} tier, not the "
+                    f"{self.tier} tier asked for (--tier, CODESEEK_TIER or codeseek.toml "
+                    f"`tier`); run `codeseek index --tier {self.tier}` to re-embed it, or "
+                    f"ask for the {tier_of(built_with)} tier")
             if built_with != embedder.model_id:
                 raise ModelMismatch(
                     f"the index was built with model {built_with}, not {embedder.model_id}; "
@@ -468,6 +484,7 @@ class Index:
             files_with_syntax_errors=counts["files_with_syntax_errors"],
             model_id=manifest.get("model_id"),
             dim=int(manifest["dim"]) if "dim" in manifest else None,
+            tier=tier_of(manifest.get("model_id")),
             generation=generation,
             vectors_in_sync=manifest.get("hnsw_generation") == str(generation)
             and seal.verifies(seal.key(self.settings.cache_dir, create=False), hnsw,
@@ -518,6 +535,7 @@ def open_index(
     create: bool = False,
     embedder: Embedder | None = None,
     settings: Settings | None = None,
+    tier: str | None = None,
 ) -> Index:
     """Open the index of ``repo`` (with ``create``, make it if missing).
 
@@ -527,7 +545,8 @@ def open_index(
         root = Path(repo).expanduser()
         if not root.is_dir():
             raise RepositoryNotFound(f"{root}: no such folder")
-        settings = load_settings(root, index_dir=index_dir, model=model, backend=backend)
+        settings = load_settings(root, index_dir=index_dir, model=model, backend=backend,
+                                 tier=tier)
     store = Store.open(settings.index_dir, create=create, repo=settings.repo)
     try:
         check_repository(settings, store)

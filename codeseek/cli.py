@@ -22,6 +22,7 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from codeseek import __version__
 from codeseek.confidence import weak_note
+from codeseek.config import DEFAULT_TIER, TIERS
 from codeseek.display import json_path, printable, printable_block
 from codeseek.errors import (
     CodeseekError,
@@ -55,9 +56,17 @@ examples:
   codeseek outline src/billing.py     list the units codeseek extracts from a file"""
 
 
-def _common_index_options(parser: argparse.ArgumentParser, *, model: bool = True) -> None:
+def _common_index_options(parser: argparse.ArgumentParser, *, model: bool = True,
+                          tier: bool = False) -> None:
     parser.add_argument("--index-dir", metavar="DIR",
                         help="index folder (default: <repo>/.codeseek)")
+    if tier:
+        parser.add_argument("--tier", choices=TIERS,
+                            help="embedding tier: full (the model as it is), int8 (its "
+                                 "weights quantised) or static (distilled); default: the "
+                                 f"index's own, {DEFAULT_TIER} for a new index")
+    else:
+        parser.set_defaults(tier=None)
     if model:
         parser.add_argument("--model", metavar="PATH",
                             help="local sentence-transformers model folder "
@@ -89,7 +98,7 @@ def _index_parser(commands: Any) -> None:
                                             "new code is embedded.")
     index.add_argument("path", nargs="?", default=".", metavar="PATH",
                        help="repository root (default: the current folder)")
-    _common_index_options(index)
+    _common_index_options(index, tier=True)
     index.add_argument("--rebuild", action="store_true",
                        help="discard the existing index and build it from scratch")
     index.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
@@ -131,7 +140,7 @@ def _search_parser(commands: Any) -> None:
                         help="instead of a query: the units whose meaning is nearest this "
                              "one, named PATH:QUALNAME or PATH:LINE (the innermost unit "
                              "holding that line)")
-    _common_index_options(search)
+    _common_index_options(search, tier=True)
 
 
 def _status_parser(commands: Any) -> None:
@@ -156,7 +165,7 @@ def _watch_parser(commands: Any) -> None:
                                             "socket in the index folder. Stop with Ctrl-C.")
     watch.add_argument("path", nargs="?", default=".", metavar="PATH",
                        help="repository root (default: the current folder)")
-    _common_index_options(watch)
+    _common_index_options(watch, tier=True)
     watch.add_argument("--poll", action="store_true",
                        help="watch by polling instead of inotify (network file systems)")
 
@@ -204,7 +213,7 @@ def _open(repo: str | None, args: argparse.Namespace, *, create: bool) -> Index:
 
     try:
         index = open_index(_root(repo), index_dir=args.index_dir, model=args.model,
-                           backend=args.backend, create=create)
+                           backend=args.backend, create=create, tier=args.tier)
     except IndexNotFound as exc:
         raise IndexNotFound(f"{exc}{NO_INDEX_HINT}") from exc
     return index  # open_index checked that the index is this repository's
@@ -219,6 +228,7 @@ def _connect(repo: str | None, args: argparse.Namespace, err: TextIO) -> SearchS
     try:
         return connect(_root(repo), index_dir=args.index_dir, model=args.model,
                        backend=args.backend,  # open_index checks the index's repository
+                       tier=args.tier,
                        notice=lambda message: print(message, file=err))
     except IndexNotFound as exc:
         raise IndexNotFound(f"{exc}{NO_INDEX_HINT}") from exc
@@ -236,6 +246,8 @@ def _search_repos(args: argparse.Namespace) -> list[str]:
             raise UsageError(str(exc)) from exc
     if len(repos) > 1 and args.index_dir is not None:
         raise UsageError("--index-dir names one index; give it with one --repo")
+    if len(repos) > 1 and args.tier is not None:
+        raise UsageError("--tier names one index's tier; give it with one --repo")
     return repos
 
 
@@ -657,6 +669,8 @@ def format_status(status: IndexStatus, daemon: dict[str, Any] | None) -> str:
         f"model        {printable(status.model_id or 'none yet')} ({status.dim or '-'} dimensions)",
         f"contents     {status.files} files, {status.units} units",
     ]
+    if status.tier is not None:  # the vectors' embedding tier (codeseek/tiers.py)
+        lines.insert(3, f"tier         {status.tier}")
     lines += [f"             {count:>6} {printable(language)}"
               for language, count in sorted(status.languages.items())]
     lines.append(f"updated      {updated} (generation {status.generation}; vector index "
@@ -794,7 +808,7 @@ def _eval_parser(commands: Any) -> None:
     evaluate.add_argument("--json", action="store_true", help="one JSON document")
     evaluate.add_argument("--html", metavar="FILE",
                           help="also write a small self-contained HTML report to FILE")
-    _common_index_options(evaluate)
+    _common_index_options(evaluate, tier=True)
 
 
 def _tune_parser(commands: Any) -> None:
@@ -810,7 +824,7 @@ def _tune_parser(commands: Any) -> None:
     tune.add_argument("--remove", action="store_true",
                       help="delete the adapter; search goes back to the plain model")
     tune.add_argument("--json", action="store_true", help="one JSON document")
-    _common_index_options(tune)
+    _common_index_options(tune, tier=True)
 
 
 def _repo_arguments(parser: argparse.ArgumentParser) -> None:

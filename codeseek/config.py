@@ -23,6 +23,10 @@ INDEX_DIR_NAME = ".codeseek"
 CONFIG_FILE_NAME = "codeseek.toml"
 DEFAULT_BACKEND = "onnx"
 BACKENDS = ("onnx", "torch", "fake")
+# embedding tiers (codeseek/tiers.py); a new index takes DEFAULT_TIER, an existing one
+# keeps the tier it was built with unless one is named
+TIERS = ("full", "int8", "static")
+DEFAULT_TIER = "full"
 DEFAULT_MAX_FILE_BYTES = 1024 * 1024
 DEFAULT_BATCH_SIZE = 32
 DEFAULT_TOP_K = 10
@@ -34,6 +38,7 @@ ENV_VARS: dict[str, str] = {
     "CODESEEK_INDEX_DIR": "folder of the index (default: <repo>/.codeseek)",
     "CODESEEK_MODEL": "path of a local sentence-transformers model folder",
     "CODESEEK_BACKEND": "embedding backend: onnx (default), torch or fake",
+    "CODESEEK_TIER": "embedding tier of a new index: full (default), int8 or static",
     "CODESEEK_CACHE_DIR": "where the exported ONNX model is cached "
     "(default: $XDG_CACHE_HOME/codeseek or ~/.cache/codeseek)",
     "CODESEEK_MAX_FILE_BYTES": "files larger than this are skipped (default 1048576)",
@@ -54,6 +59,8 @@ class Settings:
         include_vendored: index ``vendor/`` and similar dependency folders too.
         batch_size: texts per embedding batch.
         cache_dir: where derived model files (the ONNX export) are cached.
+        tier: the embedding tier asked for (``full``, ``int8`` or ``static``), or None:
+            an existing index's own tier, DEFAULT_TIER for a new one.
     """
 
     repo: Path
@@ -65,6 +72,7 @@ class Settings:
     include_vendored: bool = False
     batch_size: int = DEFAULT_BATCH_SIZE
     cache_dir: Path = field(default_factory=lambda: default_cache_dir(os.environ))
+    tier: str | None = None
 
     def with_changes(self, **changes: Any) -> Settings:
         """A copy with some fields replaced."""
@@ -86,6 +94,7 @@ def load_settings(
     model: str | os.PathLike[str] | None = None,
     backend: str | None = None,
     env: Mapping[str, str] | None = None,
+    tier: str | None = None,
 ) -> Settings:
     """Build the settings for ``repo`` from arguments, environment and codeseek.toml."""
     env = os.environ if env is None else env
@@ -134,6 +143,11 @@ def load_settings(
         raise ConfigError(
             f"unknown embedding backend {chosen_backend!r}; choose one of: {', '.join(BACKENDS)}"
         )
+    chosen_tier = pick(tier, "CODESEEK_TIER", "tier")
+    if chosen_tier is not None and chosen_tier not in TIERS:
+        name = "--tier" if tier is not None else where("CODESEEK_TIER", "tier")
+        raise ConfigError(f"{name}: unknown tier {chosen_tier!r}; choose one of: "
+                          f"{', '.join(TIERS)}")
     max_bytes = pick(None, "CODESEEK_MAX_FILE_BYTES", "max_file_bytes")
     exclude = file_values.get("exclude", [])
     if not isinstance(exclude, list) or not all(isinstance(p, str) for p in exclude):
@@ -153,6 +167,7 @@ def load_settings(
             DEFAULT_BATCH_SIZE
         ),
         cache_dir=default_cache_dir(env),
+        tier=chosen_tier,
     )
 
 

@@ -309,13 +309,16 @@ class OnnxEmbedder:
     """The default backend: the exported graph on onnxruntime, no torch at query time."""
 
     def __init__(self, folder: Path, fingerprint: str, cache_dir: Path,
-                 batch_size: int = 32) -> None:
+                 batch_size: int = 32, *, graph: Path | None = None) -> None:
         self.config = ModelConfig(folder)
         self.dim = self.config.dim
         self.model_id = f"{_model_name(folder)}@{fingerprint}"
         self.batch_size = batch_size
-        graph = onnx_path(cache_dir, fingerprint)
-        if not graph.exists():
+        # another graph of the same model (codeseek.tiers: the int8 one) is the caller's
+        # to make; the exported one is made here on first need
+        exported = graph is None
+        graph = graph or onnx_path(cache_dir, fingerprint)
+        if exported and not graph.exists():
             # the one slow first step: say what it is (stderr, so JSON output stays clean)
             print(EXPORT_NOTICE, file=sys.stderr, flush=True)
             export_onnx(folder, graph)

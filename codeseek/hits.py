@@ -30,6 +30,8 @@ class SearchHit:
             :mod:`codeseek.confidence`); None for neighbours answers.
         repo: the repository root the hit comes from, set only when several
             repositories are searched at once (:mod:`codeseek.multi`); None otherwise.
+        tier: the embedding tier whose vectors scored the hit's dense side
+            (``full``, ``int8`` or ``static``: :mod:`codeseek.tiers`); None when unknown.
     """
 
     query: str
@@ -49,6 +51,7 @@ class SearchHit:
     unit_id: int
     confidence: float | None = None
     repo: str | None = None
+    tier: str | None = None
 
     def to_json(self) -> dict[str, object]:
         """The JSON Lines record of this hit (a path that is not UTF-8: see
@@ -62,4 +65,5 @@ class SearchHit:
             "doc_summary": self.doc_summary, "snippet": self.snippet,
             "confidence": None if self.confidence is None else round(self.confidence, 6),
             **({} if self.repo is None else {"repo": self.repo}),
+            **({} if self.tier is None else {"tier": self.tier}),
         }

@@ -33,6 +33,7 @@ from codeseek.hits import SearchHit
 from codeseek.locks import ReadWriteLock
 from codeseek.query import Filters
 from codeseek.store import Store, StoredUnit
+from codeseek.tiers import tier_of
 from codeseek.units import CodeUnit, split_identifier
 from codeseek.vectors import VectorIndex, exact_search
 
@@ -196,6 +197,7 @@ class Searcher:
         self.lock = lock or ReadWriteLock()
         self.adapter = adapter
         self.fusion = fusion or DEFAULT_FUSION
+        self.tier = tier_of(model_id)  # every stored vector searched is of this tier
         self._baseline: tuple[object, Baseline] | None = None
 
     def baseline(self) -> Baseline:
@@ -282,7 +284,8 @@ class Searcher:
             if stored is None:
                 continue
             hit = _hit(query, len(hits) + 1, score, similarity.get(unit_id), stored)
-            hits.append(replace(hit, confidence=baseline.confidence(cosines.get(unit_id))))
+            hits.append(replace(hit, confidence=baseline.confidence(cosines.get(unit_id)),
+                                tier=self.tier))
         return hits
 
     def _cosines(self, vector: np.ndarray, ids: list[int],
@@ -332,5 +335,6 @@ def neighbour_units(searcher: Searcher, unit_id: int, k: int,
         hits: list[SearchHit] = []
         for other, cosine in ranked:
             if other in units:
-                hits.append(_hit(label, len(hits) + 1, cosine, cosine, units[other]))
+                hits.append(replace(_hit(label, len(hits) + 1, cosine, cosine, units[other]),
+                                    tier=searcher.tier))
         return hits

@@ -9,8 +9,8 @@ client of a running ``codeseek watch``. The command line and the UI call
 
 The rules :func:`connect` applies:
 
-* an explicit ``model`` or ``backend`` is answered in process (the daemon runs
-  its own model);
+* an explicit ``model``, ``backend`` or ``tier`` is answered in process (the
+  daemon runs its own model, of the index's own tier);
 * when no daemon listens on the index's socket (there is none, or a crashed
   daemon left it), the index is searched in process, silently (also when the
   daemon goes away between two calls): :meth:`SearchService.daemon_status`
@@ -60,6 +60,7 @@ class IndexStatus:
     updated_at: float | None
     bytes_on_disk: int
     adapter: dict[str, object] | None = None
+    tier: str | None = None  # the embedding tier of the stored vectors (codeseek/tiers.py)
 
     def to_json(self) -> dict[str, object]:
         """A JSON-ready dict."""
@@ -99,12 +100,12 @@ def connect(repo: str | os.PathLike[str] = ".", *,
             index_dir: str | os.PathLike[str] | None = None,
             model: str | os.PathLike[str] | None = None, backend: str | None = None,
             embedder: Embedder | None = None, check: Callable[[Index], None] | None = None,
-            notice: Notice | None = None) -> SearchService:
+            notice: Notice | None = None, tier: str | None = None) -> SearchService:
     """The search service of ``repo``'s index: its running daemon, or the index in process.
 
     The index is opened first either way (so a missing or damaged index is the
     same error), and ``check`` runs on it. ``embedder`` is the in-process model
-    (it does not turn the daemon away; ``model`` and ``backend`` do). ``notice``
+    (it does not turn the daemon away; ``model``, ``backend`` and ``tier`` do). ``notice``
     hears why a query the daemon cannot take is answered in process.
     """
     from codeseek.client import DaemonClient, DaemonService
@@ -113,9 +114,10 @@ def connect(repo: str | os.PathLike[str] = ".", *,
         from codeseek.api import open_index
 
         return open_index(repo, index_dir=index_dir, model=model, backend=backend,
-                          embedder=embedder)
+                          embedder=embedder, tier=tier)
 
-    if check is None and model is None and backend is None:
+    own_model = model is None and backend is None and tier is None
+    if check is None and own_model:
         # a running daemon answers without this process loading the index's modules
         from codeseek import safefs
         from codeseek.config import load_settings
@@ -134,7 +136,7 @@ def connect(repo: str | os.PathLike[str] = ".", *,
     try:
         if check is not None:
             check(index)
-        if model is None and backend is None:
+        if own_model:
             client = DaemonClient(index.settings.index_dir)
             if client.present():
                 return DaemonService(client, lambda: index, notice)

@@ -1,6 +1,7 @@
 """Indexing and query benchmark: prints its figures; asserts nothing.
 
 Usage: .venv/bin/python scripts/bench_index.py [PATH] [--torch-sample N] [--queries N]
+       .venv/bin/python scripts/bench_index.py [PATH] --tiers [--tier-units N]
        .venv/bin/python scripts/bench_index.py --corpora [--repeat N]
 
 Without PATH it indexes a copy of this machine's Python standard library
@@ -15,6 +16,15 @@ Without PATH it indexes a copy of this machine's Python standard library
   * warm query latency p50/p95 in one process, with the served candidates per
     side and with half as many (taken in turn on each query);
   * a cold `codeseek search` CLI call (a new process, no daemon).
+
+With --tiers it compares the embedding tiers (codeseek/tiers.py) side by side in one
+run, on a small standard-library copy (the modules the standard-library question set
+answers from, tests/corpora.py stdlib_question_subset; or PATH): for each tier, a fresh
+index of it (units/s), the raw encode of --tier-units unit texts (best of two passes
+taken in turn, full / int8 / static then back), the ratios to the full tier, and how
+close each derived tier's vectors are to the full one's (mean cosine, int8 only: the
+same space; top-10 neighbour overlap among those texts, every tier). Each tier's model
+is made (quantised, distilled) before the clock starts.
 
 With --corpora it prints parse throughput only, per language, on the real
 registry code the language tests use (tests/corpora.py; fetched and cached on
@@ -37,6 +47,8 @@ import time
 from collections.abc import Callable
 from pathlib import Path
 
+import numpy as np
+
 PROJECT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(PROJECT))
 
@@ -48,6 +60,7 @@ from codeseek.embed import load_embedder  # noqa: E402
 from codeseek.languages import LanguageSpec, spec_by_name  # noqa: E402
 from codeseek.parse import _parser, parse_source  # noqa: E402
 from codeseek.scan import SkipFile, read_source, scan_repository  # noqa: E402
+from codeseek.tiers import TIERS  # noqa: E402
 
 SKIP = shutil.ignore_patterns("test", "tests", "idle_test", "site-packages", "__pycache__")
 
@@ -159,6 +172,55 @@ def warm_latency(index: Index, queries: list[str]) -> None:
     print(f"p50 ratio {depths[0]} / {depths[1]} candidates: {ratio:.2f}")
 
 
+def neighbour_overlap(first: np.ndarray, second: np.ndarray, k: int = 10) -> float:
+    """Mean share of each text's k nearest other texts that two embeddings agree on
+    (exact search in numpy: every pair's cosine)."""
+    def nearest(vectors: np.ndarray) -> np.ndarray:
+        cosines = vectors @ vectors.T
+        np.fill_diagonal(cosines, -np.inf)
+        return np.argsort(-cosines, axis=1)[:, :k]
+
+    a, b = nearest(first), nearest(second)
+    return float(np.mean([len(set(x) & set(y)) / k for x, y in zip(a, b, strict=True)]))
+
+
+def compare_tiers(repo: Path, scratch: Path, units: int) -> None:
+    """Every tier on the same repository in one run: index, raw encode, closeness."""
+    indexes: dict[str, Index] = {}
+    pipeline: dict[str, float] = {}
+    for tier in TIERS:
+        index = open_index(repo, index_dir=scratch / f"index-{tier}", create=True, tier=tier)
+        index.embedder.encode(["warm up"])  # made on first need, outside the clock
+        start = time.perf_counter()
+        summary = index.update()
+        seconds = time.perf_counter() - start
+        pipeline[tier] = summary.embedded / seconds
+        indexes[tier] = index
+        print(f"index, {tier:<6}: {summary.files} files, {summary.units} units, "
+              f"{seconds:.1f} s, {pipeline[tier]:.1f} units/s  ({index.embedder.model_id}, "
+              f"{index.embedder.dim} dimensions)")
+    texts = [s.unit.embed_text() for s in indexes["full"].store.iter_units()]
+    texts = texts[:: max(1, len(texts) // units)][:units]
+    best: dict[str, float] = {}
+    vectors: dict[str, np.ndarray] = {}
+    for tier in [*TIERS, *reversed(TIERS)]:  # taken in turn: a busy spell hits both ends
+        start = time.perf_counter()
+        vectors[tier] = indexes[tier].embedder.encode(texts)
+        best[tier] = max(best.get(tier, 0.0), len(texts) / (time.perf_counter() - start))
+    print(f"raw encode of {len(texts)} unit texts, best of 2 passes, same run:")
+    for tier in TIERS:
+        closeness = ""
+        if tier != "full":
+            overlap = neighbour_overlap(vectors["full"], vectors[tier])
+            cosine = (f"mean cosine to full {(vectors['full'] * vectors[tier]).sum(1).mean():.4f}, "
+                      if vectors[tier].shape == vectors["full"].shape else "")
+            closeness = f"; {cosine}top-10 neighbour overlap with full {overlap:.2f}"
+        print(f"  {tier:<6} {best[tier]:8.1f} units/s, {best[tier] / best['full']:5.2f}x full "
+              f"(index pipeline {pipeline[tier] / pipeline['full']:5.2f}x){closeness}")
+    for index in indexes.values():
+        index.close()
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -169,9 +231,25 @@ def main() -> None:
     parser.add_argument("--corpora", action="store_true",
                         help="only parse throughput per language on the real test corpora")
     parser.add_argument("--repeat", type=int, default=5, help="passes for --corpora (best of)")
+    parser.add_argument("--tiers", action="store_true",
+                        help="compare the embedding tiers side by side (default repository: "
+                             "the modules the standard-library questions answer from)")
+    parser.add_argument("--tier-units", type=int, default=2000,
+                        help="unit texts of the raw encode for --tiers (default 2000)")
     args = parser.parse_args()
     if args.corpora:
         corpus_throughput(args.repeat)
+        return
+    if args.tiers:
+        with tempfile.TemporaryDirectory() as scratch:
+            sys.path.insert(0, str(PROJECT / "tests"))
+            from corpora import stdlib_question_subset
+
+            repo = (Path(args.path).resolve() if args.path
+                    else stdlib_question_subset(Path(scratch) / "stdlib-subset"))
+            print(f"command: .venv/bin/python scripts/bench_index.py {' '.join(sys.argv[1:])}")
+            print(f"repository: {repo}")
+            compare_tiers(repo, Path(scratch), args.tier_units)
         return
 
     with tempfile.TemporaryDirectory() as scratch:

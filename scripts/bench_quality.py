@@ -17,11 +17,19 @@ MRR over the corpora; the shipped one stands unless beaten by more than TIE:
 4. the served ranking, every method under every protocol, as ``codeseek eval`` prints it;
 5. the query adapter of ``codeseek tune`` at batch sizes 32, 256 and 2048.
 
+With ``--tiers`` it compares the embedding tiers (codeseek/tiers.py) instead: each
+tier's index of ``sample_repo/`` and of a small standard-library copy (the modules the
+standard-library question set answers from) is checked as ``codeseek eval --questions``
+checks it (every docstring protocol, the name-blind one and the question set), and each
+derived tier's MRR is set against the full tier's on the same queries: the difference
+and its paired bootstrap 95% interval (queries resampled in pairs). A tier is within the
+noise of full on a check when that interval reaches 0 or lies above it.
+
 Prints figures and asserts nothing. Real-model vectors of every text are kept
 in ``--cache`` (default ``/tmp/codeseek-bench-quality``), so a second run
 embeds nothing; the first embeds the standard library about twice (minutes).
 
-Reproduce: ``.venv/bin/python scripts/bench_quality.py``
+Reproduce: ``.venv/bin/python scripts/bench_quality.py`` (``--tiers`` for the tiers)
 """
 
 from __future__ import annotations
@@ -45,8 +53,15 @@ PROJECT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(PROJECT))
 sys.path.insert(0, str(PROJECT / "tests"))
 
-from corpora import CORPORA, CorpusUnavailable, fetch, units_of  # noqa: E402
+from corpora import (  # noqa: E402
+    CORPORA,
+    CorpusUnavailable,
+    fetch,
+    stdlib_question_subset,
+    units_of,
+)
 
+from codeseek import open_index  # noqa: E402
 from codeseek.adapter import QueryAdapter  # noqa: E402
 from codeseek.config import load_settings  # noqa: E402
 from codeseek.embed import Embedder, load_embedder  # noqa: E402
@@ -67,13 +82,16 @@ from codeseek.evaluate import (  # noqa: E402
     encode_cached,
     lexical_signals,
     mean_reciprocal_rank,
+    mrr_difference,
     protocols_for,
     recall_at,
     select_cases,
     served_ranks,
     without_doc,
 )
+from codeseek.evaluate.questions import CUTOFF  # noqa: E402
 from codeseek.search import CANDIDATES, DEFAULT_FUSION, Fusion, lexical_match  # noqa: E402
+from codeseek.tiers import TIERS  # noqa: E402
 from codeseek.tune import TrainSettings, fusion_for, train_adapter, training_data  # noqa: E402
 from codeseek.units import CodeUnit, code_words, lexical_codes, split_identifier  # noqa: E402
 
@@ -527,6 +545,69 @@ def shipped_is(bench: Bench, representation: str) -> bool:
     return bench.texts(representation) == bench.texts(SHIPPED_TEXT)
 
 
+# -- the embedding tiers ----------------------------------------------------------------
+
+QUESTION_FILES = PROJECT / "tests" / "data" / "questions"
+
+
+def tier_checks(report: EvalReport) -> dict[str, tuple[float, np.ndarray]]:
+    """Every check of an eval report: its name -> (figure, per-query ranks)."""
+    checks: dict[str, tuple[float, np.ndarray]] = {}
+    for result in report.results:
+        if result.method in ("dense", "served"):
+            checks[f"docstrings, {result.method}, pool {result.pool}"] = (
+                result.mrr, np.asarray(result.ranks))
+    if report.name_blind is not None:
+        for result in report.name_blind.results:
+            if result.method in ("dense", "served"):
+                checks[f"name-blind docstrings, {result.method}"] = (
+                    result.mrr, np.asarray(result.ranks))
+    if report.questions is not None:
+        ranks = np.asarray(report.questions.ranks)
+        checks[f"questions ({Path(report.questions.source).name}), MRR@10"] = (
+            report.questions.metrics["mrr@10"], np.where(ranks <= CUTOFF, ranks, 0))
+    return checks
+
+
+def section_tiers(corpora: Sequence[tuple[str, Path, Path]], scratch: Path) -> None:
+    """Each tier's index of each corpus, checked as `codeseek eval --questions` checks it;
+    each derived tier set against full on the same queries (paired bootstrap)."""
+    verdicts: dict[str, list[bool]] = {tier: [] for tier in TIERS if tier != "full"}
+    for name, repo, questions in corpora:
+        checks: dict[str, dict[str, tuple[float, np.ndarray]]] = {}
+        seed = 0
+        for tier in TIERS:
+            with open_index(repo, index_dir=scratch / f"{name}-{tier}", create=True,
+                            tier=tier) as index:
+                started = time.perf_counter()
+                index.update()
+                report = index.evaluate(questions=questions)
+                seed = report.split.seed
+                checks[tier] = tier_checks(report)
+                log(f"{name}: {tier} indexed and checked in "
+                    f"{time.perf_counter() - started:.0f} s ({report.model})")
+        print(f"\n=== tiers on {name} ({report.corpus} units; questions {questions.name}): "
+              "MRR, and each tier's difference to full with its paired bootstrap 95% "
+              "interval")
+        print(f"  {'check':<44} {'n':>5} {'full':>7}   "
+              + "   ".join(f"{t:<34}" for t in TIERS if t != "full"))
+        for check, (figure, ranks) in checks["full"].items():
+            cells = []
+            for tier in verdicts:
+                other, other_ranks = checks[tier][check]
+                difference, (low, high) = mrr_difference(other_ranks, ranks, seed)
+                noise = high >= 0.0
+                verdicts[tier].append(noise)
+                cells.append(f"{other:.4f} {difference:+.4f} [{low:+.4f}, {high:+.4f}]"
+                             f"{'' if noise else ' *'}")
+            print(f"  {check:<44} {len(ranks):>5} {figure:7.4f}   " + "   ".join(
+                f"{c:<34}" for c in cells))
+    print("\n(* the interval lies wholly below 0: worse than full beyond the noise)")
+    for tier, within in verdicts.items():
+        print(f"{tier} within the noise of full on every check: {all(within)} "
+              f"({sum(within)} of {len(within)} checks)")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -536,11 +617,24 @@ def main() -> None:
                         help="training pairs used to choose the keyword side and the fusion")
     parser.add_argument("--corpus", choices=("all", "stdlib", "sample", "packaged"),
                         default="all")
+    parser.add_argument("--tiers", action="store_true",
+                        help="compare the embedding tiers on sample_repo and a small "
+                             "standard-library copy instead")
     args = parser.parse_args()
     print("command: .venv/bin/python scripts/bench_quality.py "
           + " ".join(shlex.quote(a) for a in sys.argv[1:]))
     print(f"python {sys.version.split()[0]}, standard library at "
           f"{sysconfig.get_paths()['stdlib']}")
+    if args.tiers:
+        started = time.perf_counter()
+        with tempfile.TemporaryDirectory() as scratch:
+            subset = stdlib_question_subset(Path(scratch) / "stdlib-subset")
+            section_tiers([("sample_repo", PROJECT / "sample_repo",
+                            QUESTION_FILES / "sample_repo.jsonl"),
+                           ("standard-library subset", subset,
+                            QUESTION_FILES / "stdlib.jsonl")], Path(scratch))
+        print(f"\n{time.perf_counter() - started:.0f} s")
+        return
     print(REFERENCE)
     cache_dir = Path(args.cache)
     cache_dir.mkdir(parents=True, exist_ok=True)

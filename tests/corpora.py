@@ -207,3 +207,26 @@ def _fetch_debian(corpus: Corpus, work: Path, unpacked: Path) -> None:
 def _run(command: list[str], cwd: Path) -> subprocess.CompletedProcess[str]:
     return subprocess.run(command, cwd=cwd, capture_output=True, text=True, timeout=600,
                           check=False)
+
+
+STDLIB_QUESTIONS = Path(__file__).parent / "data" / "questions" / "stdlib.jsonl"
+STDLIB_SKIP = ("test", "tests", "idle_test", "site-packages", "__pycache__")
+
+
+def stdlib_question_subset(target: Path) -> Path:
+    """A small standard-library copy: the modules that the standard-library question set
+    (``tests/data/questions/stdlib.jsonl``) answers from, at their own relative paths, so
+    every question of the set can be asked of it (about 3,700 units, where the whole copy
+    has about 19,000). For the benchmarks that compare embedding tiers in minutes."""
+    import json
+    import sysconfig
+
+    stdlib = Path(sysconfig.get_paths()["stdlib"])
+    paths = sorted({answer["path"] for line in STDLIB_QUESTIONS.read_text("utf-8").splitlines()
+                    if line.strip() for answer in json.loads(line)["answers"]})
+    for path in paths:
+        if any(part in STDLIB_SKIP for part in Path(path).parts):
+            continue
+        (target / path).parent.mkdir(parents=True, exist_ok=True)
+        shutil.copy2(stdlib / path, target / path)
+    return target

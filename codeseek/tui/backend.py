@@ -27,6 +27,7 @@ from codeseek.service import SearchService
 
 if TYPE_CHECKING:
     from codeseek.api import Index
+    from codeseek.config import Settings
     from codeseek.embed import Embedder, Progress
 
 LOCAL_SERVICE_STATE = "in-process · not watching"
@@ -61,7 +62,9 @@ def service_state(searcher: SearchService) -> str:
 
 
 class SharedEmbedder:
-    """One embedding model for every index the UI opens, loaded on first use."""
+    """One embedding model for every index the UI opens, loaded on first use: the tier
+    the settings name, else the one the repository's index was built with
+    (:mod:`codeseek.tiers`), else the default tier."""
 
     def __init__(self, repo: Path, index_dir: str | None, model: str | None,
                  backend: str | None) -> None:
@@ -73,11 +76,11 @@ class SharedEmbedder:
         with self._lock:
             if self._loaded is None:
                 from codeseek.config import load_settings
-                from codeseek.embed import load_embedder
+                from codeseek.tiers import load_tier_embedder
 
                 repo, index_dir, model, backend = self._args
                 settings = load_settings(repo, index_dir=index_dir, model=model, backend=backend)
-                self._loaded = load_embedder(settings)
+                self._loaded = load_tier_embedder(settings, _index_tier(settings))
             return self._loaded
 
     @property
@@ -93,6 +96,20 @@ class SharedEmbedder:
     def encode(self, texts: Sequence[str], progress: Progress | None = None) -> np.ndarray:
         """Encode with the shared model."""
         return self._get().encode(texts, progress)
+
+
+def _index_tier(settings: Settings) -> str | None:
+    """The tier the settings name or the index holds (None: no index yet, no tier named)."""
+    from codeseek.api import open_index
+    from codeseek.errors import CodeseekError
+
+    if settings.tier is not None:
+        return settings.tier
+    try:
+        with open_index(settings.repo, settings=settings) as index:
+            return index.tier  # no model is loaded for it
+    except CodeseekError:
+        return None  # the index is made (or the error shown) when the UI opens it
 
 
 class LocalIndexer:
