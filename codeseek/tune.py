@@ -536,8 +536,10 @@ class TuneReport:
         record: dict[str, object] = {
             "kept": self.kept, "pairs": self.pairs, "min_pairs": MIN_TRAINING_PAIRS,
             "refused": self.refused or None, "decided_on": self.decided_on,
-            "served_mrr_before": round(self.served_mrr(self.before), 4),
-            "served_mrr_after": round(self.served_mrr(self.after), 4),
+            "served_mrr_before": (None if self.before is None else
+                                  round(self.served_mrr(self.before), 4)),
+            "served_mrr_after": (None if self.after is None else
+                                 round(self.served_mrr(self.after), 4)),
             "served_mrr_plain_reweighted": (None if self.reweighted is None else
                                             round(self.served_mrr(self.reweighted), 4)),
             "protocols": [c.to_json() for c in self.comparisons],

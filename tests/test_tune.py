@@ -217,7 +217,9 @@ def test_tune_refuses_under_the_threshold_and_says_why(fake_index: Index) -> Non
     assert report.to_text() == f"no adapter kept: {report.refused}"
     assert report.refused.startswith(f"only {expected} training pairs ")
     assert "needs at least 300" in report.refused and "noise" in report.refused
-    assert report.to_json()["refused"] == report.refused
+    record = report.to_json()
+    assert record["refused"] == report.refused and record["kept"] is False
+    assert record["served_mrr_before"] is None and record["protocols"] == []
     assert not (index_dir / ADAPTER_NAME).exists()
     assert fake_index.searcher().adapter is None
 
