@@ -21,7 +21,7 @@ MRR over the corpora; the shipped one stands unless beaten by more than TIE:
    protocol (docstring pools, whole index, name-blind, questions), the penalty and
    mix chosen, and whether the rules kept it. ``--corpus tune`` runs only this
    section, on sample_repo and a subset of the standard library (the modules most
-   of the questions ask about, :data:`STDLIB_SUBSET`).
+   of the questions ask about, :data:`STDLIB_SUBSET`; ``--tune-stdlib whole``: all of it).
 
 Prints figures and asserts nothing. Real-model vectors of every text are kept
 in ``--cache`` (default ``/tmp/codeseek-bench-quality``), so a second run
@@ -614,6 +614,9 @@ def main() -> None:
                         help="training pairs used to choose the keyword side and the fusion")
     parser.add_argument("--corpus", choices=("all", "stdlib", "sample", "packaged", "tune"),
                         default="all")
+    parser.add_argument("--tune-stdlib", choices=("subset", "whole"), default="subset",
+                        help="with --corpus tune: the standard-library subset (default) or "
+                             "the whole copy")
     args = parser.parse_args()
     print("command: .venv/bin/python scripts/bench_quality.py "
           + " ".join(shlex.quote(a) for a in sys.argv[1:]))
@@ -627,10 +630,12 @@ def main() -> None:
         embedder = load_embedder(load_settings(scratch))
         print(f"model {embedder.model_id}")
         if args.corpus == "tune":
-            stdlib = copy_stdlib(Path(scratch) / "stdlib-subset", STDLIB_SUBSET)
+            whole = args.tune_stdlib == "whole"
+            stdlib = copy_stdlib(Path(scratch) / "stdlib-copy", () if whole else STDLIB_SUBSET)
             section_tune("sample_repo", PROJECT / "sample_repo", "sample_repo", embedder,
                          Path(scratch))
-            section_tune(f"python standard library, {len(STDLIB_SUBSET)} modules", stdlib,
+            section_tune("python standard library" if whole else
+                         f"python standard library, {len(STDLIB_SUBSET)} modules", stdlib,
                          "stdlib", embedder, Path(scratch))
             print(f"\n{time.perf_counter() - started:.0f} s")
             return
