@@ -558,6 +558,10 @@ def test_an_adapter_that_truly_helps_is_kept(
     assert header["choice"]["penalty"] == report.choice.chosen.penalty
     assert {c["protocol"] for c in header["protocols"]} >= {"questions", "name-blind, whole index"}
     assert header["questions_file"] == str(asked)
+    summary = index.status().adapter  # what status reads back from adapter.json
+    assert summary is not None
+    assert (summary["mix"], summary["penalty"]) == (report.choice.chosen.mix,
+                                                    report.choice.chosen.penalty)
     # eval then uses the adapter's split, and refuses another
     with pytest.raises(InvalidSplit, match="trained with 20% held out by unit, seed 0"):
         index.evaluate(seed=1)
