@@ -93,10 +93,10 @@ MIN_FIT_PAIRS = 32
 MIN_TRAINING_PAIRS = 300
 """The fewest training pairs ``codeseek tune`` trains on. With 300 the held-out side holds
 about 75 docstrings (a 20% share), and the paired 95% interval of an MRR gain on 75 queries
-is about +-0.06 wide (1.96 sd / sqrt(75), with sd 0.25, the standard deviation of the
-per-docstring difference of reciprocal rank that scripts/bench_quality.py section 6
-measured on a standard-library subset), as wide as the largest gain an adapter has shown
-(+0.05 on the standard library): under that no gain can be told from noise, and a
+is about +-0.04 to +-0.06 wide (1.96 sd / sqrt(75), with sd 0.19 to 0.25, the standard
+deviation of the per-docstring difference of reciprocal rank that scripts/bench_quality.py
+section 6 measured on the standard library and a subset of it), as wide as the gains
+adapters have shown there (+0.04 to +0.05): under that no gain can be told from noise, and a
 384 x 384 map fit on a hundred pairs learns their wording, not the code."""
 MIN_FUSION_PAIRS = 100
 PENALTY_GRID = (1e-4, 1e-2, 1e-1)
