@@ -104,7 +104,8 @@ def adapter_summary(index_dir: Path) -> dict[str, Any] | None:
 
     Keys: ``model_id``, ``saved_at`` (seconds since the epoch), ``held_out`` and
     ``served_mrr_before``/``served_mrr_after`` (the held-out check that kept it),
-    ``batch_size``, ``pairs``; those the header lacks are None.
+    ``batch_size``, ``pairs``, and ``penalty``/``mix`` (the regularisation chosen);
+    those the header lacks are None.
     """
     path = index_dir / ADAPTER_NAME
     if not safefs.is_regular_file(path):
@@ -117,11 +118,13 @@ def adapter_summary(index_dir: Path) -> dict[str, Any] | None:
     header = header if isinstance(header, dict) else {}
     report = _mapping(header.get("report"))
     training = _mapping(report.get("training"))
+    choice = _mapping(report.get("choice"))
     return {"model_id": header.get("model_id"), "saved_at": saved_at,
             "held_out": report.get("held_out"),
             "served_mrr_before": report.get("served_mrr_before"),
             "served_mrr_after": report.get("served_mrr_after"),
-            "batch_size": training.get("batch_size"), "pairs": training.get("pairs")}
+            "batch_size": training.get("batch_size"), "pairs": training.get("pairs"),
+            "penalty": choice.get("penalty"), "mix": choice.get("mix")}
 
 
 def _mapping(value: object) -> dict[str, Any]:

@@ -10,7 +10,7 @@ import errno
 import fcntl
 import os
 import stat
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager, suppress
 from itertools import groupby
 from pathlib import Path
@@ -57,8 +57,8 @@ from codeseek.vectors import HNSW_NAME, VectorIndex
 
 if TYPE_CHECKING:
     from codeseek.evaluate import EvalReport, Progress, Split, VectorCache
-    from codeseek.evaluate.questions import QuestionReport
-    from codeseek.tune import TuneReport
+    from codeseek.evaluate.questions import Question, QuestionReport
+    from codeseek.tune import TrainSettings, TuneReport
 
 LOCK_NAME = "writer.lock"
 
@@ -329,28 +329,48 @@ class Index:
         """The question checks of a question file (:mod:`codeseek.evaluate.questions`),
         asked through :meth:`search`; without ``path``, the index folder's question
         file, and None when it has none."""
-        from codeseek.evaluate.questions import check_questions, load_questions
+        loaded = self._load_questions(path)
+        if loaded is None:
+            return None
+        searcher = self.searcher()
+        return self._ask_questions(*loaded, self.search_many, seed=seed,
+                                   adapter=searcher.adapter is not None)
+
+    def _load_questions(self, path: Path | None) -> tuple[list[Question], Path] | None:
+        """A question file's questions (a bad file fails here, with its name and line);
+        without ``path``, the index folder's own file, read without following a link."""
+        from codeseek.evaluate.questions import load_questions
 
         own = path is None
         path = self.question_file() if path is None else path
         if path is None:
             return None
-        questions = load_questions(path, in_index_dir=own)
-        searcher = self.searcher()
+        return load_questions(path, in_index_dir=own), path
+
+    def _ask_questions(self, questions: list[Question], path: Path,
+                       search: Callable[[list[str], int], list[list[SearchHit]]], *,
+                       seed: int, adapter: bool) -> QuestionReport:
+        from codeseek.evaluate.questions import check_questions
+
         known = {(s.unit.path, s.unit.qualname) for s in self.store.iter_units()}
 
         def ask(texts: list[str], depth: int) -> list[list[tuple[str, str]]]:
-            return [[(hit.path, hit.qualname) for hit in hits]
-                    for hits in self.search_many(texts, depth)]
+            return [[(hit.path, hit.qualname) for hit in hits] for hits in search(texts, depth)]
 
         return check_questions(questions, ask, known, source=str(path),
-                               corpus=self.store.counts()["units"],
-                               seed=seed, adapter=searcher.adapter is not None)
+                               corpus=self.store.counts()["units"], seed=seed, adapter=adapter)
 
     def tune(self, *, holdout: float | None = None, seed: int | None = None,
              by_file: bool | None = None, batch_size: int | None = None,
+             questions: Path | None = None, settings: TrainSettings | None = None,
              progress: Progress | None = None) -> TuneReport:
-        """Train a query adapter on the training split; keep it if it raises held-out MRR."""
+        """Train a query adapter on the training split; keep it only under the rules of
+        :mod:`codeseek.keeping` (held-out docstrings gain beyond noise, name-blind and
+        question figures do not fall). ``questions`` defaults to the index folder's
+        ``questions.jsonl``, if there is one; a bad file fails before any training.
+        ``settings`` replaces the training settings (``batch_size`` then changes them)."""
+        from dataclasses import replace
+
         from codeseek.evaluate import Split
         from codeseek.tune import TrainSettings, tune_units
 
@@ -360,14 +380,28 @@ class Index:
                       defaults.seed if seed is None else seed,
                       defaults.by_file if by_file is None else by_file)
         split.validate()
-        settings = TrainSettings() if batch_size is None else TrainSettings(batch_size=batch_size)
+        settings = settings or TrainSettings()
+        if batch_size is not None:
+            settings = replace(settings, batch_size=batch_size)
+        loaded = self._load_questions(questions)
         units = [stored.unit for stored in self.store.iter_units()]
+
+        def check(adapter: QueryAdapter | None, fusion: Fusion) -> QuestionReport:
+            assert loaded is not None
+            # a searcher of its own: the plain model, or the adapter on trial, never the
+            # index's saved one
+            trial = Searcher(self.store, searcher.vectors, searcher.embedder,
+                             searcher.model_id, self.lock, adapter=adapter, fusion=fusion)
+            return self._ask_questions(*loaded, trial.search_many, seed=split.seed,
+                                       adapter=adapter is not None)
+
         with self._writer_lock():
             adapter, report = tune_units(units, searcher.embedder,
                                          repository=str(self.settings.repo), split=split,
                                          settings=settings, cache=self._eval_cache(),
+                                         questions=None if loaded is None else check,
                                          progress=progress)
-            if report.kept:
+            if report.kept and adapter is not None:
                 save_adapter(self.settings.index_dir, adapter)
             else:
                 remove_adapter(self.settings.index_dir)

@@ -15,7 +15,13 @@ MRR over the corpora; the shipped one stands unless beaten by more than TIE:
 3. the fusion of the two (reciprocal rank fusion against scaled scores, weights),
    and how many candidates of each side it fuses;
 4. the served ranking, every method under every protocol, as ``codeseek eval`` prints it;
-5. the query adapter of ``codeseek tune`` at batch sizes 32, 256 and 2048.
+5. the query adapter of ``codeseek tune`` at batch sizes 32, 256 and 2048;
+6. ``codeseek tune`` itself, through a real index of each corpus with its public
+   question file (``tests/data/questions/``): plain against adapted on every
+   protocol (docstring pools, whole index, name-blind, questions), the penalty and
+   mix chosen, and whether the rules kept it. ``--corpus tune`` runs only this
+   section, on sample_repo and a subset of the standard library (the modules most
+   of the questions ask about, :data:`STDLIB_SUBSET`; ``--tune-stdlib whole``: all of it).
 
 With ``--tiers`` it compares the embedding tiers (codeseek/tiers.py) instead: each
 tier's index of ``sample_repo/`` and of a small standard-library copy (the modules the
@@ -29,7 +35,8 @@ Prints figures and asserts nothing. Real-model vectors of every text are kept
 in ``--cache`` (default ``/tmp/codeseek-bench-quality``), so a second run
 embeds nothing; the first embeds the standard library about twice (minutes).
 
-Reproduce: ``.venv/bin/python scripts/bench_quality.py`` (``--tiers`` for the tiers)
+Reproduce: ``.venv/bin/python scripts/bench_quality.py`` (``--tiers`` for the tiers;
+section 6 alone: ``--corpus tune``)
 """
 
 from __future__ import annotations
@@ -116,10 +123,28 @@ def log(message: str) -> None:
 # -- corpora ------------------------------------------------------------------------
 
 
-def copy_stdlib(target: Path) -> Path:
-    """A copy of the standard library without its test folders."""
-    shutil.copytree(sysconfig.get_paths()["stdlib"], target, ignore=SKIP, symlinks=True)
+def copy_stdlib(target: Path, only: Sequence[str] = ()) -> Path:
+    """A copy of the standard library without its test folders (``only``: just these
+    top-level modules and packages)."""
+    source = Path(sysconfig.get_paths()["stdlib"])
+    if not only:
+        shutil.copytree(source, target, ignore=SKIP, symlinks=True)
+        return target
+    target.mkdir(parents=True)
+    for name in only:
+        if (source / name).is_dir():
+            shutil.copytree(source / name, target / name, ignore=SKIP, symlinks=True)
+        else:
+            shutil.copy2(source / f"{name}.py", target / f"{name}.py")
     return target
+
+
+STDLIB_SUBSET = ("email", "shutil", "logging", "datetime", "functools", "urllib", "pathlib",
+                 "json", "difflib", "argparse", "http", "statistics", "traceback", "csv",
+                 "textwrap", "zipfile", "collections", "tarfile", "tempfile", "ipaddress",
+                 "configparser", "inspect", "posixpath", "fnmatch", "calendar", "shlex",
+                 "random", "dataclasses", "pprint", "timeit", "gzip")
+"""The standard-library modules most of tests/data/questions/stdlib.jsonl asks about."""
 
 
 # -- the choices --------------------------------------------------------------------
@@ -541,6 +566,58 @@ def section_adapter(bench: Bench, served: Served) -> None:
               f"(best {run.best_epoch}), {run.seconds:.1f} s")
 
 
+def answerable_questions(source: Path, known: set[tuple[str, str]],
+                         target: Path) -> tuple[Path, int, int]:
+    """The questions of ``source`` with at least one answer among ``known`` units (a subset
+    of a repository leaves some unanswerable for both sides alike), written to ``target``."""
+    import json
+
+    from codeseek.evaluate import load_questions
+
+    questions = load_questions(source)
+    lines = source.read_text(encoding="utf-8").splitlines()
+    kept = [lines[q.line - 1] for q in questions
+            if any((a.path, a.qualname) in known for a in q.answers)]
+    target.write_text("".join(json.dumps(json.loads(line)) + "\n" for line in kept),
+                      encoding="utf-8")
+    return target, len(kept), len(questions)
+
+
+def section_tune(name: str, repo: Path, questions: str, embedder: Embedder,
+                 scratch: Path) -> None:
+    """``codeseek tune`` through a real index of a copy of ``repo``, judged with its
+    public question file: every protocol, plain against adapted."""
+    copy = scratch / f"tune-{questions}"
+    shutil.copytree(repo, copy, symlinks=True)
+    started = time.perf_counter()
+    with open_index(copy, create=True, embedder=embedder) as index:
+        index.update()
+        units = index.store.counts()["units"]
+        known = {(s.unit.path, s.unit.qualname) for s in index.store.iter_units()}
+    indexed = time.perf_counter() - started
+    asked, usable, total = answerable_questions(
+        PROJECT / "tests" / "data" / "questions" / f"{questions}.jsonl", known,
+        scratch / f"questions-{questions}.jsonl")
+    print(f"\n[{name}] 6. codeseek tune, judged on every protocol: {units} units (indexed "
+          f"in {indexed:.0f} s), questions: {usable} of tests/data/questions/{questions}.jsonl "
+          f"({total}) with an answer in this index")
+    started = time.perf_counter()
+    with open_index(copy, create=False, embedder=embedder) as index:
+        report = index.tune(questions=asked)
+    print("  " + report.to_text().replace("\n", "\n  "))
+    before = report.before.result("served", "all") if report.before else None
+    after = report.after.result("served", "all") if report.after else None
+    if before is not None and after is not None:
+        ranks = np.array([before.ranks, after.ranks], dtype=np.float64)
+        rr = np.divide(1.0, ranks, out=np.zeros_like(ranks), where=ranks > 0)
+        spread = float(np.std(rr[1] - rr[0], ddof=1))
+        print(f"  per-docstring difference of reciprocal rank (whole index): standard "
+              f"deviation {spread:.3f}; a paired 95% interval on n held-out docstrings is "
+              f"about +-{1.96 * spread:.2f}/sqrt(n): +-{1.96 * spread / np.sqrt(75):.3f} at "
+              f"n = 75 (300 training pairs)")
+    print(f"  tune took {time.perf_counter() - started:.0f} s")
+
+
 def shipped_is(bench: Bench, representation: str) -> bool:
     return bench.texts(representation) == bench.texts(SHIPPED_TEXT)
 
@@ -615,11 +692,14 @@ def main() -> None:
                         help="folder of the vector cache (default /tmp/codeseek-bench-quality)")
     parser.add_argument("--train-sample", type=int, default=1500,
                         help="training pairs used to choose the keyword side and the fusion")
-    parser.add_argument("--corpus", choices=("all", "stdlib", "sample", "packaged"),
+    parser.add_argument("--corpus", choices=("all", "stdlib", "sample", "packaged", "tune"),
                         default="all")
     parser.add_argument("--tiers", action="store_true",
                         help="compare the embedding tiers on sample_repo and a small "
                              "standard-library copy instead")
+    parser.add_argument("--tune-stdlib", choices=("subset", "whole"), default="subset",
+                        help="with --corpus tune: the standard-library subset (default) or "
+                             "the whole copy")
     args = parser.parse_args()
     print("command: .venv/bin/python scripts/bench_quality.py "
           + " ".join(shlex.quote(a) for a in sys.argv[1:]))
@@ -642,6 +722,16 @@ def main() -> None:
     with tempfile.TemporaryDirectory() as scratch:
         embedder = load_embedder(load_settings(scratch))
         print(f"model {embedder.model_id}")
+        if args.corpus == "tune":
+            whole = args.tune_stdlib == "whole"
+            stdlib = copy_stdlib(Path(scratch) / "stdlib-copy", () if whole else STDLIB_SUBSET)
+            section_tune("sample_repo", PROJECT / "sample_repo", "sample_repo", embedder,
+                         Path(scratch))
+            section_tune("python standard library" if whole else
+                         f"python standard library, {len(STDLIB_SUBSET)} modules", stdlib,
+                         "stdlib", embedder, Path(scratch))
+            print(f"\n{time.perf_counter() - started:.0f} s")
+            return
         cache = VectorCache(cache_dir / "vectors.npz", embedder.model_id, prune=False)
         corpora: list[tuple[str, Path, bool]] = []
         if args.corpus in ("all", "stdlib"):

@@ -50,6 +50,7 @@ from codeseek.evaluate.check import (
     evaluate_prepared,
     evaluate_units,
     name_blind_cases,
+    name_blind_results,
     prepare,
     query_matrix,
 )
@@ -91,6 +92,7 @@ from codeseek.evaluate.questions import (
     check_questions,
     load_questions,
     parse_questions,
+    question_rows,
 )
 from codeseek.evaluate.report import EvalReport, Lead, NameBlind, build_report
 from codeseek.evaluate.signals import (
@@ -112,7 +114,8 @@ from codeseek.search import CANDIDATES
 __all__ = [
     "Answer", "NameBlind", "QUESTIONS_NAME", "Question", "QuestionReport", "QuestionResult",
     "Stale", "blind_words", "check_questions", "load_questions", "name_blind_cases",
-    "name_blind_query", "parse_questions", "unit_identifiers",
+    "name_blind_query", "name_blind_results", "parse_questions", "question_rows",
+    "unit_identifiers",
     "CACHE_NAME", "CANDIDATES", "Case", "CaseSignals", "DEPTH", "DocumentIndex", "EvalReport",
     "FUSION_GRID", "Lead", "MIN_QUERY_WORDS", "MethodResult", "POOL_SIZES", "Pool",
     "PoolSampler", "Prepared", "Progress", "Selection", "Signals", "Split", "VectorCache",
