@@ -5,15 +5,19 @@ from __future__ import annotations
 import json
 import shutil
 import sysconfig
+from collections.abc import Iterator, Sequence
 from pathlib import Path
 
 import pytest
 from test_cli import run_cli
 
 from codeseek import FakeEmbedder, open_index
+from codeseek.api import Index
+from codeseek.bm25 import CorpusStats
 from codeseek.hits import SearchHit
 from codeseek.multi import MERGE_KINDS, MultiService, merge, standardised
-from codeseek.query import Query
+from codeseek.query import Filters, Query
+from codeseek.search import lexical_match
 
 SAMPLE_REPO = Path(__file__).resolve().parent.parent / "sample_repo"
 
@@ -150,7 +154,6 @@ def _top(hits: list[SearchHit]) -> set[str]:
 # Real open-source code: these packages of the Python standard library installed on this
 # machine (sysconfig's "stdlib" path), split into two halves by alternate file.
 STDLIB_PACKAGES = ("json", "email", "logging", "http", "urllib", "xml/dom")
-FAKE_FLOOR = 0.65
 STDLIB_QUERIES = [
     "parse a JSON document from a string", "encode an object as JSON text",
     "decode a quoted printable header", "format a log record with a timestamp",
@@ -164,41 +167,118 @@ STDLIB_QUERIES = [
 ]
 
 
-def test_merged_halves_agree_with_one_index_of_the_whole(tmp_path: Path) -> None:
-    """The merged top-10 of two halves of a tree against the top-10 of one index of it."""
+def halved_stdlib(folder: Path, everything: bool = False) -> tuple[Path, list[Path], int]:
+    """The STDLIB_PACKAGES (or, with ``everything``, the whole standard library, tests
+    left out) copied into ``folder/whole`` and, by alternate file, into two halves;
+    returns the whole, the halves and the number of files."""
     stdlib = Path(sysconfig.get_paths()["stdlib"])
-    whole, halves = tmp_path / "whole", [tmp_path / "half0", tmp_path / "half1"]
-    files = sorted(p for package in STDLIB_PACKAGES for p in (stdlib / package).rglob("*.py")
-                   if "test" not in p.parts)
-    assert len(files) > 40
+    whole, halves = folder / "whole", [folder / "half0", folder / "half1"]
+    roots = [stdlib] if everything else [stdlib / package for package in STDLIB_PACKAGES]
+    files = sorted(p for root in roots for p in root.rglob("*.py")
+                   if not {"test", "tests", "site-packages", "idlelib"} & set(p.parts))
     for number, source in enumerate(files):
         relative = source.relative_to(stdlib)
         for target in (whole / relative, halves[number % 2] / relative):
             target.parent.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(source, target)
+    return whole, halves, len(files)
+
+
+def agreement(merged: Sequence[list[SearchHit]],
+              single: Sequence[list[SearchHit]]) -> tuple[float, float, float]:
+    """(top-1 agreement, mean top-10 overlap, MRR agreement) of merged answers with one
+    index's: the share of queries with the same best hit, the mean share of the single
+    answer's hits found in the merged one, and the mean reciprocal rank in the merged
+    answer of the single answer's best hit."""
+    top1 = overlap = mrr = 0.0
+    for mine, theirs in zip(merged, single, strict=True):
+        keys = [f"{h.path}:{h.qualname}:{h.start_line}" for h in mine]
+        best = f"{theirs[0].path}:{theirs[0].qualname}:{theirs[0].start_line}"
+        top1 += keys[:1] == [best]
+        overlap += len(set(keys) & _top(theirs)) / len(theirs)
+        mrr += 1 / (keys.index(best) + 1) if best in keys else 0.0
+    return top1 / len(single), overlap / len(single), mrr / len(single)
+
+
+@pytest.fixture(scope="module")
+def stdlib_halves(tmp_path_factory: pytest.TempPathFactory) -> Iterator[list[Index]]:
+    """Indexes (fake embedder) of the whole STDLIB_PACKAGES tree and of its two halves."""
+    whole, halves, files = halved_stdlib(tmp_path_factory.mktemp("stdlib"))
+    assert files > 40
     indexes = [open_index(root, create=True, embedder=FakeEmbedder())
                for root in (whole, *halves)]
-    try:
-        for index in indexes:
-            index.update()
-        multi = MultiService([(str(root), index) for root, index in zip(halves, indexes[1:],
-                                                                          strict=True)])
-        queries = [Query(text=text, k=10) for text in STDLIB_QUERIES]
-        single = list(indexes[0].search_many(queries))
-        means = {}
-        for kind in MERGE_KINDS:
-            multi.kind = kind
-            merged = list(multi.search_many(queries))
-            overlaps = [len(_top(m) & _top(s)) / 10 for m, s in zip(merged, single, strict=True)]
-            means[kind] = sum(overlaps) / len(overlaps)
-    finally:
-        for index in indexes:
-            index.close()
-    print(f"mean top-10 overlap {means}")
-    # measured with the fake embedder (hashed words, no model): served 0.75,
-    # restandardised 0.73; with the packaged model (scripts/bench_multi.py): served 0.66,
-    # restandardised 0.65-0.67. The issue's 0.9 target is NOT met by either: a unit's
-    # fused score depends on the other units of its index, so halves rank differently
-    # from the whole. FAKE_FLOOR is a regression floor, not that target.
-    assert means["served"] >= FAKE_FLOOR
-    assert means["restandardised"] >= FAKE_FLOOR
+    for index in indexes:
+        index.update()
+    yield indexes
+    for index in indexes:
+        index.close()
+
+
+def test_merged_halves_agree_with_one_index_of_the_whole(stdlib_halves: list[Index]) -> None:
+    """The merged top-10 of two halves of a tree against the top-10 of one index of it."""
+    whole, *halves = stdlib_halves
+    multi = MultiService([(str(h.settings.repo), h) for h in halves])
+    queries = [Query(text=text, k=10) for text in STDLIB_QUERIES]
+    single = list(whole.search_many(queries))
+    figures = {}
+    for kind in MERGE_KINDS:
+        multi.kind = kind
+        figures[kind] = agreement(list(multi.search_many(queries)), single)
+    print(f"(top-1, top-10 overlap, MRR agreement) {figures}")
+    # the issue's target: top-10 overlap >= 0.9 with one index of the whole (measured with
+    # this fake embedder: shared 1.0; the older rules, per-index standardised scores,
+    # served 0.75 and restandardised 0.73; scripts/bench_multi.py prints them all)
+    top1, overlap, mrr = figures["shared"]
+    assert overlap >= 0.9 and top1 >= 0.9 and mrr >= 0.9
+    # the older rules stay what they were (regression floors, not the target)
+    assert figures["served"][1] >= OLD_FLOOR and figures["restandardised"][1] >= OLD_FLOOR
+
+
+def test_filtered_merge_equals_one_index_of_the_whole(stdlib_halves: list[Index]) -> None:
+    """With exact dense search on both sides (a filtered search is an exact numpy search
+    over the pool's vectors) and the summed BM25 statistics, the merge of the halves IS
+    the whole index's ranking: the same units in the same order, the same scores."""
+    whole, *halves = stdlib_halves
+    multi = MultiService([(str(h.settings.repo), h) for h in halves])
+    every = Filters(languages=("python",))
+    queries = [Query(text=text, k=15, filters=every) for text in STDLIB_QUERIES]
+    single = list(whole.search_many(queries))
+    merged = list(multi.search_many(queries))
+    for mine, theirs in zip(merged, single, strict=True):
+        assert [(h.path, h.qualname, h.start_line) for h in mine] == [
+            (h.path, h.qualname, h.start_line) for h in theirs]
+        assert [h.score for h in mine] == pytest.approx([h.score for h in theirs], abs=1e-9)
+        assert [h.similarity for h in mine] == pytest.approx([h.similarity for h in theirs])
+        assert [h.confidence for h in mine] == [h.confidence for h in theirs]
+        for hit in mine:  # each hit's file is in the half it names
+            assert (Path(str(hit.repo)) / hit.path).is_file()
+
+
+def test_shared_bm25_is_fts5_bm25(stdlib_halves: list[Index]) -> None:
+    """The keyword score recomputed from the index's own statistics (codeseek.bm25) is
+    SQLite FTS5's bm25() bit for bit on real code (the reference: FTS5 itself); with the
+    summed statistics of the halves, each half's scores are the whole index's."""
+    whole, *halves = stdlib_halves
+    by_place = {}
+    for text in STDLIB_QUERIES + ["HTTPServer json_dumps parse_header"]:
+        searcher = whole.searcher()
+        fts5 = searcher.store.lexical_search(lexical_match(text), -1)
+        own = searcher.shared_lexical(text, searcher.corpus_stats(text), len(fts5) + 5, None)
+        assert len(own) == len(fts5) > 0
+        assert dict(own) == dict(fts5)  # exact floats
+        stats = [h.searcher().corpus_stats(text) for h in halves]
+        assert CorpusStats.combined(stats) == searcher.corpus_stats(text)
+        units = {i: s.unit for i, s in searcher.store.units_by_ids([u for u, _ in fts5]).items()}
+        by_place = {(units[u].path, units[u].qualname, units[u].start_line): score
+                    for u, score in fts5}
+        for half in halves:
+            half_searcher = half.searcher()
+            scored = half_searcher.shared_lexical(text, CorpusStats.combined(stats), 10**6,
+                                                  None)
+            half_units = half_searcher.store.units_by_ids([u for u, _ in scored])
+            for unit_id, score in scored:
+                unit = half_units[unit_id].unit
+                assert score == by_place[(unit.path, unit.qualname, unit.start_line)]
+
+
+OLD_FLOOR = 0.65
