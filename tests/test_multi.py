@@ -282,3 +282,62 @@ def test_shared_bm25_is_fts5_bm25(stdlib_halves: list[Index]) -> None:
 
 
 OLD_FLOOR = 0.65
+
+
+def test_client_fans_out_to_one_daemon_per_repository(tmp_path: Path) -> None:
+    """Two live daemons, one per repository: the merged answer through them is the
+    in-process merge's, hit for hit (the three steps go over each daemon's socket), and
+    ``codeseek search --repo A --repo B`` uses them."""
+    from codeseek.client import DaemonService
+    from codeseek.daemon import Daemon
+    from codeseek.service import connect
+
+    first, second = _split_sample(tmp_path)
+    indexes = [open_index(repo, embedder=FakeEmbedder()) for repo in (first, second)]
+    daemons = [Daemon(index, reconcile_seconds=3600, debounce=0.05) for index in indexes]
+    for running in daemons:
+        running.start()
+    try:
+        services = [(str(repo.resolve()), connect(repo)) for repo in (first, second)]
+        assert all(isinstance(service, DaemonService) for _, service in services)
+        through = MultiService(services)
+        local = MultiService([(str(repo.resolve()), open_index(repo, embedder=FakeEmbedder()))
+                              for repo in (first, second)])
+        queries = [Query(text=text, k=12) for text in (
+            "fare for a ride", "retry an upload with backoff", "parse the config file")]
+        served_before = [running.queries_served for running in daemons]
+        answers = list(through.search_many(queries))
+        assert answers == list(local.search_many(queries))
+        assert {hit.repo for answer in answers for hit in answer} == {
+            str(first.resolve()), str(second.resolve())}
+        assert [r.queries_served - b for r, b in zip(daemons, served_before,
+                                                       strict=True)] == [3, 3]
+        assert not any(service.gone for _, service in services)  # type: ignore[attr-defined]
+        # the command line over the same two daemons (no --backend: the daemons answer)
+        code, out, err = run_cli("search", "fare for a ride", "--repo", str(first), "--repo",
+                                 str(second), "--json", "-k", "12")
+        assert code == 0, err
+        assert [json.loads(line)["path"] for line in out.splitlines()] == [
+            hit.path for hit in answers[0]]
+        assert [r.queries_served - b for r, b in zip(daemons, served_before,
+                                                       strict=True)] == [4, 4]
+        # malformed steps get a one-line error, and the daemon goes on answering
+        for line, words in (
+                (b'{"v": 2, "op": "merge_sides", "queries": [{"text": "fare"}], "stats": []}',
+                 "'stats' must be a list with one entry per query"),
+                (b'{"v": 2, "op": "merge_sides", "queries": [{"text": "fare"}], '
+                 b'"stats": [{"rows": -1, "tokens": 1, "matches": [1]}]}', "whole numbers"),
+                (b'{"v": 2, "op": "merge_hits", "queries": [{"text": "fare"}], '
+                 b'"picks": [[[1, "high", null, null]]]}', "a pick is"),
+                (b'{"v": 2, "op": "merge_sides", "queries": [{"text": "fare"}], '
+                 b'"stats": [{"rows": 9, "tokens": 9, "matches": []}]}', "another query")):
+            response = daemons[0].handle_line(line)
+            assert response["ok"] is False and words in response["error"], response
+        assert through.search(queries[0]) == answers[0]
+        through.close()
+        local.close()
+    finally:
+        for running in daemons:
+            running.stop()
+        for index in indexes:
+            index.close()
