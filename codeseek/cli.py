@@ -100,12 +100,7 @@ def _search_parser(commands: Any) -> None:
                                  description="Rank the functions, methods and classes that "
                                              "match a natural-language query.")
     search.add_argument("query", nargs="?", metavar="QUERY", help="what you are looking for")
-    search.add_argument("--repo", action="append", dest="repos", default=[], metavar="PATH",
-                        help="repository root (default: the current folder's repository); "
-                             "repeat it to search several repositories at once")
-    search.add_argument("--workspace", metavar="FILE",
-                        help="search the repositories a TOML file lists "
-                             "([workspace] repos = [...], paths relative to the file)")
+    _several_repos_options(search, "search")
     search.add_argument("-k", type=int, default=10, metavar="N",
                         help="number of results (default: 10)")
     search.add_argument("--language", action="append", dest="languages", default=[],
@@ -134,14 +129,25 @@ def _search_parser(commands: Any) -> None:
     _common_index_options(search)
 
 
+def _several_repos_options(parser: argparse.ArgumentParser, verb: str) -> None:
+    parser.add_argument("--repo", action="append", dest="repos", default=[], metavar="PATH",
+                        help="repository root (default: the current folder's repository); "
+                             f"repeat it to {verb} several repositories at once")
+    parser.add_argument("--workspace", metavar="FILE",
+                        help=f"{verb} the repositories a TOML file lists "
+                             "([workspace] repos = [...], paths relative to the file)")
+
+
 def _status_parser(commands: Any) -> None:
     status = commands.add_parser("status", help="what the index holds and how fresh it is",
                                  description="Show what the index holds, what was left out "
                                              "and why, and whether it is up to date.")
     status.add_argument("path", nargs="?", default=None, metavar="PATH",
                         help="repository root (default: the current folder's repository)")
+    _several_repos_options(status, "show")
     _common_index_options(status, model=False)
-    status.add_argument("--json", action="store_true", help="one JSON object")
+    status.add_argument("--json", action="store_true",
+                        help="one JSON object (one line per repository when several)")
     status.add_argument("--skipped", action="store_true",
                         help="list the files left out, one `path  reason` line each "
                              "(with --json: a skipped_files list)")
@@ -623,28 +629,46 @@ def _clip(text: str, width: int) -> str:
 
 
 def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    from codeseek.errors import IndexNotFound
     from codeseek.service import daemon_status
 
-    with _open(args.path, args, create=False) as index:
-        status = index.status()
-        skipped = index.skipped_files() if args.skipped else None
-    daemon = daemon_status(_root(args.path), index_dir=args.index_dir)
-    if args.json:
-        record = status.to_json()
-        record["daemon"] = daemon
-        if skipped is not None:
-            record["skipped_files"] = [{**json_path(p), "reason": r} for p, r in skipped]
-        out.write(json.dumps(record, ensure_ascii=False) + "\n")
-    elif skipped is not None:
-        out.write(format_skipped(skipped))
-    else:
-        out.write(format_status(status, daemon))
+    repos = ([args.path] if args.path else []) + _search_repos(args)
+    several = len(repos) > 1 or args.workspace is not None
+    if several and args.index_dir is not None:
+        raise UsageError("--index-dir names one index; give it with one --repo")
+    reports = []
+    for repo in repos or [None]:
+        if several and not Path(repo or ".").is_dir():
+            raise UsageError(f"{printable(str(repo))}: no such repository folder")
+        try:
+            with _open(repo, args, create=False) as index:
+                reports.append((index.status(),
+                                index.skipped_files() if args.skipped else None,
+                                daemon_status(_root(repo), index_dir=args.index_dir)))
+        except IndexNotFound as exc:
+            if not several:
+                raise
+            raise UsageError(f"{printable(str(repo))}: no index here; run codeseek index "
+                             f"{printable(str(repo))} first") from exc
+    for number, (status, skipped, daemon) in enumerate(reports):
+        if args.json:
+            record = status.to_json()
+            record["daemon"] = daemon
+            if skipped is not None:
+                record["skipped_files"] = [{**json_path(p), "reason": r} for p, r in skipped]
+            out.write(json.dumps(record, ensure_ascii=False) + "\n")
+        elif skipped is not None:
+            out.write(format_skipped(skipped, status.repo if several else None))
+        else:
+            out.write(("\n" if number else "") + format_status(status, daemon))
     return EXIT_OK
 
 
-def format_skipped(skipped: Sequence[tuple[str, str]]) -> str:
-    """``status --skipped``: one ``path  reason`` line per file left out."""
-    return "".join(f"{printable(path)}  {reason}\n" for path, reason in skipped)
+def format_skipped(skipped: Sequence[tuple[str, str]], repo: str | None = None) -> str:
+    """``status --skipped``: one ``path  reason`` line per file left out (each path under
+    ``repo`` when given: several repositories are listed)."""
+    return "".join(f"{printable(path if repo is None else str(Path(repo) / path))}  {reason}\n"
+                   for path, reason in skipped)
 
 
 def format_status(status: IndexStatus, daemon: dict[str, Any] | None) -> str:

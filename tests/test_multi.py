@@ -341,3 +341,38 @@ def test_client_fans_out_to_one_daemon_per_repository(tmp_path: Path) -> None:
             running.stop()
         for index in indexes:
             index.close()
+
+
+def test_status_lists_each_repository(tmp_path: Path) -> None:
+    first, second = _split_sample(tmp_path)
+    code, out, err = run_cli("status", "--repo", str(first), "--repo", str(second), "--json")
+    assert code == 0, err
+    records = [json.loads(line) for line in out.splitlines()]
+    assert [Path(r["repo"]) for r in records] == [first.resolve(), second.resolve()]
+    for record, repo in zip(records, (first, second), strict=True):
+        _, alone, _ = run_cli("status", str(repo), "--json")
+        assert json.loads(alone)["units"] == record["units"] > 0  # each index its own
+        assert record["daemon"] is None
+    # the text names each repository in its own block; a workspace lists the same
+    code, text, _ = run_cli("status", "--repo", str(first), "--repo", str(second))
+    assert code == 0
+    blocks = text.split("\n\n")
+    assert len(blocks) == 2
+    assert str(first.resolve()) in blocks[0] and str(second.resolve()) in blocks[1]
+    workspace = tmp_path / "team.toml"
+    workspace.write_text('[workspace]\nrepos = ["first", "second"]\n', encoding="utf-8")
+    code, listed, _ = run_cli("status", "--workspace", str(workspace), "--json")
+    assert code == 0 and [json.loads(line)["units"] for line in listed.splitlines()] == [
+        r["units"] for r in records]
+    # the files left out, each under its repository
+    code, skipped, _ = run_cli("status", "--repo", str(first), "--repo", str(second),
+                               "--skipped")
+    assert code == 0 and skipped.splitlines()  # sample_repo holds files left out
+    for line in skipped.splitlines():
+        path = Path(line.split("  ")[0])
+        assert path.is_relative_to(first.resolve()) or path.is_relative_to(second.resolve())
+    # a repository without an index is named in a one-line usage error
+    bare = tmp_path / "bare"
+    bare.mkdir()
+    code, _, err = run_cli("status", "--repo", str(first), "--repo", str(bare))
+    assert code == 2 and "no index here" in err and str(bare) in err
