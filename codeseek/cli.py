@@ -37,6 +37,7 @@ if TYPE_CHECKING:
     from codeseek.indexer import UpdateSummary
     from codeseek.search import SearchHit
     from codeseek.service import SearchService
+    from codeseek.tui.app import CodeseekApp
 
 EXIT_OK = 0
 EXIT_ERROR = 1
@@ -181,7 +182,7 @@ def _ui_parser(commands: Any) -> None:
                                          "it in your editor ($VISUAL or $EDITOR).")
     ui.add_argument("path", nargs="?", default=None, metavar="PATH",
                     help="repository root (default: the current folder's repository)")
-    ui.add_argument("--repo", metavar="PATH", help="repository root (the same as PATH)")
+    _several_repos_options(ui, "search")
     _common_index_options(ui)
 
 
@@ -763,6 +764,8 @@ def cmd_watch(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
 def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     from codeseek.errors import IndexNotFound
 
+    repos = _search_repos(args)
+    args.repo = repos[0] if len(repos) == 1 else None
     if args.path and args.repo and Path(args.path).resolve() != Path(args.repo).resolve():
         raise InvalidQuery("name the repository once: PATH or --repo, not both")
     if not (sys.stdin.isatty() and sys.stdout.isatty()):
@@ -773,6 +776,10 @@ def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     from codeseek.tui.app import CodeseekApp
     from codeseek.tui.backend import LocalIndexer
 
+    if len(repos) > 1:
+        # several repositories: each answered by its daemon or in process, no builder
+        # (index each with `codeseek index`); each hit names its repository
+        return _run_ui(CodeseekApp(_connect_all(repos, args, err), builder=None), out)
     chosen = args.repo or args.path
     root = Path(chosen) if chosen else find_repo_root(Path.cwd())
     if not root.is_dir():
@@ -788,7 +795,10 @@ def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         searcher = None
     if searcher is not None and searcher.daemon_status() is not None:
         builder = None  # a running daemon answers, warm, and keeps the index fresh
-    app = CodeseekApp(searcher, repo=root.resolve(), builder=builder)
+    return _run_ui(CodeseekApp(searcher, repo=root.resolve(), builder=builder), out)
+
+
+def _run_ui(app: CodeseekApp, out: TextIO) -> int:
     try:
         app.run()
     finally:
