@@ -136,7 +136,9 @@ def _several_repos_options(parser: argparse.ArgumentParser, verb: str) -> None:
                              f"repeat it to {verb} several repositories at once")
     parser.add_argument("--workspace", metavar="FILE",
                         help=f"{verb} the repositories a TOML file lists "
-                             "([workspace] repos = [...], paths relative to the file)")
+                             "([workspace] repos = [...], paths relative to the file; "
+                             "default: a codeseek.toml holding [workspace] at or above the "
+                             "current folder, when no repository is nearer)")
 
 
 def _status_parser(commands: Any) -> None:
@@ -231,14 +233,21 @@ def _connect(repo: str | None, args: argparse.Namespace, err: TextIO) -> SearchS
         raise IndexNotFound(f"{exc}{NO_INDEX_HINT}") from exc
 
 
-def _search_repos(args: argparse.Namespace) -> list[str]:
-    """The repositories ``search`` asks: the ``--repo`` options, then a workspace's."""
-    repos = list(args.repos)
-    if args.workspace is not None:
-        from codeseek.multi import workspace_repos
+def _search_repos(args: argparse.Namespace, discover: bool = True) -> list[str]:
+    """The repositories ``search`` asks: the ``--repo`` options, then a workspace's
+    (``--workspace``; with neither, and ``discover``, the workspace file found at or above
+    the current folder when no repository is nearer: :func:`codeseek.multi.find_workspace`)."""
+    from codeseek.multi import find_workspace, workspace_repos
 
+    repos = list(args.repos)
+    workspace = None if args.workspace is None else Path(args.workspace)
+    if workspace is None and not repos and discover:
+        root = find_repo_root(Path.cwd())
+        marked = (root / ".codeseek").is_dir() or (root / ".git").exists()
+        workspace = find_workspace(Path.cwd(), root if marked else None)
+    if workspace is not None:
         try:
-            repos += [str(path) for path in workspace_repos(Path(args.workspace))]
+            repos += [str(path) for path in workspace_repos(workspace)]
         except ValueError as exc:
             raise UsageError(str(exc)) from exc
     if len(repos) > 1 and args.index_dir is not None:
@@ -633,7 +642,7 @@ def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     from codeseek.errors import IndexNotFound
     from codeseek.service import daemon_status
 
-    repos = ([args.path] if args.path else []) + _search_repos(args)
+    repos = ([args.path] if args.path else []) + _search_repos(args, discover=not args.path)
     several = len(repos) > 1 or args.workspace is not None
     if several and args.index_dir is not None:
         raise UsageError("--index-dir names one index; give it with one --repo")
@@ -764,7 +773,7 @@ def cmd_watch(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
 def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     from codeseek.errors import IndexNotFound
 
-    repos = _search_repos(args)
+    repos = _search_repos(args, discover=not args.path)
     args.repo = repos[0] if len(repos) == 1 else None
     if args.path and args.repo and Path(args.path).resolve() != Path(args.repo).resolve():
         raise InvalidQuery("name the repository once: PATH or --repo, not both")

@@ -335,6 +335,37 @@ class MultiService:
             service.close()
 
 
+WORKSPACE_FILE = "codeseek.toml"
+MAX_WORKSPACE_BYTES = 1024 * 1024  # as for codeseek.toml read as settings
+
+
+def find_workspace(start: Path, repo_root: Path | None) -> Path | None:
+    """The workspace file that governs ``start``: the nearest ``codeseek.toml`` at or
+    above it holding a ``[workspace]`` table, unless the repository ``start`` lies in
+    (``repo_root``, the folder a search of one repository would take; None: none) is
+    nearer (a workspace file in the repository's root folder itself still counts). A
+    file that is not a regular file, not UTF-8 or not TOML is passed over here (reading
+    it as settings reports it)."""
+    import tomllib
+
+    from codeseek.errors import FileRefused
+    from codeseek.safefs import read_regular_file
+
+    start = start.resolve()
+    root = None if repo_root is None else repo_root.resolve()
+    for folder in (start, *start.parents):
+        try:
+            data = tomllib.loads(read_regular_file(folder / WORKSPACE_FILE,
+                                                   MAX_WORKSPACE_BYTES).decode("utf-8"))
+        except (OSError, FileRefused, UnicodeDecodeError, tomllib.TOMLDecodeError):
+            data = {}
+        if isinstance(data.get("workspace"), dict):
+            return folder / WORKSPACE_FILE
+        if folder == root:
+            return None  # the repository is nearer than any workspace file above it
+    return None
+
+
 def workspace_repos(path: Path) -> list[Path]:
     """The repositories a workspace file lists: TOML with ``[workspace] repos = [...]``,
     each path relative to the file's folder. Raises ValueError with a one-line message

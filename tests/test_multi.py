@@ -376,3 +376,39 @@ def test_status_lists_each_repository(tmp_path: Path) -> None:
     bare.mkdir()
     code, _, err = run_cli("status", "--repo", str(first), "--repo", str(bare))
     assert code == 2 and "no index here" in err and str(bare) in err
+
+
+def test_a_workspace_file_above_the_current_folder_is_found(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """``codeseek.toml`` with ``[workspace]`` in the current folder or a parent lists the
+    repositories when no --repo is given, unless a repository is nearer."""
+    first, second = _split_sample(tmp_path)
+    (tmp_path / "codeseek.toml").write_text('[workspace]\nrepos = ["first", "second"]\n',
+                                            encoding="utf-8")
+    _, direct, _ = run_cli("search", "fare for a ride", "--repo", str(first), "--repo",
+                           str(second), "--backend", "fake", "--json", "-k", "20")
+    (tmp_path / "notes").mkdir()
+    for where in (tmp_path, tmp_path / "notes"):
+        monkeypatch.chdir(where)
+        code, out, err = run_cli("search", "fare for a ride", "--backend", "fake", "--json",
+                                 "-k", "20")
+        assert code == 0, err
+        assert out == direct
+        code, listed, _ = run_cli("status", "--json")
+        assert code == 0
+        assert [json.loads(line)["repo"] for line in listed.splitlines()] == [
+            str(first.resolve()), str(second.resolve())]
+    # inside a repository (it holds an index) the repository is nearer: one index, as before
+    monkeypatch.chdir(first / "python")
+    code, out, _ = run_cli("search", "fare for a ride", "--backend", "fake", "--json", "-k", "5")
+    assert code == 0
+    assert out.splitlines() and all("repo" not in json.loads(line) for line in out.splitlines())
+    code, one, _ = run_cli("status", "--json")
+    assert code == 0 and len(one.splitlines()) == 1
+    # an explicit repository or PATH wins over the workspace file
+    monkeypatch.chdir(tmp_path)
+    code, out, _ = run_cli("search", "fare", "--repo", str(second), "--backend", "fake",
+                           "--json", "-k", "3")
+    assert code == 0 and all("repo" not in json.loads(line) for line in out.splitlines())
+    code, one, _ = run_cli("status", str(second), "--json")
+    assert code == 0 and json.loads(one)["repo"] == str(second.resolve())
