@@ -6,7 +6,9 @@ import json
 import shutil
 import sysconfig
 from collections.abc import Iterator, Sequence
+from dataclasses import replace
 from pathlib import Path
+from typing import Any
 
 import pytest
 from test_cli import run_cli
@@ -412,3 +414,42 @@ def test_a_workspace_file_above_the_current_folder_is_found(
     assert code == 0 and all("repo" not in json.loads(line) for line in out.splitlines())
     code, one, _ = run_cli("status", str(second), "--json")
     assert code == 0 and json.loads(one)["repo"] == str(second.resolve())
+
+
+class _SearchOnly:
+    """A search service without the merge steps (as a service of another kind might be)."""
+
+    def __init__(self, index: Index) -> None:
+        self.index = index
+
+    def search_many(self, queries: Sequence[Query]) -> list[list[SearchHit]]:
+        return self.index.search_many(queries)
+
+
+class _OtherModel(_SearchOnly):
+    """The merge steps, but the index reports another model: its cosines are not
+    comparable with the other index's."""
+
+    def merge_basis(self, queries: Sequence[Query]) -> Any:
+        return replace(self.index.merge_basis(queries), model_id="another-model")
+
+    def merge_sides(self, queries: Sequence[Query], stats: Any) -> Any:
+        raise AssertionError("indexes of different models are not pooled")
+
+    def merge_hits(self, queries: Sequence[Query], picks: Any, off_topic: Any = None) -> Any:
+        raise AssertionError("indexes of different models are not pooled")
+
+
+def test_without_the_merge_steps_or_with_two_models_hits_merge_by_served_scores(
+        stdlib_halves: list[Index]) -> None:
+    _, *halves = stdlib_halves
+    queries = [Query(text=text, k=10) for text in STDLIB_QUERIES[:5]]
+    served = list(MultiService([(str(h.settings.repo), h) for h in halves],
+                               kind="served").search_many(queries))
+    shared = list(MultiService([(str(h.settings.repo), h) for h in halves]).search_many(queries))
+    assert served != shared  # the two rules differ on these queries, so the check can fail
+    first, second = halves
+    for wrap in (_SearchOnly, _OtherModel):  # the second index only: the first is as it is
+        multi = MultiService([(str(first.settings.repo), first),
+                              (str(second.settings.repo), wrap(second))])  # type: ignore[list-item]
+        assert list(multi.search_many(queries)) == served
