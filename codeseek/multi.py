@@ -20,8 +20,10 @@ each one request to each index (:class:`MergeSource`):
    as one index of the union computes it (:class:`Sides`);
 3. the pooled candidates go through ONE :func:`codeseek.fusion.fuse`, exactly
    as one index fuses its own (each side's best ``max(200, 3 k)`` of the union,
-   standardised over them), and ``merge_hits`` fetches the picked units
-   (:class:`Pick`) from their indexes.
+   standardised over them; the indexes' fusion when they share one, else the
+   default), and ``merge_hits`` fetches the picked units (:class:`Pick`) from
+   their indexes, confidences against the off-topic questions' best cosines over
+   all of them (the baseline one index of the union would have).
 
 With exact dense search (a filtered search, or an HNSW that finds the true
 nearest) the merged answer equals the union index's answer
@@ -300,18 +302,22 @@ class MultiService:
             for column in zip(*(basis.off_topic for basis in bases), strict=True)) if known]
         found = [source.merge_hits(queries, picks[position], off_topic)
                  for position, source in enumerate(sources)]
-        answers: list[list[SearchHit]] = []
-        for i, ranking in enumerate(ranked):
-            hits = {(position, hit.unit_id): hit
-                    for position in range(len(sources)) for hit in found[position][i]}
-            answer: list[SearchHit] = []
-            for position, pick in ranking:
-                hit = hits.get((position, pick.unit_id))
-                if hit is not None:  # a unit gone between the steps is left out
-                    answer.append(replace(hit, rank=len(answer) + 1, score=pick.score,
-                                          repo=self.services[position][0]))
-            answers.append(answer)
-        return answers
+        return [self._assembled(ranking, [own[i] for own in found])
+                for i, ranking in enumerate(ranked)]
+
+    def _assembled(self, ranking: Sequence[tuple[int, Pick]],
+                   found: Sequence[Sequence[SearchHit]]) -> list[SearchHit]:
+        """One query's merged hits: each index's hits (``found``) in the pooled order,
+        ranked afresh, with the merged score and the repository they come from."""
+        hits = {(position, hit.unit_id): hit
+                for position, own in enumerate(found) for hit in own}
+        answer: list[SearchHit] = []
+        for position, pick in ranking:
+            hit = hits.get((position, pick.unit_id))
+            if hit is not None:  # a unit gone between the steps is left out
+                answer.append(replace(hit, rank=len(answer) + 1, score=pick.score,
+                                      repo=self.services[position][0]))
+        return answer
 
     def neighbours(self, query: Query) -> list[SearchHit]:
         """Refused: a unit id names a unit of one index."""
