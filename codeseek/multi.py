@@ -35,7 +35,8 @@ more over each index's candidates).
 
 Each merged hit's ``score`` is the merge value and its ``repo`` the repository
 root it comes from. Neighbours and status belong to one index: they are
-refused here (:meth:`MultiService.statuses` gives each index's).
+refused here (:meth:`MultiService.neighbours_in` asks the index of a hit's
+repository, :meth:`MultiService.statuses` gives each index's).
 """
 
 from __future__ import annotations
@@ -320,8 +321,16 @@ class MultiService:
         return answer
 
     def neighbours(self, query: Query) -> list[SearchHit]:
-        """Refused: a unit id names a unit of one index."""
+        """Refused: a unit id names a unit of one index (see :meth:`neighbours_in`)."""
         raise InvalidQuery("neighbours are looked up in one repository; give one --repo")
+
+    def neighbours_in(self, repo: str, query: Query) -> list[SearchHit]:
+        """The neighbours of a unit of the repository ``repo`` (as its hits name it),
+        found in that repository's index, each hit naming it."""
+        for root, service in self.services:
+            if root == repo:
+                return [replace(hit, repo=root) for hit in service.neighbours(query)]
+        raise InvalidQuery(f"{repo}: not one of the repositories searched")
 
     def status(self) -> IndexStatus:
         """Refused: each index has its own status (see :meth:`statuses`)."""

@@ -1338,4 +1338,11 @@ async def test_several_repositories_each_hit_names_its_own(tmp_path: Path) -> No
         await wait_until(pilot, record.exists)
         assert record.read_text(encoding="utf-8").splitlines() == [
             f"+{REFUND_LINE}", str(first.resolve() / REFUND_PATH)]
+        # f3: the neighbours come from the hit's own repository, each naming it
+        source = app.hits[0]
+        await pilot.press("f3")
+        await answered(pilot, app, f"neighbours of {source.qualname}")
+        alone = searcher.services[0][1].neighbours(Query(unit_id=source.unit_id, k=40))
+        assert [h.unit_id for h in app.hits] == [h.unit_id for h in alone]
+        assert {h.repo for h in app.hits} == {str(first.resolve())}
     searcher.close()

@@ -171,5 +171,11 @@ class LocalIndexer:
 def neighbour_hits(searcher: SearchService, hit: SearchHit, k: int,
                    filters: Filters) -> list[SearchHit]:
     """``hit``'s neighbours: the k units whose meaning is nearest it, within the filters
-    (the library's ``neighbours``, in process or through the daemon)."""
-    return searcher.neighbours(Query(unit_id=hit.unit_id, k=k, filters=filters))
+    (the library's ``neighbours``, in process or through the daemon; with several
+    repositories, those of the hit's own)."""
+    from codeseek.multi import MultiService
+
+    query = Query(unit_id=hit.unit_id, k=k, filters=filters)
+    if isinstance(searcher, MultiService) and hit.repo is not None:
+        return searcher.neighbours_in(hit.repo, query)
+    return searcher.neighbours(query)
