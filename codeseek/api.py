@@ -25,6 +25,8 @@ from codeseek.adapter import (
     remove_adapter,
     save_adapter,
 )
+from codeseek.bm25 import CorpusStats
+from codeseek.confidence import Baseline
 from codeseek.config import Settings, load_settings
 from codeseek.embed import Embedder
 from codeseek.errors import (
@@ -47,6 +49,7 @@ from codeseek.indexer import (
     save_vectors,
 )
 from codeseek.locks import ReadWriteLock
+from codeseek.multi import Basis, Pick, Sides
 from codeseek.query import DEFAULT_K, Filters, Query, as_queries, filters_of
 from codeseek.scan import ScanResult, SourceFile
 from codeseek.search import DEFAULT_FUSION, Fusion, Searcher, SearchHit, neighbour_units
@@ -280,6 +283,44 @@ class Index:
             texts = [_text_of(query) for query in run]
             answers.extend(searcher.search_many(texts, run_k, run_filters))
         return answers
+
+    # -- the steps of a search across several indexes (codeseek.multi) ---------------
+
+    def merge_basis(self, queries: Sequence[Query]) -> Basis:
+        """The model, the fusion and each query's BM25 statistics of this index."""
+        searcher = self.searcher()
+        texts = [_text_of(query) for query in queries]
+        with self.lock.read():
+            stats = [searcher.corpus_stats(text) for text in texts]
+            off_topic = searcher.off_topic_best()
+        return Basis(searcher.model_id, searcher.fusion.to_json(), stats, off_topic)
+
+    def merge_sides(self, queries: Sequence[Query],
+                    stats: Sequence[CorpusStats]) -> list[Sides]:
+        """Each query's dense and keyword candidates, keyword scores under ``stats``."""
+        if len(stats) != len(queries):
+            raise InvalidQuery("one set of corpus statistics per query is needed")
+        searcher = self.searcher()
+        answers: list[Sides] = []
+        at = 0
+        for (run_k, run_filters), run in groupby(queries, key=lambda q: (q.k, q.filters)):
+            texts = [_text_of(query) for query in run]
+            answers.extend(searcher.sides(texts, run_k, run_filters,
+                                          stats[at:at + len(texts)]))
+            at += len(texts)
+        return answers
+
+    def merge_hits(self, queries: Sequence[Query], picks: Sequence[Sequence[Pick]],
+                   off_topic: Sequence[float] | None = None) -> list[list[SearchHit]]:
+        """Each query's picked units of this index as hits, in the order given; their
+        confidences against the off-topic questions' best cosines given (default: this
+        index's own)."""
+        if len(picks) != len(queries):
+            raise InvalidQuery("one list of picked units per query is needed")
+        searcher = self.searcher()
+        baseline = None if off_topic is None else Baseline.of(off_topic)
+        return [searcher.picked(_text_of(query), chosen, baseline)
+                for query, chosen in zip(queries, picks, strict=True)]
 
     # -- recall checks and tuning ------------------------------------------------------
 

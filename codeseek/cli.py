@@ -38,6 +38,7 @@ if TYPE_CHECKING:
     from codeseek.indexer import UpdateSummary
     from codeseek.search import SearchHit
     from codeseek.service import SearchService
+    from codeseek.tui.app import CodeseekApp
 
 EXIT_OK = 0
 EXIT_ERROR = 1
@@ -109,12 +110,7 @@ def _search_parser(commands: Any) -> None:
                                  description="Rank the functions, methods and classes that "
                                              "match a natural-language query.")
     search.add_argument("query", nargs="?", metavar="QUERY", help="what you are looking for")
-    search.add_argument("--repo", action="append", dest="repos", default=[], metavar="PATH",
-                        help="repository root (default: the current folder's repository); "
-                             "repeat it to search several repositories at once")
-    search.add_argument("--workspace", metavar="FILE",
-                        help="search the repositories a TOML file lists "
-                             "([workspace] repos = [...], paths relative to the file)")
+    _several_repos_options(search, "search")
     search.add_argument("-k", type=int, default=10, metavar="N",
                         help="number of results (default: 10)")
     search.add_argument("--language", action="append", dest="languages", default=[],
@@ -143,14 +139,27 @@ def _search_parser(commands: Any) -> None:
     _common_index_options(search, tier=True)
 
 
+def _several_repos_options(parser: argparse.ArgumentParser, verb: str) -> None:
+    parser.add_argument("--repo", action="append", dest="repos", default=[], metavar="PATH",
+                        help="repository root (default: the current folder's repository); "
+                             f"repeat it to {verb} several repositories at once")
+    parser.add_argument("--workspace", metavar="FILE",
+                        help=f"{verb} the repositories a TOML file lists "
+                             "([workspace] repos = [...], paths relative to the file; "
+                             "default: a codeseek.toml holding [workspace] at or above the "
+                             "current folder, when no repository is nearer)")
+
+
 def _status_parser(commands: Any) -> None:
     status = commands.add_parser("status", help="what the index holds and how fresh it is",
                                  description="Show what the index holds, what was left out "
                                              "and why, and whether it is up to date.")
     status.add_argument("path", nargs="?", default=None, metavar="PATH",
                         help="repository root (default: the current folder's repository)")
+    _several_repos_options(status, "show")
     _common_index_options(status, model=False)
-    status.add_argument("--json", action="store_true", help="one JSON object")
+    status.add_argument("--json", action="store_true",
+                        help="one JSON object (one line per repository when several)")
     status.add_argument("--skipped", action="store_true",
                         help="list the files left out, one `path  reason` line each "
                              "(with --json: a skipped_files list)")
@@ -184,7 +193,7 @@ def _ui_parser(commands: Any) -> None:
                                          "it in your editor ($VISUAL or $EDITOR).")
     ui.add_argument("path", nargs="?", default=None, metavar="PATH",
                     help="repository root (default: the current folder's repository)")
-    ui.add_argument("--repo", metavar="PATH", help="repository root (the same as PATH)")
+    _several_repos_options(ui, "search")
     _common_index_options(ui)
 
 
@@ -234,14 +243,21 @@ def _connect(repo: str | None, args: argparse.Namespace, err: TextIO) -> SearchS
         raise IndexNotFound(f"{exc}{NO_INDEX_HINT}") from exc
 
 
-def _search_repos(args: argparse.Namespace) -> list[str]:
-    """The repositories ``search`` asks: the ``--repo`` options, then a workspace's."""
-    repos = list(args.repos)
-    if args.workspace is not None:
-        from codeseek.multi import workspace_repos
+def _search_repos(args: argparse.Namespace, discover: bool = True) -> list[str]:
+    """The repositories ``search`` asks: the ``--repo`` options, then a workspace's
+    (``--workspace``; with neither, and ``discover``, the workspace file found at or above
+    the current folder when no repository is nearer: :func:`codeseek.multi.find_workspace`)."""
+    from codeseek.multi import find_workspace, workspace_repos
 
+    repos = list(args.repos)
+    workspace = None if args.workspace is None else Path(args.workspace)
+    if workspace is None and not repos and discover:
+        root = find_repo_root(Path.cwd())
+        marked = (root / ".codeseek").is_dir() or (root / ".git").exists()
+        workspace = find_workspace(Path.cwd(), root if marked else None)
+    if workspace is not None:
         try:
-            repos += [str(path) for path in workspace_repos(Path(args.workspace))]
+            repos += [str(path) for path in workspace_repos(workspace)]
         except ValueError as exc:
             raise UsageError(str(exc)) from exc
     if len(repos) > 1 and args.index_dir is not None:
@@ -635,28 +651,46 @@ def _clip(text: str, width: int) -> str:
 
 
 def cmd_status(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    from codeseek.errors import IndexNotFound
     from codeseek.service import daemon_status
 
-    with _open(args.path, args, create=False) as index:
-        status = index.status()
-        skipped = index.skipped_files() if args.skipped else None
-    daemon = daemon_status(_root(args.path), index_dir=args.index_dir)
-    if args.json:
-        record = status.to_json()
-        record["daemon"] = daemon
-        if skipped is not None:
-            record["skipped_files"] = [{**json_path(p), "reason": r} for p, r in skipped]
-        out.write(json.dumps(record, ensure_ascii=False) + "\n")
-    elif skipped is not None:
-        out.write(format_skipped(skipped))
-    else:
-        out.write(format_status(status, daemon))
+    repos = ([args.path] if args.path else []) + _search_repos(args, discover=not args.path)
+    several = len(repos) > 1 or args.workspace is not None
+    if several and args.index_dir is not None:
+        raise UsageError("--index-dir names one index; give it with one --repo")
+    reports = []
+    for repo in repos or [None]:
+        if several and not Path(repo or ".").is_dir():
+            raise UsageError(f"{printable(str(repo))}: no such repository folder")
+        try:
+            with _open(repo, args, create=False) as index:
+                reports.append((index.status(),
+                                index.skipped_files() if args.skipped else None,
+                                daemon_status(_root(repo), index_dir=args.index_dir)))
+        except IndexNotFound as exc:
+            if not several:
+                raise
+            raise UsageError(f"{printable(str(repo))}: no index here; run codeseek index "
+                             f"{printable(str(repo))} first") from exc
+    for number, (status, skipped, daemon) in enumerate(reports):
+        if args.json:
+            record = status.to_json()
+            record["daemon"] = daemon
+            if skipped is not None:
+                record["skipped_files"] = [{**json_path(p), "reason": r} for p, r in skipped]
+            out.write(json.dumps(record, ensure_ascii=False) + "\n")
+        elif skipped is not None:
+            out.write(format_skipped(skipped, status.repo if several else None))
+        else:
+            out.write(("\n" if number else "") + format_status(status, daemon))
     return EXIT_OK
 
 
-def format_skipped(skipped: Sequence[tuple[str, str]]) -> str:
-    """``status --skipped``: one ``path  reason`` line per file left out."""
-    return "".join(f"{printable(path)}  {reason}\n" for path, reason in skipped)
+def format_skipped(skipped: Sequence[tuple[str, str]], repo: str | None = None) -> str:
+    """``status --skipped``: one ``path  reason`` line per file left out (each path under
+    ``repo`` when given: several repositories are listed)."""
+    return "".join(f"{printable(path if repo is None else str(Path(repo) / path))}  {reason}\n"
+                   for path, reason in skipped)
 
 
 def format_status(status: IndexStatus, daemon: dict[str, Any] | None) -> str:
@@ -753,6 +787,8 @@ def cmd_watch(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
 def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     from codeseek.errors import IndexNotFound
 
+    repos = _search_repos(args, discover=not args.path)
+    args.repo = repos[0] if len(repos) == 1 else None
     if args.path and args.repo and Path(args.path).resolve() != Path(args.repo).resolve():
         raise InvalidQuery("name the repository once: PATH or --repo, not both")
     if not (sys.stdin.isatty() and sys.stdout.isatty()):
@@ -763,6 +799,10 @@ def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     from codeseek.tui.app import CodeseekApp
     from codeseek.tui.backend import LocalIndexer
 
+    if len(repos) > 1:
+        # several repositories: each answered by its daemon or in process, no builder
+        # (index each with `codeseek index`); each hit names its repository
+        return _run_ui(CodeseekApp(_connect_all(repos, args, err), builder=None), out)
     chosen = args.repo or args.path
     root = Path(chosen) if chosen else find_repo_root(Path.cwd())
     if not root.is_dir():
@@ -778,7 +818,10 @@ def cmd_ui(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
         searcher = None
     if searcher is not None and searcher.daemon_status() is not None:
         builder = None  # a running daemon answers, warm, and keeps the index fresh
-    app = CodeseekApp(searcher, repo=root.resolve(), builder=builder)
+    return _run_ui(CodeseekApp(searcher, repo=root.resolve(), builder=builder), out)
+
+
+def _run_ui(app: CodeseekApp, out: TextIO) -> int:
     try:
         app.run()
     finally:

@@ -25,16 +25,20 @@ import socket
 from collections.abc import Callable, Iterator, Sequence
 from dataclasses import replace
 from pathlib import Path
-from typing import TYPE_CHECKING, Any
+from typing import TYPE_CHECKING, Any, TypeVar
 
 from codeseek import errors, safefs
+from codeseek.bm25 import CorpusStats
 from codeseek.errors import CodeseekError, DaemonError
 from codeseek.hits import SearchHit
+from codeseek.multi import Basis, Pick, Sides
 from codeseek.query import DEFAULT_K, Filters, Query, as_queries, filters_of
 from codeseek.service import IndexStatus, Notice
 
 if TYPE_CHECKING:
     from codeseek.api import Index
+
+T = TypeVar("T")
 
 PROTOCOL_VERSION = 2
 SOCKET_NAME = "daemon.sock"
@@ -50,6 +54,9 @@ MAX_K = 2**31 - 1  # no index holds this many units, so a larger k has the same 
 QUERIES_PER_REQUEST = 250
 REQUEST_BYTES = 1024 * 1024
 HITS_PER_REQUEST = 10_000
+# A search across repositories sends its three steps (codeseek.multi) in chunks of this
+# many queries: each query's candidates are up to 2 x 200 pairs, so an answer stays small.
+MERGE_QUERIES_PER_REQUEST = 50
 
 
 class DaemonUnavailable(Exception):
@@ -142,6 +149,57 @@ class DaemonClient:
                               "(its answer does not match the request); see its log, or "
                               "stop it to search without it")
         return [SearchHit(**hit) for hit in results[0]]
+
+    def merge_basis(self, queries: Sequence[Query]) -> Basis:
+        """The first step of a search across several repositories (:mod:`codeseek.multi`):
+        the index's model, fusion, off-topic cosines and each query's BM25 statistics."""
+        answers = self._merge_exchange("merge_basis", queries, lambda start, end: {})
+        bases = [Basis.from_json(answer.get("basis")) for answer in answers]
+        return replace(bases[0], stats=[s for basis in bases for s in basis.stats])
+
+    def merge_sides(self, queries: Sequence[Query],
+                    stats: Sequence[CorpusStats]) -> list[Sides]:
+        """The second step: each query's candidates, keyword scores under ``stats``."""
+        answers = self._merge_exchange(
+            "merge_sides", queries,
+            lambda start, end: {"stats": [s.to_json() for s in stats[start:end]]})
+        return [Sides.from_json(item) for answer in answers
+                for item in _results(answer, answer["_count"])]
+
+    def merge_hits(self, queries: Sequence[Query], picks: Sequence[Sequence[Pick]],
+                   off_topic: Sequence[float] | None = None) -> list[list[SearchHit]]:
+        """The last step: each query's picked units as hits."""
+        def extra(start: int, end: int) -> dict[str, Any]:
+            return {"picks": [[p.to_json() for p in chosen] for chosen in picks[start:end]],
+                    "off_topic": None if off_topic is None else list(off_topic)}
+
+        answers = self._merge_exchange("merge_hits", queries, extra)
+        try:
+            return [[SearchHit(**hit) for hit in hits] for answer in answers
+                    for hits in _results(answer, answer["_count"])]
+        except TypeError as exc:
+            raise DaemonError(f"the codeseek daemon on {self.socket_path} failed to answer "
+                              "(its answer holds hits of another form)") from exc
+
+    def _merge_exchange(self, op: str, queries: Sequence[Query],
+                        extra: Callable[[int, int], dict[str, Any]]) -> list[dict[str, Any]]:
+        """One request per chunk of MERGE_QUERIES_PER_REQUEST queries, on one connection;
+        each answer is marked with its chunk's query count (``_count``)."""
+        requests = []
+        for start in range(0, len(queries), MERGE_QUERIES_PER_REQUEST):
+            end = min(start + MERGE_QUERIES_PER_REQUEST, len(queries))
+            request = {"op": op, "queries": [_sent(q).to_json() for q in queries[start:end]],
+                       **extra(start, end)}
+            if len(json.dumps({"v": PROTOCOL_VERSION, **request})) + 1 > MAX_REQUEST_BYTES:
+                raise TooLargeForDaemon(f"a {op} request is larger than a daemon request "
+                                        f"may be ({MAX_REQUEST_BYTES:,} bytes)")
+            requests.append((request, end - start))
+        connection = self.connect()
+        try:
+            return [{**connection.exchange(request), "_count": count}
+                    for request, count in requests]
+        finally:
+            connection.close()
 
     def status(self) -> dict[str, Any]:
         """The daemon's status response."""
@@ -246,6 +304,15 @@ def search_requests(queries: Sequence[Query]) -> list[dict[str, Any]]:
     return requests
 
 
+def _results(answer: dict[str, Any], count: int) -> list[Any]:
+    """An answer's ``results``, checked to hold one entry per query asked."""
+    results = answer.get("results")
+    if not isinstance(results, list) or len(results) != count:
+        raise DaemonError("the codeseek daemon failed to answer (its answer does not match "
+                          "the request); see its log, or stop it to search without it")
+    return results
+
+
 def _answers(connection: Connection, requests: list[dict[str, Any]]
              ) -> Iterator[list[SearchHit]]:
     try:
@@ -314,6 +381,36 @@ class DaemonService:
             except DaemonUnavailable:
                 self.gone = True
         return self.index.neighbours(query)
+
+    def merge_basis(self, queries: Sequence[Query]) -> Basis:
+        """The first step of a search across repositories, by the daemon."""
+        return self._either(lambda: self.client.merge_basis(queries),
+                            lambda index: index.merge_basis(queries))
+
+    def merge_sides(self, queries: Sequence[Query],
+                    stats: Sequence[CorpusStats]) -> list[Sides]:
+        """The second step of a search across repositories, by the daemon."""
+        return self._either(lambda: self.client.merge_sides(queries, stats),
+                            lambda index: index.merge_sides(queries, stats))
+
+    def merge_hits(self, queries: Sequence[Query], picks: Sequence[Sequence[Pick]],
+                   off_topic: Sequence[float] | None = None) -> list[list[SearchHit]]:
+        """The last step of a search across repositories, by the daemon."""
+        return self._either(lambda: self.client.merge_hits(queries, picks, off_topic),
+                            lambda index: index.merge_hits(queries, picks, off_topic))
+
+    def _either(self, remote: Callable[[], T], local: Callable[[Index], T]) -> T:
+        """The daemon's answer; the index's in process when none listens (or the request
+        is too large for one, said to ``notice``)."""
+        if not self.gone:
+            try:
+                return remote()
+            except TooLargeForDaemon as exc:
+                if self.notice is not None:
+                    self.notice(f"codeseek: {exc}; answering in this process")
+            except DaemonUnavailable:
+                self.gone = True
+        return local(self.index)
 
     def status(self) -> IndexStatus:
         """The index's status, as the daemon reports it."""

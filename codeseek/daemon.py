@@ -22,6 +22,14 @@ Requests:
 * ``{"v": 2, "op": "neighbours", "query": query}`` -> the neighbours of the
   query's unit (the units whose meaning is nearest its own), as ``results``
 * ``{"v": 2, "op": "status"}`` -> ``{"v": 2, "ok": true, "index": {...}, "daemon": {...}}``
+* the three steps of a search across several repositories (:mod:`codeseek.multi`; a
+  client fans out to one daemon per repository):
+  ``{"v": 2, "op": "merge_basis", "queries": [...]}`` -> ``"basis"``: the JSON of a
+  :class:`~codeseek.multi.Basis`; ``{"op": "merge_sides", "queries": [...], "stats":
+  [...]}`` (one :class:`~codeseek.bm25.CorpusStats` per query) -> ``"results"``: one
+  :class:`~codeseek.multi.Sides` per query; ``{"op": "merge_hits", "queries": [...],
+  "picks": [[pick, ...], ...], "off_topic": [cosine, ...]}`` (``pick``: the JSON of a
+  :class:`~codeseek.multi.Pick`) -> ``"results"``: hits, as ``search`` gives them
 * ``{"v": 2, "op": "shutdown"}`` -> ``{"v": 2, "ok": true}``
 
 An error is ``{"v": 2, "ok": false, "error": "...", "kind": "InvalidQuery"}``, its
@@ -55,6 +63,7 @@ from typing import Any
 
 from codeseek import safefs
 from codeseek.api import Index
+from codeseek.bm25 import CorpusStats
 from codeseek.client import (
     CLIENT_TIMEOUT,
     MAX_K,
@@ -65,10 +74,12 @@ from codeseek.client import (
 )
 from codeseek.display import printable
 from codeseek.errors import CodeseekError, IndexLocked
+from codeseek.multi import Pick
 from codeseek.query import Query
 from codeseek.watch import RECONCILE_SECONDS, Watcher
 
 LOCK_NAME = "daemon.lock"
+MERGE_OPS = ("merge_basis", "merge_sides", "merge_hits")
 INT64 = range(-(2**63), 2**63)  # what SQLite and the index's ids can hold
 UNCHECKED_TEXT = frozenset({"paths"})  # patterns may name files whose names are not UTF-8
 
@@ -122,6 +133,13 @@ def _queries(request: dict[str, Any]) -> list[Query]:
     if not isinstance(value, list) or not 1 <= len(value) <= MAX_QUERIES:
         raise ValueError(f"'queries' must be a list of 1 to {MAX_QUERIES} queries")
     return [_checked(Query.from_json(item)) for item in value]
+
+
+def _per_query(request: dict[str, Any], field: str, count: int) -> list[Any]:
+    value = request.get(field)
+    if not isinstance(value, list) or len(value) != count:
+        raise ValueError(f"'{field}' must be a list with one entry per query")
+    return value
 
 
 def _checked(query: Query) -> Query:
@@ -311,10 +329,13 @@ class Daemon:
                         "daemon": self.daemon_status()}
             if op == "shutdown":
                 return {"v": PROTOCOL_VERSION, "ok": True, "op": "shutdown"}
+            if op in MERGE_OPS:
+                return self._merge_step(op, request)
         except ValueError as exc:
             return _error(f"malformed request: {exc}")
         except CodeseekError as exc:
             return _error(str(exc), type(exc).__name__)
+        # the merge steps are a client's, not named to people
         return _error(f"unknown op {op!r}; use search, neighbours, status or shutdown")
 
     def _search(self, request: dict[str, Any]) -> dict[str, Any]:
@@ -323,6 +344,31 @@ class Daemon:
         self.queries_served += len(queries)
         return {"v": PROTOCOL_VERSION, "ok": True,
                 "results": [[dataclasses.asdict(hit) for hit in hits] for hits in results]}
+
+    def _merge_step(self, op: str, request: dict[str, Any]) -> dict[str, Any]:
+        queries = _queries(request)
+        if op == "merge_basis":
+            basis = self.index.merge_basis(queries)
+            return {"v": PROTOCOL_VERSION, "ok": True, "basis": basis.to_json()}
+        if op == "merge_sides":
+            stats = _per_query(request, "stats", len(queries))
+            sides = self.index.merge_sides(queries, [CorpusStats.from_json(s) for s in stats])
+            self.queries_served += len(queries)
+            return {"v": PROTOCOL_VERSION, "ok": True,
+                    "results": [side.to_json() for side in sides]}
+        picks = _per_query(request, "picks", len(queries))
+        off_topic = request.get("off_topic")
+        if off_topic is not None and (not isinstance(off_topic, list) or not all(
+                isinstance(c, int | float) and not isinstance(c, bool) for c in off_topic)):
+            raise ValueError("'off_topic' must be a list of cosines")
+        chosen = []
+        for item in picks:
+            if not isinstance(item, list):
+                raise ValueError("'picks' holds one list of picks per query")
+            chosen.append([Pick.from_json(pick) for pick in item])
+        hits = self.index.merge_hits(queries, chosen, off_topic)
+        return {"v": PROTOCOL_VERSION, "ok": True,
+                "results": [[dataclasses.asdict(hit) for hit in answer] for answer in hits]}
 
     def _neighbours(self, request: dict[str, Any]) -> dict[str, Any]:
         query = _checked(Query.from_json(request.get("query")))

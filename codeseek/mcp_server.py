@@ -8,7 +8,9 @@ optional ``mcp`` extra) is imported only when the server is built, so
 Four tools, each answering with a compact text form and structured content:
 
 - ``search``: the units that match a query (the JSON Lines fields of
-  ``codeseek search --json``, snippets capped).
+  ``codeseek search --json``, snippets capped); with several repositories served
+  and no ``repo`` given, all of them, their hits ranked together
+  (:class:`codeseek.multi.MultiService`), each line and record naming its ``repo``.
 - ``neighbours``: the units whose meaning is nearest a unit named by
   ``path`` and ``qualname`` or ``line``.
 - ``outline``: the units of one file of a repository, read with the index's
@@ -67,10 +69,10 @@ _K = {"type": "integer", "minimum": 1, "maximum": MAX_K, "default": DEFAULT_K,
       "description": f"how many results (1 to {MAX_K})"}
 
 
-def _schema(properties: dict[str, Any], required: Sequence[str], repos: Sequence[str]
+def _schema(properties: dict[str, Any], required: Sequence[str], repos: Sequence[str],
+            which: str = "which repository (needed when several are served)"
             ) -> dict[str, Any]:
-    repo: dict[str, Any] = {"type": "string",
-                            "description": "which repository (needed when several are served)"}
+    repo: dict[str, Any] = {"type": "string", "description": which}
     if len(repos) > 1:
         repo["enum"] = list(repos)
     return {"type": "object", "properties": {**properties, "repo": repo},
@@ -86,7 +88,9 @@ def tool_specs(repos: Sequence[str]) -> list[dict[str, Any]]:
                         "first.",
          "inputSchema": _schema({"query": {"type": "string", "minLength": 1,
                                            "description": "what the code does, in plain words"},
-                                 "k": _K, **_FILTERS}, ["query"], repos)},
+                                 "k": _K, **_FILTERS}, ["query"], repos,
+                                "which repository (default: every served one, their hits "
+                                "ranked together, each naming its repo)")},
         {"name": "neighbours",
          "description": "Find the units whose meaning is nearest a given unit, named by its "
                         "file path and qualified name or a line inside it.",
@@ -260,8 +264,10 @@ class Tools:
             _check_names(name, args, spec["inputSchema"])
             try:
                 return handler(args)
-            except DaemonUnavailable:
-                self._repo(args).service(fresh=True)  # the daemon stopped: choose again
+            except DaemonUnavailable:  # the daemon stopped: choose again
+                several = "repo" not in args and len(self.repositories) > 1
+                for repo in self.repositories if several else [self._repo(args)]:
+                    repo.service(fresh=True)
                 return handler(args)
         except (CodeseekError, DaemonUnavailable) as exc:
             return ToolAnswer(f"error: {printable(str(exc))}", None, is_error=True)
@@ -316,10 +322,28 @@ class Tools:
             raise InvalidQuery(f"the query is not valid UTF-8 text: {printable(query)} "
                                f"(character {exc.start + 1})") from None
         k = _k(args)
+        if "repo" not in args and len(self.repositories) > 1:
+            return self._search_all(Query(text=query, k=k,
+                                          filters=self._filters(args, self.repositories[0])))
         repo = self._repo(args)
         filters = self._filters(args, repo)
         hits = repo.service().search(Query(text=query, k=k, filters=filters))
         return _hits_answer(repo, hits, f"no unit matches {printable(repr(query))}")
+
+    def _search_all(self, query: Query) -> ToolAnswer:
+        """One query over every served repository, their hits merged into one ranking
+        (:class:`codeseek.multi.MultiService`), each hit naming its repository (path
+        patterns are relative to each repository's root, so the same for all)."""
+        from codeseek.multi import MultiService
+
+        merged = MultiService([(repo.name, repo.service()) for repo in self.repositories])
+        hits = merged.search(query)  # not closed: the repositories keep their services
+        text = "\n".join(f"[{printable(str(h.repo))}] " + _unit_line(
+            h.path, h.start_line, h.end_line, h.kind, h.qualname, h.score, h.doc_summary)
+            for h in hits)
+        return ToolAnswer(text or f"no unit matches {printable(repr(query.text))}",
+                          {"repos": [repo.name for repo in self.repositories],
+                           "results": [hit_record(h) for h in hits]})
 
     def _neighbours(self, args: dict[str, Any]) -> ToolAnswer:
         k = _k(args)

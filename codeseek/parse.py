@@ -18,6 +18,7 @@ deeply nested input cannot make the unit list grow with the square of its size.
 from __future__ import annotations
 
 import re
+import threading
 import time
 from collections import Counter
 from collections.abc import Callable
@@ -73,11 +74,19 @@ def _key(node: tree_sitter.Node) -> tuple[int, int, int]:
     return (node.start_byte, node.end_byte, node.kind_id)
 
 
-@cache
+_PARSERS = threading.local()  # a tree-sitter parser is not safe to share between threads
+
+
 def _parser(spec: LanguageSpec) -> tree_sitter.Parser:
+    """This thread's parser for the language (two daemons' watchers, or a watcher and
+    a build, parse at once; one shared parser crashed the process)."""
     import tree_sitter
 
-    return tree_sitter.Parser(spec.language())
+    parsers: dict[LanguageSpec, tree_sitter.Parser] = _PARSERS.__dict__.setdefault("by", {})
+    parser = parsers.get(spec)
+    if parser is None:
+        parser = parsers[spec] = tree_sitter.Parser(spec.language())
+    return parser
 
 
 @cache

@@ -19,36 +19,38 @@ from __future__ import annotations
 
 import re
 from collections.abc import Sequence
-from dataclasses import dataclass, replace
+from dataclasses import replace
 
 import numpy as np
 import pathspec
 
+from codeseek import bm25
 from codeseek.adapter import QueryAdapter
+from codeseek.bm25 import CorpusStats
 from codeseek.client import MAX_K
 from codeseek.confidence import OFF_TOPIC_QUERIES, Baseline
 from codeseek.embed import Embedder
 from codeseek.errors import InvalidQuery
+from codeseek.fusion import (  # noqa: F401 - the fusion names search has always given
+    CANDIDATES,
+    DEFAULT_FUSION,
+    DENSE_WEIGHT,
+    FUSION_KIND,
+    FUSION_KINDS,
+    RRF_K,
+    Candidates,
+    Fusion,
+    fuse,
+)
 from codeseek.hits import SearchHit
 from codeseek.locks import ReadWriteLock
+from codeseek.multi import Pick, Sides
 from codeseek.query import Filters
 from codeseek.store import Store, StoredUnit
 from codeseek.tiers import tier_of
 from codeseek.units import CodeUnit, split_identifier
 from codeseek.vectors import VectorIndex, exact_search
 
-# The served fusion: each side's scores standardised over its candidates, then weighted
-# 0.6 dense, 0.4 keywords. Kind and weight were chosen on the training splits of the recall
-# checks of the standard library, sample_repo and three packaged repositories the tests read
-# (scripts/bench_quality.py prints every rule's training and held-out figures); `codeseek
-# tune` chooses the weight per repository. RRF_K is the rank offset of the ``rrf`` rule
-# (the original reciprocal rank fusion paper used 60, from memory; 5 did better here).
-FUSION_KIND = "zscore"
-RRF_K = 5
-DENSE_WEIGHT = 0.6
-# Each side's best CANDIDATES are fused: 200 rather than 100 or 300 by the same training
-# splits (scripts/bench_quality.py, stage "candidates").
-CANDIDATES = 200
 EXACT_FILTER_LIMIT = 50_000
 SNIPPET_LINES = 8
 NEIGHBOURS_OF = "neighbours of "
@@ -61,118 +63,19 @@ STOPWORDS = frozenset({
 })
 
 
-def lexical_match(query: str) -> str:
-    """An FTS5 MATCH expression: the query's words (identifiers split), OR-ed."""
+def lexical_phrases(query: str) -> list[str]:
+    """The query's words (identifiers split) as quoted FTS5 phrases, in order."""
     words: list[str] = []
     for token in re.findall(r"[A-Za-z0-9_]+", query):
         for word in [token.lower(), *split_identifier(token)]:
             if word not in STOPWORDS and word not in words and len(word) > 1:
                 words.append(word)
-    return " OR ".join(f'"{w}"' for w in words)
+    return [f'"{w}"' for w in words]
 
 
-Candidates = Sequence[tuple[int, float]]
-"""(unit id, score) pairs, best first: cosines for the dense side, BM25 for the lexical."""
-
-
-@dataclass(frozen=True)
-class Fusion:
-    """How the dense and lexical candidate lists become one ranking.
-
-    Attributes:
-        kind: ``rrf`` (reciprocal rank fusion: a unit scores ``weight / (rrf_k +
-            rank)`` on each side it appears in), ``zscore`` (each side's scores in
-            standard deviations over its candidates, counted from the worst, then
-            a weighted sum; a unit missing from a side gets 0 there) or
-            ``linear`` (the same with scores scaled to [0, 1]).
-        dense_weight: the dense side's weight in [0, 1]; the lexical side gets
-            ``1 - dense_weight``.
-        rrf_k: the rank offset of ``rrf``.
-    """
-
-    kind: str = FUSION_KIND
-    dense_weight: float = DENSE_WEIGHT
-    rrf_k: float = RRF_K
-
-    def to_json(self) -> dict[str, object]:
-        """A JSON-ready dict."""
-        return {"kind": self.kind, "dense_weight": self.dense_weight, "rrf_k": self.rrf_k}
-
-    @classmethod
-    def from_json(cls, data: dict[str, object]) -> Fusion:
-        """The fusion a :meth:`to_json` dict describes."""
-        kind = str(data.get("kind", FUSION_KIND))
-        if kind not in FUSION_KINDS:
-            raise ValueError(f"unknown fusion kind {kind!r}")
-        weight = data.get("dense_weight", DENSE_WEIGHT)
-        rrf_k = data.get("rrf_k", RRF_K)
-        if not isinstance(weight, int | float) or not isinstance(rrf_k, int | float):
-            raise ValueError("fusion weights must be numbers")
-        return cls(kind, float(weight), float(rrf_k))
-
-
-def _rrf_scores(dense: Candidates, lexical: Candidates, fusion: Fusion) -> dict[int, float]:
-    fused: dict[int, float] = {}
-    for weight, side in ((fusion.dense_weight, dense), (1.0 - fusion.dense_weight, lexical)):
-        for rank, (item, _) in enumerate(side, 1):
-            fused[item] = fused.get(item, 0.0) + weight / (fusion.rrf_k + rank)
-    return fused
-
-
-def _unit_scaled(side: Candidates) -> dict[int, float]:
-    """Scores mapped to [0, 1] over one candidate list (best 1, worst 0)."""
-    if not side:
-        return {}
-    scores = [score for _, score in side]
-    low, high = min(scores), max(scores)
-    span = high - low
-    return {item: (score - low) / span if span > 0 else 1.0 for item, score in side}
-
-
-def _standardised(side: Candidates) -> dict[int, float]:
-    """Scores in standard deviations above the candidate list's worst (a flat list: 0)."""
-    if not side:
-        return {}
-    scores = np.array([score for _, score in side], dtype=np.float64)
-    spread = float(scores.std())
-    if spread == 0:
-        return {item: 0.0 for item, _ in side}
-    values = (scores - scores.min()) / spread
-    return {item: float(value) for (item, _), value in zip(side, values, strict=True)}
-
-
-def _weighted_sum(dense: dict[int, float], lexical: dict[int, float],
-                  fusion: Fusion) -> dict[int, float]:
-    fused: dict[int, float] = {}
-    for weight, side in ((fusion.dense_weight, dense), (1.0 - fusion.dense_weight, lexical)):
-        for item, value in side.items():
-            fused[item] = fused.get(item, 0.0) + weight * value
-    return fused
-
-
-def _linear_scores(dense: Candidates, lexical: Candidates, fusion: Fusion) -> dict[int, float]:
-    return _weighted_sum(_unit_scaled(dense), _unit_scaled(lexical), fusion)
-
-
-def _zscore_scores(dense: Candidates, lexical: Candidates, fusion: Fusion) -> dict[int, float]:
-    return _weighted_sum(_standardised(dense), _standardised(lexical), fusion)
-
-
-_FUSERS = {"rrf": _rrf_scores, "linear": _linear_scores, "zscore": _zscore_scores}
-FUSION_KINDS = tuple(_FUSERS)
-DEFAULT_FUSION = Fusion()
-
-
-def fuse(dense: Candidates, lexical: Candidates,
-         fusion: Fusion = DEFAULT_FUSION) -> list[tuple[int, float]]:
-    """The served ranking: (unit id, fused score) of every candidate, best first.
-
-    Ties go to the higher cosine, then to the lower id, so the order is total.
-    """
-    fused = _FUSERS[fusion.kind](dense, lexical, fusion)
-    similarity = dict(dense)
-    order = sorted(fused, key=lambda i: (-fused[i], -similarity.get(i, -2.0), i))
-    return [(item, fused[item]) for item in order]
+def lexical_match(query: str) -> str:
+    """An FTS5 MATCH expression: the query's words (identifiers split), OR-ed."""
+    return " OR ".join(lexical_phrases(query))
 
 
 def snippet_of(unit: CodeUnit, lines: int = SNIPPET_LINES) -> str:
@@ -198,17 +101,27 @@ class Searcher:
         self.adapter = adapter
         self.fusion = fusion or DEFAULT_FUSION
         self.tier = tier_of(model_id)  # every stored vector searched is of this tier
-        self._baseline: tuple[object, Baseline] | None = None
+        self._baseline: tuple[object, list[float | None], Baseline] | None = None
 
     def baseline(self) -> Baseline:
         """The off-topic questions' best cosines on this index state (computed once per
         store generation, vector index and adapter; the caller holds the read lock)."""
+        self.off_topic_best()
+        assert self._baseline is not None
+        return self._baseline[2]
+
+    def off_topic_best(self) -> list[float | None]:
+        """Each off-topic question's best cosine on this index state, in the order of
+        :data:`~codeseek.confidence.OFF_TOPIC_QUERIES` (None: an empty index); the
+        caller holds the read lock. A search across several indexes takes the best of
+        each question over them all: the baseline of one index of their union."""
         key = (self.store.generation(), id(self.vectors), id(self.adapter))
         if self._baseline is None or self._baseline[0] != key:
             matrix = self.query_vectors(OFF_TOPIC_QUERIES)
-            best = [hits[0][1] for hits in (self.vectors.search(v, 1) for v in matrix) if hits]
-            self._baseline = (key, Baseline.of(best))
-        return self._baseline[1]
+            best = [hits[0][1] if hits else None
+                    for hits in (self.vectors.search(v, 1) for v in matrix)]
+            self._baseline = (key, best, Baseline.of([c for c in best if c is not None]))
+        return list(self._baseline[1])
 
     def search(self, query: str, k: int = 10, filters: Filters | None = None) -> list[SearchHit]:
         """The k best units for one query."""
@@ -217,12 +130,7 @@ class Searcher:
     def search_many(self, queries: Sequence[str], k: int = 10,
                     filters: Filters | None = None) -> list[list[SearchHit]]:
         """The k best units for each query (queries are embedded in one batch)."""
-        filters = (filters or Filters()).normalised()
-        if k <= 0:
-            raise InvalidQuery(f"-k must be at least 1, not {k}")
-        for query in queries:
-            if not query.strip():
-                raise InvalidQuery("the query is empty; type what you are looking for")
+        filters = _checked(queries, k, filters)
         matrix = self.query_vectors(queries)
         with self.lock.read():  # one committed state for the whole answer
             pool = self._filtered_pool(filters)
@@ -263,6 +171,80 @@ class Searcher:
         hits = self.store.lexical_search(lexical_match(query), -1)  # -1: SQLite's no limit
         return [h for h in hits if h[0] in pool][:n]
 
+    def corpus_stats(self, query: str) -> CorpusStats:
+        """This index's BM25 statistics for the query's phrases (the caller holds the
+        read lock): what a search across several indexes sums to score them as one."""
+        rows, tokens = self.store.lexical_totals()
+        return CorpusStats(rows, tokens, tuple(self.store.phrase_count(phrase)
+                                               for phrase in lexical_phrases(query)))
+
+    def shared_lexical(self, query: str, stats: CorpusStats, n: int,
+                       pool: set[int] | None) -> list[tuple[int, float]]:
+        """(unit id, BM25 under ``stats``) of the n best lexical matches, within the pool
+        if given: the keyword side of :meth:`lexical`, every score computed with the
+        corpus statistics given (:mod:`codeseek.bm25`; with this index's own it gives
+        FTS5's scores exactly). Ties go to the lower id."""
+        phrases = lexical_phrases(query)
+        if len(phrases) != len(stats.matches):
+            raise InvalidQuery("the corpus statistics were made for another query")
+        if not phrases or stats.rows == 0 or stats.tokens == 0:
+            return []
+        rows, tokens = self.store.lexical_totals()
+        matches = [self.store.phrase_matches(phrase) for phrase in phrases]
+        local = CorpusStats(rows, tokens, tuple(len(found) for found in matches))
+        local_idf, local_avgdl = local.idf(), local.avgdl
+        frequencies: dict[int, dict[int, float]] = {}
+        lengths: dict[int, float] = {}
+        for phrase, found in enumerate(matches):
+            for unit_id, alone, length in found:
+                if pool is not None and unit_id not in pool:
+                    continue
+                lengths[unit_id] = float(length)
+                frequencies.setdefault(unit_id, {})[phrase] = bm25.frequency(
+                    alone, local_idf[phrase], local_avgdl, float(length))
+        idf, avgdl = stats.idf(), stats.avgdl
+        scored = [(unit_id, bm25.score(idf, avgdl, found, lengths[unit_id]))
+                  for unit_id, found in frequencies.items()]
+        scored.sort(key=lambda pair: (-pair[1], pair[0]))
+        return scored[:n]
+
+    def sides(self, queries: Sequence[str], k: int, filters: Filters | None,
+              stats: Sequence[CorpusStats]) -> list[Sides]:
+        """Each query's candidates for a search across several indexes: the dense side
+        as :meth:`ranked` takes it, the keyword side under the shared ``stats``
+        (:meth:`shared_lexical`), and the cosine of each keyword candidate the dense
+        side lacks (what its confidence rests on)."""
+        filters = _checked(queries, k, filters)
+        matrix = self.query_vectors(queries)
+        n = max(CANDIDATES, min(k, MAX_K) * 3)
+        answers: list[Sides] = []
+        with self.lock.read():
+            pool = self._filtered_pool(filters)
+            for i, query in enumerate(queries):
+                dense = self.dense(matrix[i], n, pool)
+                lexical = self.shared_lexical(query, stats[i], n, pool)
+                seen = dict(dense)
+                cosines = self._cosines(matrix[i], [u for u, _ in lexical if u not in seen], {})
+                answers.append(Sides(dense, lexical, cosines))
+        return answers
+
+    def picked(self, query: str, picks: Sequence[Pick],
+               baseline: Baseline | None = None) -> list[SearchHit]:
+        """The hits of the units a search across several indexes picked from this one,
+        in the order given (a unit gone since is left out); confidences against
+        ``baseline`` (default: this index's own)."""
+        with self.lock.read():
+            units = self.store.units_by_ids([pick.unit_id for pick in picks])
+            baseline = baseline or self.baseline()
+            hits: list[SearchHit] = []
+            for pick in picks:
+                stored = units.get(pick.unit_id)
+                if stored is None:
+                    continue
+                hit = _hit(query, len(hits) + 1, pick.score, pick.similarity, stored)
+                hits.append(replace(hit, confidence=baseline.confidence(pick.cosine)))
+            return hits
+
     def ranked(self, query: str, vector: np.ndarray, k: int,
                pool: set[int] | None = None) -> tuple[list[tuple[int, float]], dict[int, float]]:
         """The served ranking's best k (unit id, fused score), and the dense cosines seen."""
@@ -299,6 +281,17 @@ class Searcher:
             labels, matrix = self.store.unit_vectors(self.model_id, self.vectors.dim, missing)
             cosines.update(exact_search(vector, labels, matrix, len(labels)))
         return cosines
+
+
+def _checked(queries: Sequence[str], k: int, filters: Filters | None) -> Filters:
+    """The filters normalised, once k and every query are found sound."""
+    filters = (filters or Filters()).normalised()
+    if k <= 0:
+        raise InvalidQuery(f"-k must be at least 1, not {k}")
+    for query in queries:
+        if not query.strip():
+            raise InvalidQuery("the query is empty; type what you are looking for")
+    return filters
 
 
 def _hit(query: str, rank: int, score: float, similarity: float | None,

@@ -33,6 +33,7 @@ from urllib.parse import quote
 import numpy as np
 
 from codeseek import safefs
+from codeseek.bm25 import COLUMN_WEIGHTS, varints
 from codeseek.errors import (
     IndexCorrupt,
     IndexFolderUnsafe,
@@ -611,12 +612,38 @@ class Store:
         """(unit id, BM25 score; higher is better) for an FTS5 MATCH expression."""
         if not match:
             return []
+        weights = ", ".join(str(w) for w in COLUMN_WEIGHTS)  # 4.0, 2.0, 2.0, 1.0
         rows = self._query(
-            "SELECT rowid, bm25(units_fts, 4.0, 2.0, 2.0, 1.0) AS score FROM units_fts "
+            f"SELECT rowid, bm25(units_fts, {weights}) AS score FROM units_fts "
             "WHERE units_fts MATCH ? ORDER BY score LIMIT ?",
             (match, limit),
         )
         return [(int(r[0]), -float(r[1])) for r in rows]
+
+    def lexical_totals(self) -> tuple[int, int]:
+        """(rows, tokens over all columns) of the lexical table, as FTS5's ``bm25()``
+        counts them (its averages record: varints, the row count then each column's
+        token total)."""
+        rows = self._query("SELECT block FROM units_fts_data WHERE id = 1")
+        if not rows:
+            return 0, 0
+        values = varints(bytes(rows[0][0]))
+        return (values[0], sum(values[1:])) if values else (0, 0)
+
+    def phrase_count(self, phrase: str) -> int:
+        """How many rows hold one phrase (a quoted FTS5 string)."""
+        return int(self._query("SELECT count(*) FROM units_fts WHERE units_fts MATCH ?",
+                               (phrase,))[0][0])
+
+    def phrase_matches(self, phrase: str) -> list[tuple[int, float, int]]:
+        """(unit id, BM25 for the phrase alone, row length in tokens) of every row
+        holding one phrase (a quoted FTS5 string), in unit id order."""
+        weights = ", ".join(str(w) for w in COLUMN_WEIGHTS)
+        rows = self._query(
+            f"SELECT f.rowid, bm25(units_fts, {weights}), d.sz FROM units_fts AS f "
+            "JOIN units_fts_docsize AS d ON d.id = f.rowid WHERE units_fts MATCH ? "
+            "ORDER BY f.rowid", (phrase,))
+        return [(int(r[0]), -float(r[1]), sum(varints(bytes(r[2])))) for r in rows]
 
 
 def _since_ns(since: float) -> int:

@@ -203,13 +203,25 @@ def test_several_repositories_are_named_by_repo(indexed: Path, tmp_path: Path) -
     index = open_index(other, create=True, embedder=FakeEmbedder())
     index.update()
     index.close()
-    _, (unnamed, named, status) = call_all([indexed, other], [
-        ("search", {"query": "ring the bells"}),
+    _, (unnamed, named, status, everywhere) = call_all([indexed, other], [
+        ("neighbours", {"path": "src/bells.py", "qualname": "ring_bells"}),
         ("search", {"query": "ring the bells", "repo": str(other)}),
-        ("status", {})])
+        ("status", {}),
+        ("search", {"query": "ring the bells", "k": 20})])
     assert unnamed.is_error
     assert unnamed.content[0].text.startswith(
         "error: several repositories are served; name one with repo: ")
+    # a search naming no repository asks them all; each hit names its repository
+    records = everywhere.structured_content["results"]
+    assert {r["repo"] for r in records} == {str(indexed.resolve()), str(other.resolve())}
+    assert everywhere.structured_content["repos"] == [str(indexed.resolve()),
+                                                      str(other.resolve())]
+    assert [r["rank"] for r in records] == list(range(1, 21))
+    lines = everywhere.content[0].text.splitlines()
+    for line, record in zip(lines, records, strict=True):
+        assert line.startswith(f"[{record['repo']}] {record['path']}:{record['start_line']}-")
+        assert (Path(record["repo"]) / record["path"]).is_file()
+    assert records[0]["qualname"] == "ring_bells"
     assert places(named)[0] == "src/bells.py:1 ring_bells"
     assert named.structured_content["repo"] == str(other.resolve())
     assert [r["repo"] for r in status.structured_content["repositories"]] == [

@@ -5,15 +5,21 @@ from __future__ import annotations
 import json
 import shutil
 import sysconfig
+from collections.abc import Iterator, Sequence
+from dataclasses import replace
 from pathlib import Path
+from typing import Any
 
 import pytest
 from test_cli import run_cli
 
 from codeseek import FakeEmbedder, open_index
+from codeseek.api import Index
+from codeseek.bm25 import CorpusStats
 from codeseek.hits import SearchHit
 from codeseek.multi import MERGE_KINDS, MultiService, merge, standardised
-from codeseek.query import Query
+from codeseek.query import Filters, Query
+from codeseek.search import lexical_match
 
 SAMPLE_REPO = Path(__file__).resolve().parent.parent / "sample_repo"
 
@@ -150,7 +156,6 @@ def _top(hits: list[SearchHit]) -> set[str]:
 # Real open-source code: these packages of the Python standard library installed on this
 # machine (sysconfig's "stdlib" path), split into two halves by alternate file.
 STDLIB_PACKAGES = ("json", "email", "logging", "http", "urllib", "xml/dom")
-FAKE_FLOOR = 0.65
 STDLIB_QUERIES = [
     "parse a JSON document from a string", "encode an object as JSON text",
     "decode a quoted printable header", "format a log record with a timestamp",
@@ -164,41 +169,287 @@ STDLIB_QUERIES = [
 ]
 
 
-def test_merged_halves_agree_with_one_index_of_the_whole(tmp_path: Path) -> None:
-    """The merged top-10 of two halves of a tree against the top-10 of one index of it."""
+def halved_stdlib(folder: Path, everything: bool = False) -> tuple[Path, list[Path], int]:
+    """The STDLIB_PACKAGES (or, with ``everything``, the whole standard library, tests
+    left out) copied into ``folder/whole`` and, by alternate file, into two halves;
+    returns the whole, the halves and the number of files."""
     stdlib = Path(sysconfig.get_paths()["stdlib"])
-    whole, halves = tmp_path / "whole", [tmp_path / "half0", tmp_path / "half1"]
-    files = sorted(p for package in STDLIB_PACKAGES for p in (stdlib / package).rglob("*.py")
-                   if "test" not in p.parts)
-    assert len(files) > 40
+    whole, halves = folder / "whole", [folder / "half0", folder / "half1"]
+    roots = [stdlib] if everything else [stdlib / package for package in STDLIB_PACKAGES]
+    files = sorted(p for root in roots for p in root.rglob("*.py")
+                   if not {"test", "tests", "site-packages", "idlelib"} & set(p.parts))
     for number, source in enumerate(files):
         relative = source.relative_to(stdlib)
         for target in (whole / relative, halves[number % 2] / relative):
             target.parent.mkdir(parents=True, exist_ok=True)
             shutil.copyfile(source, target)
+    return whole, halves, len(files)
+
+
+def agreement(merged: Sequence[list[SearchHit]],
+              single: Sequence[list[SearchHit]]) -> tuple[float, float, float]:
+    """(top-1 agreement, mean top-10 overlap, MRR agreement) of merged answers with one
+    index's: the share of queries with the same best hit, the mean share of the single
+    answer's hits found in the merged one, and the mean reciprocal rank in the merged
+    answer of the single answer's best hit."""
+    top1 = overlap = mrr = 0.0
+    for mine, theirs in zip(merged, single, strict=True):
+        keys = [f"{h.path}:{h.qualname}:{h.start_line}" for h in mine]
+        best = f"{theirs[0].path}:{theirs[0].qualname}:{theirs[0].start_line}"
+        top1 += keys[:1] == [best]
+        overlap += len(set(keys) & _top(theirs)) / len(theirs)
+        mrr += 1 / (keys.index(best) + 1) if best in keys else 0.0
+    return top1 / len(single), overlap / len(single), mrr / len(single)
+
+
+@pytest.fixture(scope="module")
+def stdlib_halves(tmp_path_factory: pytest.TempPathFactory) -> Iterator[list[Index]]:
+    """Indexes (fake embedder) of the whole STDLIB_PACKAGES tree and of its two halves."""
+    whole, halves, files = halved_stdlib(tmp_path_factory.mktemp("stdlib"))
+    assert files > 40
     indexes = [open_index(root, create=True, embedder=FakeEmbedder())
                for root in (whole, *halves)]
+    for index in indexes:
+        index.update()
+    yield indexes
+    for index in indexes:
+        index.close()
+
+
+def test_merged_halves_agree_with_one_index_of_the_whole(stdlib_halves: list[Index]) -> None:
+    """The merged top-10 of two halves of a tree against the top-10 of one index of it."""
+    whole, *halves = stdlib_halves
+    multi = MultiService([(str(h.settings.repo), h) for h in halves])
+    queries = [Query(text=text, k=10) for text in STDLIB_QUERIES]
+    single = list(whole.search_many(queries))
+    figures = {}
+    for kind in MERGE_KINDS:
+        multi.kind = kind
+        figures[kind] = agreement(list(multi.search_many(queries)), single)
+    print(f"(top-1, top-10 overlap, MRR agreement) {figures}")
+    # the issue's target: top-10 overlap >= 0.9 with one index of the whole (measured with
+    # this fake embedder: shared 1.0; the older rules, per-index standardised scores,
+    # served 0.75 and restandardised 0.73; scripts/bench_multi.py prints them all)
+    top1, overlap, mrr = figures["shared"]
+    assert overlap >= 0.9 and top1 >= 0.9 and mrr >= 0.9
+    # the older rules stay what they were (regression floors, not the target)
+    assert figures["served"][1] >= OLD_FLOOR and figures["restandardised"][1] >= OLD_FLOOR
+
+
+def test_filtered_merge_equals_one_index_of_the_whole(stdlib_halves: list[Index]) -> None:
+    """With exact dense search on both sides (a filtered search is an exact numpy search
+    over the pool's vectors) and the summed BM25 statistics, the merge of the halves IS
+    the whole index's ranking: the same units in the same order, the same scores."""
+    whole, *halves = stdlib_halves
+    multi = MultiService([(str(h.settings.repo), h) for h in halves])
+    every = Filters(languages=("python",))
+    queries = [Query(text=text, k=15, filters=every) for text in STDLIB_QUERIES]
+    single = list(whole.search_many(queries))
+    merged = list(multi.search_many(queries))
+    for mine, theirs in zip(merged, single, strict=True):
+        assert [(h.path, h.qualname, h.start_line) for h in mine] == [
+            (h.path, h.qualname, h.start_line) for h in theirs]
+        assert [h.score for h in mine] == pytest.approx([h.score for h in theirs], abs=1e-9)
+        assert [h.similarity for h in mine] == pytest.approx([h.similarity for h in theirs])
+        assert [h.confidence for h in mine] == [h.confidence for h in theirs]
+        for hit in mine:  # each hit's file is in the half it names
+            assert (Path(str(hit.repo)) / hit.path).is_file()
+
+
+def test_shared_bm25_is_fts5_bm25(stdlib_halves: list[Index]) -> None:
+    """The keyword score recomputed from the index's own statistics (codeseek.bm25) is
+    SQLite FTS5's bm25() bit for bit on real code (the reference: FTS5 itself); with the
+    summed statistics of the halves, each half's scores are the whole index's."""
+    whole, *halves = stdlib_halves
+    by_place = {}
+    for text in STDLIB_QUERIES + ["HTTPServer json_dumps parse_header"]:
+        searcher = whole.searcher()
+        fts5 = searcher.store.lexical_search(lexical_match(text), -1)
+        own = searcher.shared_lexical(text, searcher.corpus_stats(text), len(fts5) + 5, None)
+        assert len(own) == len(fts5) > 0
+        assert dict(own) == dict(fts5)  # exact floats
+        stats = [h.searcher().corpus_stats(text) for h in halves]
+        assert CorpusStats.combined(stats) == searcher.corpus_stats(text)
+        units = {i: s.unit for i, s in searcher.store.units_by_ids([u for u, _ in fts5]).items()}
+        by_place = {(units[u].path, units[u].qualname, units[u].start_line): score
+                    for u, score in fts5}
+        for half in halves:
+            half_searcher = half.searcher()
+            scored = half_searcher.shared_lexical(text, CorpusStats.combined(stats), 10**6,
+                                                  None)
+            half_units = half_searcher.store.units_by_ids([u for u, _ in scored])
+            for unit_id, score in scored:
+                unit = half_units[unit_id].unit
+                assert score == by_place[(unit.path, unit.qualname, unit.start_line)]
+
+
+OLD_FLOOR = 0.65
+
+
+def test_client_fans_out_to_one_daemon_per_repository(tmp_path: Path) -> None:
+    """Two live daemons, one per repository: the merged answer through them is the
+    in-process merge's, hit for hit (the three steps go over each daemon's socket), and
+    ``codeseek search --repo A --repo B`` uses them."""
+    from codeseek.client import DaemonService
+    from codeseek.daemon import Daemon
+    from codeseek.service import connect
+
+    first, second = _split_sample(tmp_path)
+    indexes = [open_index(repo, embedder=FakeEmbedder()) for repo in (first, second)]
+    daemons = [Daemon(index, reconcile_seconds=3600, debounce=0.05) for index in indexes]
+    for running in daemons:
+        running.start()
     try:
-        for index in indexes:
-            index.update()
-        multi = MultiService([(str(root), index) for root, index in zip(halves, indexes[1:],
-                                                                          strict=True)])
-        queries = [Query(text=text, k=10) for text in STDLIB_QUERIES]
-        single = list(indexes[0].search_many(queries))
-        means = {}
-        for kind in MERGE_KINDS:
-            multi.kind = kind
-            merged = list(multi.search_many(queries))
-            overlaps = [len(_top(m) & _top(s)) / 10 for m, s in zip(merged, single, strict=True)]
-            means[kind] = sum(overlaps) / len(overlaps)
+        services = [(str(repo.resolve()), connect(repo)) for repo in (first, second)]
+        assert all(isinstance(service, DaemonService) for _, service in services)
+        through = MultiService(services)
+        local = MultiService([(str(repo.resolve()), open_index(repo, embedder=FakeEmbedder()))
+                              for repo in (first, second)])
+        queries = [Query(text=text, k=12) for text in (
+            "fare for a ride", "retry an upload with backoff", "parse the config file")]
+        served_before = [running.queries_served for running in daemons]
+        answers = list(through.search_many(queries))
+        assert answers == list(local.search_many(queries))
+        assert {hit.repo for answer in answers for hit in answer} == {
+            str(first.resolve()), str(second.resolve())}
+        assert [r.queries_served - b for r, b in zip(daemons, served_before,
+                                                       strict=True)] == [3, 3]
+        assert not any(service.gone for _, service in services)  # type: ignore[attr-defined]
+        # the command line over the same two daemons (no --backend: the daemons answer)
+        code, out, err = run_cli("search", "fare for a ride", "--repo", str(first), "--repo",
+                                 str(second), "--json", "-k", "12")
+        assert code == 0, err
+        assert [json.loads(line)["path"] for line in out.splitlines()] == [
+            hit.path for hit in answers[0]]
+        assert [r.queries_served - b for r, b in zip(daemons, served_before,
+                                                       strict=True)] == [4, 4]
+        # malformed steps get a one-line error, and the daemon goes on answering
+        for line, words in (
+                (b'{"v": 2, "op": "merge_sides", "queries": [{"text": "fare"}], "stats": []}',
+                 "'stats' must be a list with one entry per query"),
+                (b'{"v": 2, "op": "merge_sides", "queries": [{"text": "fare"}], '
+                 b'"stats": [{"rows": -1, "tokens": 1, "matches": [1]}]}', "whole numbers"),
+                (b'{"v": 2, "op": "merge_hits", "queries": [{"text": "fare"}], '
+                 b'"picks": [[[1, "high", null, null]]]}', "a pick is"),
+                (b'{"v": 2, "op": "merge_sides", "queries": [{"text": "fare"}], '
+                 b'"stats": [{"rows": 9, "tokens": 9, "matches": []}]}', "another query")):
+            response = daemons[0].handle_line(line)
+            assert response["ok"] is False and words in response["error"], response
+        assert through.search(queries[0]) == answers[0]
+        through.close()
+        local.close()
     finally:
+        for running in daemons:
+            running.stop()
         for index in indexes:
             index.close()
-    print(f"mean top-10 overlap {means}")
-    # measured with the fake embedder (hashed words, no model): served 0.75,
-    # restandardised 0.73; with the packaged model (scripts/bench_multi.py): served 0.66,
-    # restandardised 0.65-0.67. The issue's 0.9 target is NOT met by either: a unit's
-    # fused score depends on the other units of its index, so halves rank differently
-    # from the whole. FAKE_FLOOR is a regression floor, not that target.
-    assert means["served"] >= FAKE_FLOOR
-    assert means["restandardised"] >= FAKE_FLOOR
+
+
+def test_status_lists_each_repository(tmp_path: Path) -> None:
+    first, second = _split_sample(tmp_path)
+    code, out, err = run_cli("status", "--repo", str(first), "--repo", str(second), "--json")
+    assert code == 0, err
+    records = [json.loads(line) for line in out.splitlines()]
+    assert [Path(r["repo"]) for r in records] == [first.resolve(), second.resolve()]
+    for record, repo in zip(records, (first, second), strict=True):
+        _, alone, _ = run_cli("status", str(repo), "--json")
+        assert json.loads(alone)["units"] == record["units"] > 0  # each index its own
+        assert record["daemon"] is None
+    # the text names each repository in its own block; a workspace lists the same
+    code, text, _ = run_cli("status", "--repo", str(first), "--repo", str(second))
+    assert code == 0
+    blocks = text.split("\n\n")
+    assert len(blocks) == 2
+    assert str(first.resolve()) in blocks[0] and str(second.resolve()) in blocks[1]
+    workspace = tmp_path / "team.toml"
+    workspace.write_text('[workspace]\nrepos = ["first", "second"]\n', encoding="utf-8")
+    code, listed, _ = run_cli("status", "--workspace", str(workspace), "--json")
+    assert code == 0 and [json.loads(line)["units"] for line in listed.splitlines()] == [
+        r["units"] for r in records]
+    # the files left out, each under its repository
+    code, skipped, _ = run_cli("status", "--repo", str(first), "--repo", str(second),
+                               "--skipped")
+    assert code == 0 and skipped.splitlines()  # sample_repo holds files left out
+    for line in skipped.splitlines():
+        path = Path(line.split("  ")[0])
+        assert path.is_relative_to(first.resolve()) or path.is_relative_to(second.resolve())
+    # a repository without an index is named in a one-line usage error
+    bare = tmp_path / "bare"
+    bare.mkdir()
+    code, _, err = run_cli("status", "--repo", str(first), "--repo", str(bare))
+    assert code == 2 and "no index here" in err and str(bare) in err
+
+
+def test_a_workspace_file_above_the_current_folder_is_found(
+        tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    """``codeseek.toml`` with ``[workspace]`` in the current folder or a parent lists the
+    repositories when no --repo is given, unless a repository is nearer."""
+    first, second = _split_sample(tmp_path)
+    (tmp_path / "codeseek.toml").write_text('[workspace]\nrepos = ["first", "second"]\n',
+                                            encoding="utf-8")
+    _, direct, _ = run_cli("search", "fare for a ride", "--repo", str(first), "--repo",
+                           str(second), "--backend", "fake", "--json", "-k", "20")
+    (tmp_path / "notes").mkdir()
+    for where in (tmp_path, tmp_path / "notes"):
+        monkeypatch.chdir(where)
+        code, out, err = run_cli("search", "fare for a ride", "--backend", "fake", "--json",
+                                 "-k", "20")
+        assert code == 0, err
+        assert out == direct
+        code, listed, _ = run_cli("status", "--json")
+        assert code == 0
+        assert [json.loads(line)["repo"] for line in listed.splitlines()] == [
+            str(first.resolve()), str(second.resolve())]
+    # inside a repository (it holds an index) the repository is nearer: one index, as before
+    monkeypatch.chdir(first / "python")
+    code, out, _ = run_cli("search", "fare for a ride", "--backend", "fake", "--json", "-k", "5")
+    assert code == 0
+    assert out.splitlines() and all("repo" not in json.loads(line) for line in out.splitlines())
+    code, one, _ = run_cli("status", "--json")
+    assert code == 0 and len(one.splitlines()) == 1
+    # an explicit repository or PATH wins over the workspace file
+    monkeypatch.chdir(tmp_path)
+    code, out, _ = run_cli("search", "fare", "--repo", str(second), "--backend", "fake",
+                           "--json", "-k", "3")
+    assert code == 0 and all("repo" not in json.loads(line) for line in out.splitlines())
+    code, one, _ = run_cli("status", str(second), "--json")
+    assert code == 0 and json.loads(one)["repo"] == str(second.resolve())
+
+
+class _SearchOnly:
+    """A search service without the merge steps (as a service of another kind might be)."""
+
+    def __init__(self, index: Index) -> None:
+        self.index = index
+
+    def search_many(self, queries: Sequence[Query]) -> list[list[SearchHit]]:
+        return self.index.search_many(queries)
+
+
+class _OtherModel(_SearchOnly):
+    """The merge steps, but the index reports another model: its cosines are not
+    comparable with the other index's."""
+
+    def merge_basis(self, queries: Sequence[Query]) -> Any:
+        return replace(self.index.merge_basis(queries), model_id="another-model")
+
+    def merge_sides(self, queries: Sequence[Query], stats: Any) -> Any:
+        raise AssertionError("indexes of different models are not pooled")
+
+    def merge_hits(self, queries: Sequence[Query], picks: Any, off_topic: Any = None) -> Any:
+        raise AssertionError("indexes of different models are not pooled")
+
+
+def test_without_the_merge_steps_or_with_two_models_hits_merge_by_served_scores(
+        stdlib_halves: list[Index]) -> None:
+    _, *halves = stdlib_halves
+    queries = [Query(text=text, k=10) for text in STDLIB_QUERIES[:5]]
+    served = list(MultiService([(str(h.settings.repo), h) for h in halves],
+                               kind="served").search_many(queries))
+    shared = list(MultiService([(str(h.settings.repo), h) for h in halves]).search_many(queries))
+    assert served != shared  # the two rules differ on these queries, so the check can fail
+    first, second = halves
+    for wrap in (_SearchOnly, _OtherModel):  # the second index only: the first is as it is
+        multi = MultiService([(str(first.settings.repo), first),
+                              (str(second.settings.repo), wrap(second))])  # type: ignore[list-item]
+        assert list(multi.search_many(queries)) == served

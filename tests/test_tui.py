@@ -1298,3 +1298,51 @@ def test_a_since_word_becomes_a_chip_and_a_time(monkeypatch: pytest.MonkeyPatch)
     assert chips.as_filters() == Filters(("go",), (), (), 1_800_000_000.0 - 12 * 3600)
     with pytest.raises(InvalidQuery, match="--since wants an ISO date"):
         FilterSet().added(("since", "soon"))
+
+
+@in_loop
+async def test_several_repositories_each_hit_names_its_own(tmp_path: Path) -> None:
+    """``ui --repo A --repo B``: the hits of both, each tagged with its repository's
+    folder, read and opened from that repository; the index line sums the two."""
+    from test_multi import _split_sample
+
+    from codeseek import open_index
+    from codeseek.multi import MultiService
+
+    first, second = _split_sample(tmp_path)
+    searcher = MultiService([(str(repo.resolve()), open_index(repo, embedder=FakeEmbedder()))
+                             for repo in (first, second)])
+    script, record = fake_editor(tmp_path, "vi")
+    app = make_app(searcher, None, env={"VISUAL": str(script)}, k=40)
+    async with app.run_test(size=(120, 40)) as pilot:
+        await ask(pilot, app, "issue refund")
+        top = app.hits[0]
+        assert (top.qualname, top.path, top.repo) == (
+            "PaymentService.issue_refund", REFUND_PATH, str(first.resolve()))
+        texts = option_texts(app)
+        assert f"[first] {REFUND_PATH}:{REFUND_LINE}" in texts[0]
+        assert f"[first] {REFUND_PATH}:{REFUND_LINE}-" in reader_text(app)
+        # the reader read the file from the hit's own repository (no repo was given)
+        assert f"❱ {REFUND_LINE}     def issue_refund(" in code_text(app)
+        await ask(pilot, app, "fare for a ride")  # words of both repositories
+        assert {h.repo for h in app.hits} == {str(first.resolve()), str(second.resolve())}
+        for hit, text in zip(app.hits, option_texts(app), strict=True):
+            assert f"[{Path(str(hit.repo)).name}] {hit.path}:{hit.start_line}" in text
+        await ask(pilot, app, "issue refund")
+        await wait_until(pilot, lambda: app.index_status is not None)
+        units = sum(open_index(r, embedder=FakeEmbedder()).status().units
+                    for r in (first, second))
+        assert plain(app.query_one("#index-text")).startswith(
+            f"first + second · {units} units ·")
+        await pilot.press("ctrl+o")
+        await wait_until(pilot, record.exists)
+        assert record.read_text(encoding="utf-8").splitlines() == [
+            f"+{REFUND_LINE}", str(first.resolve() / REFUND_PATH)]
+        # f3: the neighbours come from the hit's own repository, each naming it
+        source = app.hits[0]
+        await pilot.press("f3")
+        await answered(pilot, app, f"neighbours of {source.qualname}")
+        alone = searcher.services[0][1].neighbours(Query(unit_id=source.unit_id, k=40))
+        assert [h.unit_id for h in app.hits] == [h.unit_id for h in alone]
+        assert {h.repo for h in app.hits} == {str(first.resolve())}
+    searcher.close()

@@ -41,7 +41,9 @@ from codeseek.search import NEIGHBOURS_OF, SearchHit
 from codeseek.tui.backend import (
     IndexBuilder,
     SearchBackend,
+    is_several,
     neighbour_hits,
+    searcher_status,
     service_state,
 )
 from codeseek.tui.clipboard import copy_with_command, passthrough
@@ -437,7 +439,7 @@ class CodeseekApp(App[int]):
             outcome: IndexStatus | Exception | None = None
             if searcher is not None:
                 try:
-                    outcome = searcher.status()
+                    outcome = searcher_status(searcher)
                 except (CodeseekError, OSError) as exc:
                     outcome = exc
             state = service_state(searcher) if searcher is not None else ""
@@ -453,7 +455,7 @@ class CodeseekApp(App[int]):
             line.show(Content.assemble(("⚠ ", "$error"), printable(str(status))))
         else:
             self.index_status = status
-            if self.repo is None:
+            if self.repo is None and not is_several(self.searcher):
                 self.repo = Path(status.repo)
                 self._sources.repo = self.repo
             line.show(index_summary(status, state))
@@ -592,8 +594,10 @@ class CodeseekApp(App[int]):
     # -- acting on the selected hit ------------------------------------------------------------
 
     def _place(self, hit: SearchHit) -> str:
-        """``path:line``, safe to show and to paste (control characters escaped)."""
-        return f"{printable(hit.path)}:{hit.start_line}"
+        """``path:line``, safe to show and to paste (control characters escaped); under
+        its repository's root when several are searched."""
+        path = hit.path if hit.repo is None else str(Path(hit.repo) / hit.path)
+        return f"{printable(path)}:{hit.start_line}"
 
     def _need_hit(self) -> SearchHit | None:
         hit = self.selected_hit
@@ -640,7 +644,8 @@ class CodeseekApp(App[int]):
         if hit is None:
             return
         place = self._place(hit)
-        path = repository_file(self.repo, hit.path) if self.repo is not None else None
+        root = self.repo if hit.repo is None else Path(hit.repo)  # several: the hit's own
+        path = repository_file(root, hit.path) if root is not None else None
         if path is None:  # a planted index may name a file outside the repository
             self._fall_back(place, "the hit's file is not inside the repository")
             return

@@ -23,7 +23,7 @@ import numpy as np
 from codeseek.indexer import ProgressCallback, UpdateSummary
 from codeseek.query import Filters, Query
 from codeseek.search import SearchHit
-from codeseek.service import SearchService
+from codeseek.service import IndexStatus, SearchService
 
 if TYPE_CHECKING:
     from codeseek.api import Index
@@ -46,6 +46,41 @@ class IndexBuilder(Protocol):
     def open_searcher(self) -> SearchService:
         """A new searcher over what the index holds now (raises IndexNotFound if none)."""
         ...
+
+
+def is_several(searcher: SearchService | None) -> bool:
+    """Whether the searcher spans several repositories (``ui --repo A --repo B``)."""
+    from codeseek.multi import MultiService
+
+    return isinstance(searcher, MultiService)
+
+
+def searcher_status(searcher: SearchService) -> IndexStatus:
+    """The searcher's index status; for several repositories one summing them all (the
+    repositories' folder names joined, their counts and languages added up)."""
+    from codeseek.multi import MultiService
+
+    if not isinstance(searcher, MultiService):
+        return searcher.status()
+    each = searcher.statuses()
+    languages: dict[str, int] = {}
+    skipped: dict[str, int] = {}
+    for status in each:
+        for name, count in status.languages.items():
+            languages[name] = languages.get(name, 0) + count
+        for reason, count in status.skipped.items():
+            skipped[reason] = skipped.get(reason, 0) + count
+    updated = [s.updated_at for s in each if s.updated_at is not None]
+    return IndexStatus(
+        repo=" + ".join(Path(s.repo).name or s.repo for s in each), index_dir="",
+        files=sum(s.files for s in each), units=sum(s.units for s in each),
+        languages=languages, skipped=skipped,
+        files_with_syntax_errors=sum(s.files_with_syntax_errors for s in each),
+        model_id=each[0].model_id, dim=each[0].dim,
+        generation=sum(s.generation for s in each),
+        vectors_in_sync=all(s.vectors_in_sync for s in each),
+        updated_at=min(updated) if len(updated) == len(each) else None,
+        bytes_on_disk=sum(s.bytes_on_disk for s in each))
 
 
 def service_state(searcher: SearchService) -> str:
@@ -153,5 +188,11 @@ class LocalIndexer:
 def neighbour_hits(searcher: SearchService, hit: SearchHit, k: int,
                    filters: Filters) -> list[SearchHit]:
     """``hit``'s neighbours: the k units whose meaning is nearest it, within the filters
-    (the library's ``neighbours``, in process or through the daemon)."""
-    return searcher.neighbours(Query(unit_id=hit.unit_id, k=k, filters=filters))
+    (the library's ``neighbours``, in process or through the daemon; with several
+    repositories, those of the hit's own)."""
+    from codeseek.multi import MultiService
+
+    query = Query(unit_id=hit.unit_id, k=k, filters=filters)
+    if isinstance(searcher, MultiService) and hit.repo is not None:
+        return searcher.neighbours_in(hit.repo, query)
+    return searcher.neighbours(query)

@@ -73,9 +73,16 @@ def hit_prompt(hit: SearchHit) -> Content:
         (score_cells(hit), "$cs-bar"), " ",
         (printable(hit.qualname), "$cs-name bold"),
         (f"  {hit.kind} · {hit.language}", "$cs-meta"), "\n",
-        "  ", (f"{printable(hit.path)}:{hit.start_line}", "$cs-place"),
+        "  ", (repo_tag(hit), "$cs-meta"),
+        (f"{printable(hit.path)}:{hit.start_line}", "$cs-place"),
         (f"  {doc}" if doc else "", "$cs-doc italic"),
     )
+
+
+def repo_tag(hit: SearchHit) -> str:
+    """``[folder] `` naming the repository a hit of a search across several comes from
+    (empty for a hit of one repository's search)."""
+    return "" if hit.repo is None else f"[{printable(repo_label(hit.repo))}] "
 
 
 # -- the reader ------------------------------------------------------------------------
@@ -93,6 +100,7 @@ def reader_header(hit: SearchHit) -> Content:
     return Content.assemble(
         (printable(hit.qualname), "$cs-name bold"),
         (f"  {hit.kind} · {hit.language}", "$cs-meta"), "\n",
+        (repo_tag(hit), "$cs-meta"),
         (f"{printable(hit.path)}:{hit.start_line}-{hit.end_line}", "$cs-place"), "\n",
         ("in ", "$cs-meta"), (" › ".join(scope_chain(hit)), "$cs-scope"),
         ("\n" + printable_block(hit.doc_summary) if hit.doc_summary else "",
@@ -194,7 +202,8 @@ class SourceCache:
         """The unit's lines from its file; the indexed first lines if the file changed."""
         spec = spec_for_path(hit.path)
         cr_newlines = spec is not None and spec.cr_newlines
-        path = repository_file(self.repo, hit.path) if self.repo is not None else None
+        root = self.repo if hit.repo is None else Path(hit.repo)  # several: the hit's own
+        path = repository_file(root, hit.path) if root is not None else None
         lines = self._lines(path, cr_newlines) if path is not None else None
         if lines is None or hit.end_line > len(lines) or hit.start_line < 1:
             return UnitSource(hit.snippet, hit.start_line,
