@@ -137,13 +137,13 @@ class UnitWorker:
         matrix = self.embedder.encode([texts[digest] for digest in order])
         vectors = {digest: matrix[i] for i, digest in enumerate(order)}
         answers = []
-        for task, result, skip in parsed:
-            if result is None:
-                answers.append(FileResult(task.path, skip=skip))
+        for task, parse, reason in parsed:
+            if parse is None:
+                answers.append(FileResult(task.path, skip=reason))
                 continue
-            own = {u.content_hash: vectors[u.content_hash] for u in result.units
+            own = {u.content_hash: vectors[u.content_hash] for u in parse.units
                    if u.content_hash in vectors}
-            answers.append(FileResult(task.path, result.units, result.has_errors, own))
+            answers.append(FileResult(task.path, parse.units, parse.has_errors, own))
         return answers
 
 
