@@ -183,11 +183,11 @@ def ray_session(address: str | None, workers: int) -> Iterator[ModuleType]:
     ``address``, else to a local instance with ``workers`` CPUs (shut down afterwards)."""
     _quiet()
     ray = import_ray()
+    if address:
+        check_address(address)
     if ray.is_initialized():
         yield ray
         return
-    if address:
-        check_address(address)
     options: dict[str, Any] = {"include_dashboard": False, "log_to_driver": False,
                                "logging_level": logging.ERROR}
     try:
@@ -270,6 +270,8 @@ def index_on_ray(indexes: Sequence[Index], *, address: str | None = None,
     if workers < 1:
         raise ClusterError(f"--workers {workers}: give at least one worker")
     import_ray()  # before any index is touched
+    if address:
+        check_address(address)
     with ExitStack() as stack:
         jobs: list[_Job] = []
         reporters = [progress(index) if progress else None for index in indexes]
