@@ -2,6 +2,12 @@
 
 Usage: .venv/bin/python scripts/bench_index.py [PATH] [--torch-sample N] [--queries N]
        .venv/bin/python scripts/bench_index.py --corpora [--repeat N]
+       .venv/bin/python scripts/bench_index.py [PATH] --ray
+
+With --ray it builds three fresh indexes of PATH in one run, with the packaged
+model: a local build, then a build on a local Ray instance with 1 worker and
+with 2 workers (``codeseek index --ray``), and prints units/s of each and the
+ratios (the Ray figures include starting the actor pool, not starting Ray).
 
 Without PATH it indexes a copy of this machine's Python standard library
 (test folders left out). It prints, from one run on one machine:
@@ -159,6 +165,39 @@ def warm_latency(index: Index, queries: list[str]) -> None:
     print(f"p50 ratio {depths[0]} / {depths[1]} candidates: {ratio:.2f}")
 
 
+def ray_scaling(repo: Path, scratch: Path) -> None:
+    """units/s of a local build and of Ray builds with 1 and 2 workers, one run."""
+    import logging
+
+    import ray
+
+    from codeseek.distributed import index_on_ray
+
+    rates: dict[str, float] = {}
+    local = open_index(repo, index_dir=scratch / "local", create=True)
+    local.embedder.encode(["warm up"])  # the ONNX export exists before any clock starts
+    start = time.perf_counter()
+    summary = local.update()
+    rates["local"] = summary.embedded / (time.perf_counter() - start)
+    local.close()
+    print(f"local build: {summary.units} units, {rates['local']:.1f} units/s")
+    for workers in (1, 2):
+        ray.init(num_cpus=workers, include_dashboard=False, log_to_driver=False,
+                 logging_level=logging.ERROR)
+        index = open_index(repo, index_dir=scratch / f"ray{workers}", create=True)
+        index.embedder.encode(["warm up"])
+        start = time.perf_counter()
+        (summary,) = index_on_ray([index], workers=workers)
+        rates[f"ray{workers}"] = summary.embedded / (time.perf_counter() - start)
+        index.close()
+        ray.shutdown()
+        print(f"Ray, {workers} worker(s): {summary.units} units, "
+              f"{rates[f'ray{workers}']:.1f} units/s")
+    print(f"ratios: Ray 1 worker / local = {rates['ray1'] / rates['local']:.2f}, "
+          f"Ray 2 workers / local = {rates['ray2'] / rates['local']:.2f}, "
+          f"Ray 2 / Ray 1 workers = {rates['ray2'] / rates['ray1']:.2f}")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -169,9 +208,18 @@ def main() -> None:
     parser.add_argument("--corpora", action="store_true",
                         help="only parse throughput per language on the real test corpora")
     parser.add_argument("--repeat", type=int, default=5, help="passes for --corpora (best of)")
+    parser.add_argument("--ray", action="store_true",
+                        help="only the local build beside Ray builds with 1 and 2 workers")
     args = parser.parse_args()
     if args.corpora:
         corpus_throughput(args.repeat)
+        return
+    if args.ray:
+        with tempfile.TemporaryDirectory() as scratch:
+            repo = Path(args.path).resolve() if args.path else copy_stdlib(
+                Path(scratch) / "stdlib")
+            print(f"repository: {repo}")
+            ray_scaling(repo, Path(scratch))
         return
 
     with tempfile.TemporaryDirectory() as scratch:
