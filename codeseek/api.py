@@ -115,21 +115,26 @@ class Index:
 
     def update(self, progress: ProgressCallback | None = None) -> UpdateSummary:
         """Bring the index up to date with the files on disk, and save the vector index."""
-        with self._writer_lock():
-            summary = self._updater(progress).full()
-            self.store.finish_first_build()
-            if progress:
-                progress("save", 0, 1)
-            self.save()
-            if progress:
-                progress("save", 1, 1)
+        with self.writer_lock():
+            summary = self.updater(progress).full()
+            self.finish_build(progress)
             return summary
+
+    def finish_build(self, progress: ProgressCallback | None = None) -> None:
+        """After a whole update (under :meth:`writer_lock`): record the first build as
+        finished and save the vector index."""
+        self.store.finish_first_build()
+        if progress:
+            progress("save", 0, 1)
+        self.save()
+        if progress:
+            progress("save", 1, 1)
 
     def update_files(self, files: list[SourceFile], gone: list[str],
                      scan: ScanResult | None = None) -> UpdateSummary:
         """Apply changed files and removed paths; the vector file is saved later by save()."""
-        with self._writer_lock():
-            return self._updater(None).paths(files, gone, scan)
+        with self.writer_lock():
+            return self.updater(None).paths(files, gone, scan)
 
     def save(self) -> None:
         """Save the vector index atomically if it holds changes not yet on disk."""
@@ -139,7 +144,8 @@ class Index:
             if self.store.manifest().get("hnsw_generation") != str(self.store.generation()):
                 save_vectors(self.store, self._vectors, self.settings)
 
-    def _updater(self, progress: ProgressCallback | None) -> Updater:
+    def updater(self, progress: ProgressCallback | None = None) -> Updater:
+        """The updater that writes this index (call under :meth:`writer_lock`)."""
         vectors = self._vectors_for(self.embedder.model_id, self.embedder.dim)
         if self._searcher is not None and self._searcher.vectors is not vectors:
             self._searcher = None
@@ -147,7 +153,8 @@ class Index:
                        self.lock.write)
 
     @contextmanager
-    def _writer_lock(self) -> Iterator[None]:
+    def writer_lock(self) -> Iterator[None]:
+        """The one writer: excludes other processes' updates of this index (a lock file)."""
         path = self.settings.index_dir / LOCK_NAME
         handle = safefs.open_lock(path)
         try:
@@ -436,7 +443,7 @@ class Index:
             return self._ask_questions(*loaded, trial.search_many, seed=split.seed,
                                        adapter=adapter is not None)
 
-        with self._writer_lock():
+        with self.writer_lock():
             adapter, report = tune_units(units, searcher.embedder,
                                          repository=str(self.settings.repo), split=split,
                                          settings=settings, cache=self._eval_cache(),
@@ -451,7 +458,7 @@ class Index:
 
     def remove_adapter(self) -> bool:
         """Delete the index's query adapter; whether there was one."""
-        with self._writer_lock():
+        with self.writer_lock():
             removed = remove_adapter(self.settings.index_dir)
         self._searcher = None
         return removed

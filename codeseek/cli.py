@@ -97,9 +97,15 @@ def _index_parser(commands: Any) -> None:
                                 description="Build the index of a repository, or bring it up "
                                             "to date; only changed files are parsed and only "
                                             "new code is embedded.")
-    index.add_argument("path", nargs="?", default=".", metavar="PATH",
-                       help="repository root (default: the current folder)")
+    index.add_argument("paths", nargs="*", default=["."], metavar="PATH",
+                       help="repository root, one or more (default: the current folder)")
     _common_index_options(index, tier=True)
+    index.add_argument("--ray", nargs="?", const="", default=None, metavar="ADDRESS",
+                       help="parse and embed on Ray (pip install 'codeseek[ray]'): the "
+                            "cluster at ADDRESS (HOST:PORT, ray://HOST:PORT or auto), or a "
+                            "local Ray instance without it; put it after the paths")
+    index.add_argument("--workers", type=int, default=None, metavar="N",
+                       help="Ray actors that parse and embed (default: 2; with --ray)")
     index.add_argument("--rebuild", action="store_true",
                        help="discard the existing index and build it from scratch")
     index.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
@@ -298,10 +304,41 @@ NO_INDEX_HINT = "; for an index built elsewhere, give --index-dir DIR or set COD
 
 
 def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
+    if args.workers is not None and args.ray is None:
+        raise UsageError("--workers goes with --ray")
+    if args.ray and Path(args.ray).is_dir():
+        raise UsageError(f"--ray took {printable(args.ray)} as its address; put --ray after "
+                         "the paths, or write --ray=ADDRESS")
+    if len(args.paths) > 1 and args.index_dir is not None:
+        raise UsageError("--index-dir names one index; give it with one PATH")
+    paths = [path for path in args.paths if _ready_to_index(path, args, out)]
+    if args.ray is None:
+        for path in paths:
+            _index_one(path, args, out, err)
+        return EXIT_OK
+    from codeseek.distributed import DEFAULT_WORKERS, index_on_ray
+
+    with contextlib.ExitStack() as stack:
+        indexes = [stack.enter_context(_open(path, args, create=True)) for path in paths]
+        for index in indexes:
+            _print_notes(index, err)
+        summaries = index_on_ray(
+            indexes, address=args.ray or None,
+            workers=DEFAULT_WORKERS if args.workers is None else args.workers,
+            progress=lambda _index: None if args.quiet else _LineProgress(err))
+    for path, summary in zip(paths, summaries, strict=True):
+        _print_summary(summary, out, err, path if len(paths) > 1 else None)
+    return EXIT_OK
+
+
+def _ready_to_index(path: str, args: argparse.Namespace, out: TextIO) -> bool:
+    """Whether to index ``path`` here (not when a daemon keeps it); with --rebuild,
+    its index files are deleted first."""
     from codeseek.api import remove_index_files
     from codeseek.config import load_settings
     from codeseek.errors import IndexCorrupt, IndexFormatMismatch, IndexNotFound
 
+    args.path = path
     daemon_pid = _running_daemon_pid(args)
     if daemon_pid is not None:
         if args.rebuild:
@@ -309,28 +346,39 @@ def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
                               "stop it before rebuilding")
         print(f"a codeseek daemon (pid {daemon_pid}) keeps this index up to date; "
               "nothing to do", file=out)
-        return EXIT_OK
+        return False
     if args.rebuild:
         # the repository check first: --rebuild never deletes another repository's index
         # nothing there, or nothing readable: rebuilding is the remedy
         with contextlib.suppress(IndexNotFound, IndexCorrupt, IndexFormatMismatch):
-            _open(args.path, args, create=False).close()
-        settings = load_settings(_root(args.path), index_dir=args.index_dir)
+            _open(path, args, create=False).close()
+        settings = load_settings(_root(path), index_dir=args.index_dir)
         remove_index_files(settings.index_dir)
-    with _open(args.path, args, create=True) as index:
+    return True
+
+
+def _index_one(path: str, args: argparse.Namespace, out: TextIO, err: TextIO) -> None:
+    """Index one repository in this process."""
+    with _open(path, args, create=True) as index:
         _print_notes(index, err)
         if args.quiet or not err.isatty():
             summary = index.update(progress=_LineProgress(err) if not args.quiet else None)
         else:
             summary = _update_with_bar(index, err)
-    print(format_summary(summary), file=out)
-    for path in summary.syntax_warnings[:20]:
-        print(f"warning: {printable(path)}: syntax errors; indexed the units that could be "
+    _print_summary(summary, out, err, path if len(args.paths) > 1 else None)
+
+
+def _print_summary(summary: UpdateSummary, out: TextIO, err: TextIO,
+                   path: str | None) -> None:
+    """The summary line (after the path, when several were indexed) and the warnings."""
+    prefix = f"{printable(path)}: " if path is not None else ""
+    print(prefix + format_summary(summary), file=out)
+    for warned in summary.syntax_warnings[:20]:
+        print(f"warning: {printable(warned)}: syntax errors; indexed the units that could be "
               "recovered", file=err)
     if len(summary.syntax_warnings) > 20:
         print(f"warning: {len(summary.syntax_warnings) - 20} more files with syntax errors "
               "(see `codeseek status`)", file=err)
-    return EXIT_OK
 
 
 def _running_daemon_pid(args: argparse.Namespace) -> int | None:

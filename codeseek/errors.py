@@ -32,7 +32,9 @@ where they are raised, with ``raise ... from exc``.
     │                            or tune on
     ├── ReportWriteError         the recall checks' HTML report could not be written
     ├── QuestionFileError        a question file is missing, unreadable or malformed
-    └── DaemonError              a running daemon broke off, timed out or answered garbage
+    ├── DaemonError              a running daemon broke off, timed out or answered garbage
+    └── ClusterError             ``index --ray``: Ray is not installed, the cluster cannot be
+                                 reached, or a worker failed
 """
 
 from __future__ import annotations
@@ -121,6 +123,10 @@ class QuestionFileError(CodeseekError):
 
 class DaemonError(CodeseekError):
     """A daemon listens on the index's socket but failed to answer a request."""
+
+
+class ClusterError(CodeseekError):
+    """Indexing on Ray cannot go on: no Ray, no cluster at the address, a worker failed."""
 
 
 def error_class(name: str) -> type[CodeseekError] | None:

@@ -22,10 +22,12 @@ from __future__ import annotations
 import hashlib
 import os
 import time
-from collections.abc import Callable, Iterable
+from collections.abc import Callable, Iterable, Iterator, Mapping
 from contextlib import AbstractContextManager, nullcontext
 from dataclasses import dataclass, field
 from pathlib import Path
+
+import numpy as np
 
 from codeseek import seal
 from codeseek.config import Settings
@@ -82,11 +84,28 @@ class UpdateSummary:
 
 @dataclass(frozen=True)
 class FileChange:
-    """One file to write: its scan record, content hash and parse (None: unchanged)."""
+    """One file to write: its scan record, content hash and parse (None: unchanged).
+
+    ``vectors`` holds vectors made elsewhere (by :mod:`codeseek.distributed`'s
+    workers) for units of this file, by content hash; the write path stores those
+    the store lacks and embeds only what is still missing.
+    """
 
     source: SourceFile
     sha256: str
     result: ParseResult | None
+    vectors: Mapping[str, np.ndarray] = field(default_factory=dict)
+
+
+@dataclass(frozen=True)
+class Plan:
+    """What an update found before anything is parsed: the scan, the stored files,
+    the files that may have changed (in scan order), and when it started."""
+
+    scan: ScanResult
+    known: dict[str, FileRow]
+    todo: list[SourceFile]
+    started: float
 
 
 @dataclass
@@ -128,19 +147,37 @@ class Updater:
 
     def full(self) -> UpdateSummary:
         """Bring the whole index up to date with the repository on disk."""
+        plan = self.begin()
+        changes = self.read_and_parse(plan.todo, plan.known, plan.scan)
+        self.apply(changes, self.gone(plan), plan.known, skipped=plan.scan.skipped_paths)
+        return self.summary(plan.scan.skipped, plan.started)
+
+    def begin(self) -> Plan:
+        """The first half of :meth:`full`: adopt the model, scan, find what may have changed."""
         started = time.perf_counter()
         self.adopt_model()
         self.refresh_lexical()
         self.report("scan", 0, 0)
         scan = scan_repository(self.settings)
         known = self.store.file_rows()
-        present = {f.path for f in scan.files}
         todo = [f for f in scan.files if may_have_changed(f, known.get(f.path))]
-        changes = self.read_and_parse(todo, known, scan)
-        present -= {path for path, _ in scan.skipped_paths}
-        gone = [row for path, row in known.items() if path not in present]
-        self.apply(changes, gone, known, skipped=scan.skipped_paths)
-        return self.summary(scan.skipped, started)
+        return Plan(scan, known, todo, started)
+
+    def finish(self, plan: Plan, changes: Iterable[FileChange]) -> UpdateSummary:
+        """The second half of :meth:`full` for changes made elsewhere: ``changes`` are
+        those of ``plan.todo`` in order (files left out are counted in ``plan.scan``),
+        streamed; each batch is written as :meth:`apply` writes it."""
+        self.report("embed", 0, 0)
+        self.write(batched(changes), lambda: self.gone(plan), plan.known,
+                   skipped=plan.scan.skipped_paths)
+        return self.summary(plan.scan.skipped, plan.started)
+
+    def gone(self, plan: Plan) -> list[FileRow]:
+        """Stored files that are no longer there, or are now left out (call after the
+        files of ``plan.todo`` were read: reading can leave a file out)."""
+        present = {f.path for f in plan.scan.files}
+        present -= {path for path, _ in plan.scan.skipped_paths}
+        return [row for path, row in plan.known.items() if path not in present]
 
     def paths(self, files: list[SourceFile], gone_paths: Iterable[str],
               scan: ScanResult | None = None) -> UpdateSummary:
@@ -181,15 +218,8 @@ class Updater:
                        scan: ScanResult) -> list[FileChange]:
         """Read, hash and (when the content changed) parse each file."""
         changes: list[FileChange] = []
-        for done, source in enumerate(todo, 1):
-            try:
-                data = read_source(source, self.settings.max_file_bytes)
-            except SkipFile as skip:
-                scan.skip(source.path, str(skip.args[0]))
-                continue
-            digest = hashlib.sha256(data).hexdigest()
-            row = known.get(source.path)
-            if row is not None and row.sha256 == digest:
+        for done, (source, digest, data) in enumerate(self.read_files(todo, known, scan), 1):
+            if data is None:
                 changes.append(FileChange(source, digest, None))
             else:
                 try:
@@ -197,12 +227,30 @@ class Updater:
                 except SkipFile as skip:  # e.g. over the parse time budget
                     scan.skip(source.path, str(skip.args[0]))
                     continue
-                self.tally.files_parsed += 1
-                if result.has_errors:
-                    self.tally.syntax_warnings.append(source.path)
+                self.note_parsed(source, result)
                 changes.append(FileChange(source, digest, result))
             self.report("parse", done, len(todo))
         return changes
+
+    def read_files(self, todo: list[SourceFile], known: dict[str, FileRow],
+                   scan: ScanResult) -> Iterator[tuple[SourceFile, str, bytes | None]]:
+        """(file, content hash, bytes) of each readable file, in order; the bytes are
+        None when the content is the stored one. Unreadable files are counted in ``scan``."""
+        for source in todo:
+            try:
+                data = read_source(source, self.settings.max_file_bytes)
+            except SkipFile as skip:
+                scan.skip(source.path, str(skip.args[0]))
+                continue
+            digest = hashlib.sha256(data).hexdigest()
+            row = known.get(source.path)
+            yield source, digest, (None if row is not None and row.sha256 == digest else data)
+
+    def note_parsed(self, source: SourceFile, result: ParseResult) -> None:
+        """Count one parsed file (and its syntax errors) in the summary."""
+        self.tally.files_parsed += 1
+        if result.has_errors:
+            self.tally.syntax_warnings.append(source.path)
 
     def embed_new(self, units: list[CodeUnit]) -> None:
         """Embed and commit the vectors these units lack (deduplicated by content)."""
@@ -250,16 +298,22 @@ class Updater:
         self._embed_total = len(self._wanted(
             [u for c in changes if c.result for u in c.result.units]))
         self.report("embed", 0, self._embed_total)
-        batches = _batches(changes)
-        for number, batch in enumerate(batches):
-            last = number == len(batches) - 1
+        self.write(batched(changes), lambda: gone, known, skipped)
+
+    def write(self, batches: Iterable[list[FileChange]], gone: Callable[[], list[FileRow]],
+              known: dict[str, FileRow], skipped: list[tuple[str, str]] | None) -> None:
+        """Write batch after batch: the vectors first, then the files and units in one
+        transaction; the last batch also removes the ``gone()`` files (asked for once
+        every batch has been taken) and records what was left out."""
+        for batch, last in _with_last(batches):
+            self.store_ready([c for c in batch if c.result])
             self.embed_new([u for c in batch if c.result for u in c.result.units])
             with self.write_lock():
                 with self.store.transaction():
                     for change in batch:
                         self._write_file(change, known.get(change.source.path))
                     if last:
-                        for row in gone:
+                        for row in gone():
                             self.tally.removed += len(self.store.delete_file(row.id))
                             self.tally.files_removed += 1
                         if skipped is not None:
@@ -268,6 +322,21 @@ class Updater:
                     bump_generation(self.store)
                 self.sync_vectors()
         self.backfill()
+
+    def store_ready(self, changes: list[FileChange]) -> None:
+        """Commit the vectors made elsewhere that the store lacks (nothing refers to them
+        yet, as with :meth:`embed_new`)."""
+        ready = {digest: vector for c in changes for digest, vector in c.vectors.items()}
+        if not ready:
+            return
+        have = self.store.known_hashes(self.embedder.model_id)
+        fresh = {digest: vector for digest, vector in ready.items() if digest not in have}
+        if fresh:
+            with self.write_lock(), self.store.transaction():
+                self.store.put_vectors(self.embedder.model_id, fresh)
+            self.tally.embedded += len(fresh)
+        self._embed_done += len(fresh)
+        self.report("embed", self._embed_done, self._embed_total)
 
     def backfill(self) -> None:
         """Embed units that still lack a vector (after a model change or a crash)."""
@@ -329,20 +398,30 @@ class Updater:
         )
 
 
-def _batches(changes: list[FileChange]) -> list[list[FileChange]]:
+def batched(changes: Iterable[FileChange]) -> Iterator[list[FileChange]]:
     """Changes cut into batches of at most FILES_PER_TRANSACTION files or
-    UNITS_PER_BATCH parsed units (always at least one batch, maybe empty)."""
-    batches: list[list[FileChange]] = [[]]
+    UNITS_PER_BATCH parsed units, as they come (always at least one batch, maybe empty)."""
+    batch: list[FileChange] = []
     units = 0
     for change in changes:
         count = len(change.result.units) if change.result else 0
-        if batches[-1] and (len(batches[-1]) >= FILES_PER_TRANSACTION
-                            or units + count > UNITS_PER_BATCH):
-            batches.append([])
+        if batch and (len(batch) >= FILES_PER_TRANSACTION or units + count > UNITS_PER_BATCH):
+            yield batch
+            batch = []
             units = 0
-        batches[-1].append(change)
+        batch.append(change)
         units += count
-    return batches
+    yield batch
+
+
+def _with_last(batches: Iterable[list[FileChange]]) -> Iterator[tuple[list[FileChange], bool]]:
+    """Each batch with whether it is the last (one batch read ahead)."""
+    iterator = iter(batches)
+    current = next(iterator, None)
+    while current is not None:
+        following = next(iterator, None)
+        yield current, following is None
+        current = following
 
 
 def may_have_changed(source: SourceFile, row: FileRow | None) -> bool:

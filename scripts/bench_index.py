@@ -3,6 +3,12 @@
 Usage: .venv/bin/python scripts/bench_index.py [PATH] [--torch-sample N] [--queries N]
        .venv/bin/python scripts/bench_index.py [PATH] --tiers [--tier-units N]
        .venv/bin/python scripts/bench_index.py --corpora [--repeat N]
+       .venv/bin/python scripts/bench_index.py [PATH] --ray
+
+With --ray it builds three fresh indexes of PATH in one run, with the packaged
+model: a local build, then a build on a local Ray instance with 1 worker and
+with 2 workers (``codeseek index --ray``), and prints units/s of each and the
+ratios (the Ray figures include starting the actor pool, not starting Ray).
 
 Without PATH it indexes a copy of this machine's Python standard library
 (test folders left out). It prints, from one run on one machine:
@@ -221,6 +227,39 @@ def compare_tiers(repo: Path, scratch: Path, units: int) -> None:
         index.close()
 
 
+def ray_scaling(repo: Path, scratch: Path) -> None:
+    """units/s of a local build and of Ray builds with 1 and 2 workers, one run."""
+    import logging
+
+    import ray
+
+    from codeseek.distributed import index_on_ray
+
+    rates: dict[str, float] = {}
+    local = open_index(repo, index_dir=scratch / "local", create=True)
+    local.embedder.encode(["warm up"])  # the ONNX export exists before any clock starts
+    start = time.perf_counter()
+    summary = local.update()
+    rates["local"] = summary.embedded / (time.perf_counter() - start)
+    local.close()
+    print(f"local build: {summary.units} units, {rates['local']:.1f} units/s")
+    for workers in (1, 2):
+        ray.init(num_cpus=workers, include_dashboard=False, log_to_driver=False,
+                 logging_level=logging.ERROR)
+        index = open_index(repo, index_dir=scratch / f"ray{workers}", create=True)
+        index.embedder.encode(["warm up"])
+        start = time.perf_counter()
+        (summary,) = index_on_ray([index], workers=workers)
+        rates[f"ray{workers}"] = summary.embedded / (time.perf_counter() - start)
+        index.close()
+        ray.shutdown()
+        print(f"Ray, {workers} worker(s): {summary.units} units, "
+              f"{rates[f'ray{workers}']:.1f} units/s")
+    print(f"ratios: Ray 1 worker / local = {rates['ray1'] / rates['local']:.2f}, "
+          f"Ray 2 workers / local = {rates['ray2'] / rates['local']:.2f}, "
+          f"Ray 2 / Ray 1 workers = {rates['ray2'] / rates['ray1']:.2f}")
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -236,6 +275,8 @@ def main() -> None:
                              "the modules the standard-library questions answer from)")
     parser.add_argument("--tier-units", type=int, default=2000,
                         help="unit texts of the raw encode for --tiers (default 2000)")
+    parser.add_argument("--ray", action="store_true",
+                        help="only the local build beside Ray builds with 1 and 2 workers")
     args = parser.parse_args()
     if args.corpora:
         corpus_throughput(args.repeat)
@@ -250,6 +291,13 @@ def main() -> None:
             print(f"command: .venv/bin/python scripts/bench_index.py {' '.join(sys.argv[1:])}")
             print(f"repository: {repo}")
             compare_tiers(repo, Path(scratch), args.tier_units)
+        return
+    if args.ray:
+        with tempfile.TemporaryDirectory() as scratch:
+            repo = Path(args.path).resolve() if args.path else copy_stdlib(
+                Path(scratch) / "stdlib")
+            print(f"repository: {repo}")
+            ray_scaling(repo, Path(scratch))
         return
 
     with tempfile.TemporaryDirectory() as scratch:
