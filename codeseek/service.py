@@ -61,10 +61,16 @@ class IndexStatus:
     bytes_on_disk: int
     adapter: dict[str, object] | None = None
     tier: str | None = None  # the embedding tier of the stored vectors (codeseek/tiers.py)
+    # a refinement under way (codeseek/refine.py): tier, model_id, refined, total,
+    # units_per_second, seconds_left; None (and left out of the JSON) when there is none
+    refinement: dict[str, object] | None = None
 
     def to_json(self) -> dict[str, object]:
-        """A JSON-ready dict."""
-        return dict(self.__dict__)
+        """A JSON-ready dict (``refinement`` only while one is under way)."""
+        record = dict(self.__dict__)
+        if record["refinement"] is None:
+            del record["refinement"]
+        return record
 
 
 @runtime_checkable
