@@ -35,7 +35,7 @@ from codeseek.query import Filters, Query
 
 if TYPE_CHECKING:
     from codeseek.api import Index, IndexStatus
-    from codeseek.indexer import UpdateSummary
+    from codeseek.indexer import ProgressCallback, UpdateSummary
     from codeseek.search import SearchHit
     from codeseek.service import SearchService
 
@@ -102,6 +102,14 @@ def _index_parser(commands: Any) -> None:
     index.add_argument("--rebuild", action="store_true",
                        help="discard the existing index and build it from scratch")
     index.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+    _refine_option(index, "then embeds it with the full tier (or --tier) in the foreground, "
+                          "in committed batches, while searches answer from what exists")
+
+
+def _refine_option(parser: argparse.ArgumentParser, then: str) -> None:
+    parser.add_argument("--refine", action="store_true",
+                        help="searchable first: build with the fast static tier, "
+                             f"{then}; an interrupted refinement resumes on the next run")
 
 
 def _search_parser(commands: Any) -> None:
@@ -168,6 +176,8 @@ def _watch_parser(commands: Any) -> None:
     _common_index_options(watch, tier=True)
     watch.add_argument("--poll", action="store_true",
                        help="watch by polling instead of inotify (network file systems)")
+    _refine_option(watch, "then embeds it with the full tier (or --tier) behind, between "
+                          "changes")
 
 
 def _outline_parser(commands: Any) -> None:
@@ -304,10 +314,13 @@ def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     with _open(args.path, args, create=True) as index:
         _print_notes(index, err)
         if args.quiet or not err.isatty():
-            summary = index.update(progress=_LineProgress(err) if not args.quiet else None)
+            summary, refined = _update_and_refine(
+                index, _LineProgress(err) if not args.quiet else None, args.refine, err)
         else:
-            summary = _update_with_bar(index, err)
+            summary, refined = _update_with_bar(index, err, args.refine)
     print(format_summary(summary), file=out)
+    if refined is not None:
+        print(f"refined {refined} units with the {index.tier} tier", file=out)
     for path in summary.syntax_warnings[:20]:
         print(f"warning: {printable(path)}: syntax errors; indexed the units that could be "
               "recovered", file=err)
@@ -345,11 +358,26 @@ class _LineProgress:
         if stage != self.stage:
             self.stage = stage
             label = {"scan": "scanning files", "parse": "parsing changed files",
-                     "embed": f"embedding {total} new units", "save": "saving"}.get(stage, stage)
+                     "embed": f"embedding {total} new units", "save": "saving",
+                     "refine": f"refining {total} units"}.get(stage, stage)
             print(f"codeseek: {label}", file=self.err, flush=True)
 
 
-def _update_with_bar(index: Index, err: TextIO) -> UpdateSummary:
+def _update_and_refine(index: Index, progress: ProgressCallback | None, refine: bool,
+                       err: TextIO) -> tuple[UpdateSummary, int | None]:
+    """Update the index; then, when a refinement is under way (``--refine`` now or an
+    interrupted one before), refine it to the end: the summary, and the units refined
+    (None: no refinement)."""
+    summary = index.update(progress=progress, refine=refine)
+    if not index.refining:
+        return summary, None
+    print("codeseek: searchable now; refining with the full-quality tier "
+          "(Ctrl-C is safe: the next run resumes)", file=err, flush=True)
+    return summary, index.refine(progress=progress)
+
+
+def _update_with_bar(index: Index, err: TextIO,
+                     refine: bool = False) -> tuple[UpdateSummary, int | None]:
     from rich.console import Console
     from rich.progress import (
         BarColumn,
@@ -369,7 +397,7 @@ def _update_with_bar(index: Index, err: TextIO) -> UpdateSummary:
                 tasks[stage] = bar.add_task(stage, total=total or None)
             bar.update(tasks[stage], completed=done, total=total or None)
 
-        return index.update(progress=progress)
+        return _update_and_refine(index, progress, refine, err)
 
 
 def format_summary(summary: UpdateSummary) -> str:
@@ -671,6 +699,8 @@ def format_status(status: IndexStatus, daemon: dict[str, Any] | None) -> str:
     ]
     if status.tier is not None:  # the vectors' embedding tier (codeseek/tiers.py)
         lines.insert(3, f"tier         {status.tier}")
+    if status.refinement is not None:  # codeseek/refine.py
+        lines.insert(4 if status.tier is not None else 3, _refinement_line(status.refinement))
     lines += [f"             {count:>6} {printable(language)}"
               for language, count in sorted(status.languages.items())]
     lines.append(f"updated      {updated} (generation {status.generation}; vector index "
@@ -684,6 +714,25 @@ def format_status(status: IndexStatus, daemon: dict[str, Any] | None) -> str:
         lines += [f"             {count:>6} {reason}"
                   for reason, count in sorted(status.skipped.items(), key=lambda kv: -kv[1])]
     return "".join(line + "\n" for line in lines)
+
+
+def _refinement_line(refinement: dict[str, Any]) -> str:
+    """``refining  120 of 400 units with the full tier (30%), about 12 s left``."""
+    refined, total = int(refinement["refined"]), int(refinement["total"])
+    share = f"{100 * refined / total:.0f}%" if total else "-"
+    left = refinement.get("seconds_left")
+    eta = (f", about {_duration(float(left))} left" if isinstance(left, int | float)
+           else ", time left known after the first batch")
+    return (f"refining     {refined} of {total} units with the {refinement['tier']} tier "
+            f"({share}){eta}; the rest are searched with the static tier")
+
+
+def _duration(seconds: float) -> str:
+    if seconds < 90:
+        return f"{max(seconds, 0):.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
 
 
 def _daemon_lines(daemon: dict[str, Any] | None) -> list[str]:
@@ -743,7 +792,7 @@ def cmd_watch(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
 
     with _open(args.path, args, create=True) as index:
         _print_notes(index, err)
-        run_foreground(index, log, poll=args.poll)
+        run_foreground(index, log, poll=args.poll, refine=args.refine)
     return EXIT_OK
 
 
