@@ -46,6 +46,7 @@ import tempfile
 import time
 from collections.abc import Callable
 from pathlib import Path
+from typing import TypeVar
 
 import numpy as np
 
@@ -60,8 +61,9 @@ from codeseek.embed import load_embedder  # noqa: E402
 from codeseek.languages import LanguageSpec, spec_by_name  # noqa: E402
 from codeseek.parse import _parser, parse_source  # noqa: E402
 from codeseek.scan import SkipFile, read_source, scan_repository  # noqa: E402
-from codeseek.tiers import TIERS  # noqa: E402
+from codeseek.tiers import TIERS, load_tier_embedder  # noqa: E402
 
+T = TypeVar("T")
 SKIP = shutil.ignore_patterns("test", "tests", "idle_test", "site-packages", "__pycache__")
 
 
@@ -221,6 +223,35 @@ def compare_tiers(repo: Path, scratch: Path, units: int) -> None:
         index.close()
 
 
+def timed(run: Callable[[], T]) -> tuple[T, float]:
+    """What ``run`` returns, and its wall time in seconds."""
+    start = time.perf_counter()
+    result = run()
+    return result, time.perf_counter() - start
+
+
+def searchable_first(repo: Path, scratch: Path) -> None:
+    """Time to first searchable with ``--refine`` (keyword + static tier) beside a full
+    build, and the refinement's own time, in one run on one repository."""
+    full_index = open_index(repo, index_dir=scratch / "index-full", create=True)
+    full_index.embedder.encode(["warm up"])  # loaded (and exported once) outside the clock
+    summary, full = timed(full_index.update)
+    print(f"full build (full tier): {summary.units} units, {full:.1f} s")
+    index = open_index(repo, index_dir=scratch / "index-refine", create=True,
+                       refine_embedder=full_index.embedder)
+    full_index.close()
+    load_tier_embedder(index.settings, "static").encode(["warm up"])  # distilled once
+    _, first = timed(lambda: index.update(refine=True))
+    hits = index.search("read a config file", 10)
+    print(f"--refine, searchable (keyword + static tier): {first:.1f} s "
+          f"({first / full:.2f}x the full build); first hit's tier: {hits[0].tier}")
+    refined, refine = timed(index.refine)
+    print(f"--refine, refinement to the full tier: {refined} units, {refine:.1f} s; "
+          f"full quality after {first + refine:.1f} s ({(first + refine) / full:.2f}x the "
+          f"full build)")
+    index.close()
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -236,11 +267,14 @@ def main() -> None:
                              "the modules the standard-library questions answer from)")
     parser.add_argument("--tier-units", type=int, default=2000,
                         help="unit texts of the raw encode for --tiers (default 2000)")
+    parser.add_argument("--refine", action="store_true",
+                        help="time to first searchable with --refine beside a full build "
+                             "(default repository: as for --tiers)")
     args = parser.parse_args()
     if args.corpora:
         corpus_throughput(args.repeat)
         return
-    if args.tiers:
+    if args.tiers or args.refine:
         with tempfile.TemporaryDirectory() as scratch:
             sys.path.insert(0, str(PROJECT / "tests"))
             from corpora import stdlib_question_subset
@@ -249,7 +283,10 @@ def main() -> None:
                     else stdlib_question_subset(Path(scratch) / "stdlib-subset"))
             print(f"command: .venv/bin/python scripts/bench_index.py {' '.join(sys.argv[1:])}")
             print(f"repository: {repo}")
-            compare_tiers(repo, Path(scratch), args.tier_units)
+            if args.tiers:
+                compare_tiers(repo, Path(scratch), args.tier_units)
+            if args.refine:
+                searchable_first(repo, Path(scratch))
         return
 
     with tempfile.TemporaryDirectory() as scratch:
