@@ -204,7 +204,8 @@ class Index:
     def _finish_refinement(self) -> None:
         """Search with the target tier from now on (its HNSW built and saved)."""
         with self.lock.write():
-            self._embedder = self.refine_embedder
+            if self._refine_embedder is not None:  # else a search switched already
+                self._embedder = self._refine_embedder
             self._refine_embedder = None
             self._refiner = None
             self._vectors = None
@@ -321,9 +322,14 @@ class Index:
         """
         self._check_built()
         if isinstance(self._searcher, RefiningSearcher) and not self.refining:
-            # another process finished the refinement: search its target tier now
+            # the refinement finished (in another process, or this one's writer thread
+            # is switching): search its target tier now
             with self.lock.write():
-                self._searcher = self._vectors = self._embedder = None
+                target = self._refine_embedder
+                self._searcher = self._vectors = None
+                self._embedder = target if target is not None and target.model_id == (
+                    self.store.manifest().get("model_id")) else None
+                self._refine_embedder = None
         if self._searcher is not None:
             self._refresh_adapter(self._searcher)
         if self._searcher is None:

@@ -302,3 +302,42 @@ def test_refine_toward_the_static_tier_is_refused(sample_copy: Path) -> None:
     with open_index(sample_copy, create=True, backend="fake", tier="static") as index, \
             pytest.raises(ConfigError, match="--tier full"):
         index.update(refine=True)
+
+
+def test_watch_refine_serves_throughout_and_ends_on_the_full_tier(sample_copy: Path) -> None:
+    import time
+
+    import codeseek.watch
+    from codeseek.client import DaemonClient
+    from codeseek.daemon import Daemon
+
+    with open_index(sample_copy, create=True, backend="fake") as index, \
+            pytest.MonkeyPatch.context() as patch:
+        patch.setattr(codeseek.watch, "UNITS_PER_REFINE_BATCH", 16)
+        daemon = Daemon(index, reconcile_seconds=3600, debounce=0.05, refine=True)
+        daemon.start()
+        try:
+            client = DaemonClient(index.settings.index_dir)
+            new = sample_copy / "python" / "kestrune" / "lanterns.py"
+            new.write_text('def count_teal_lanterns(street):\n    """Count the teal '
+                           'lanterns on a street."""\n    return len(street)\n',
+                           encoding="utf-8")
+            seen: list[dict[str, object] | None] = []
+            tiers: set[str | None] = set()
+            deadline = time.monotonic() + 30
+            while time.monotonic() < deadline:
+                record = client.status()["index"]
+                seen.append(record.get("refinement"))
+                tiers.update(h.tier for h in client.search("count the teal lanterns", 5))
+                if record.get("refinement") is None and record["tier"] == "full":
+                    break
+                time.sleep(0.05)
+            assert seen[0] is not None  # searchable (and answering) before it is refined
+            assert seen[-1] is None and index.tier == "full"
+            assert tiers <= {"static", "full"} and "full" in tiers
+            hits = client.search("count the teal lanterns", 1)
+            assert [h.qualname for h in hits] == ["count_teal_lanterns"]
+            assert hits[0].tier == "full"
+            assert daemon.watcher.state.last_error is None
+        finally:
+            daemon.stop()
