@@ -60,6 +60,7 @@ from codeseek.config import load_settings  # noqa: E402
 from codeseek.embed import load_embedder  # noqa: E402
 from codeseek.languages import LanguageSpec, spec_by_name  # noqa: E402
 from codeseek.parse import _parser, parse_source  # noqa: E402
+from codeseek.refine import pending_units  # noqa: E402
 from codeseek.scan import SkipFile, read_source, scan_repository  # noqa: E402
 from codeseek.tiers import TIERS, load_tier_embedder  # noqa: E402
 
@@ -230,25 +231,52 @@ def timed(run: Callable[[], T]) -> tuple[T, float]:
     return result, time.perf_counter() - start
 
 
-def searchable_first(repo: Path, scratch: Path) -> None:
+QUESTIONS = PROJECT / "tests" / "data" / "questions" / "stdlib.jsonl"
+
+
+def refinement_figures(index: Index, label: str, queries: list[str]) -> None:
+    """The standard-library questions' hit@10 and MRR@10 and the warm query p50 now."""
+    report = index.evaluate_questions(QUESTIONS)
+    walls = []
+    for query in queries:
+        _, wall = timed(functools.partial(index.search, query, 10))
+        walls.append(wall * 1000)
+    figures = (f"questions hit@10 {report.metrics['hit@10']:.3f}, MRR@10 "
+               f"{report.metrics['mrr@10']:.3f}" if report is not None else "no questions")
+    print(f"  {label:<22} {figures}; warm query p50 {statistics.median(walls):.1f} ms")
+
+
+def searchable_first(repo: Path, scratch: Path, queries: int) -> None:
     """Time to first searchable with ``--refine`` (keyword + static tier) beside a full
-    build, and the refinement's own time, in one run on one repository."""
+    build, the refinement's own time, and the question figures as it goes, in one run."""
     full_index = open_index(repo, index_dir=scratch / "index-full", create=True)
     full_index.embedder.encode(["warm up"])  # loaded (and exported once) outside the clock
     summary, full = timed(full_index.update)
     print(f"full build (full tier): {summary.units} units, {full:.1f} s")
+    docs = [s.unit.doc_summary for s in full_index.store.iter_units() if s.unit.doc_summary]
+    asked = docs[:: max(1, len(docs) // queries)][:queries]
+    refinement_figures(full_index, "full build", asked)
     index = open_index(repo, index_dir=scratch / "index-refine", create=True,
                        refine_embedder=full_index.embedder)
-    full_index.close()
     load_tier_embedder(index.settings, "static").encode(["warm up"])  # distilled once
     _, first = timed(lambda: index.update(refine=True))
     hits = index.search("read a config file", 10)
     print(f"--refine, searchable (keyword + static tier): {first:.1f} s "
           f"({first / full:.2f}x the full build); first hit's tier: {hits[0].tier}")
-    refined, refine = timed(index.refine)
-    print(f"--refine, refinement to the full tier: {refined} units, {refine:.1f} s; "
-          f"full quality after {first + refine:.1f} s ({(first + refine) / full:.2f}x the "
-          f"full build)")
+    todo = len(pending_units(index.store, full_index.embedder.model_id, 10**9))
+    refine = 0.0
+    done = 0
+    for share in (0, 25, 50, 75, 100):
+        limit = max(0, todo * share // 100 - done)  # 0: none embedded (the switch at 100%)
+        step, seconds = timed(functools.partial(index.refine, limit=limit))
+        done += step
+        refine += seconds
+        refinement_figures(index, f"{share}% refined" + (" (switched)" if share == 100
+                                                          else ""), asked)
+    print(f"--refine, refinement to the full tier: {done} units, {refine:.1f} s (with the "
+          f"figures' searches out of the clock); full quality after {first + refine:.1f} s "
+          f"({(first + refine) / full:.2f}x the full build)")
+    full_index.close()
     index.close()
 
 
@@ -286,7 +314,7 @@ def main() -> None:
             if args.tiers:
                 compare_tiers(repo, Path(scratch), args.tier_units)
             if args.refine:
-                searchable_first(repo, Path(scratch))
+                searchable_first(repo, Path(scratch), args.queries)
         return
 
     with tempfile.TemporaryDirectory() as scratch:
