@@ -717,22 +717,11 @@ def format_status(status: IndexStatus, daemon: dict[str, Any] | None) -> str:
 
 
 def _refinement_line(refinement: dict[str, Any]) -> str:
-    """``refining  120 of 400 units with the full tier (30%), about 12 s left``."""
-    refined, total = int(refinement["refined"]), int(refinement["total"])
-    share = f"{100 * refined / total:.0f}%" if total else "-"
-    left = refinement.get("seconds_left")
-    eta = (f", about {_duration(float(left))} left" if isinstance(left, int | float)
-           else ", time left known after the first batch")
-    return (f"refining     {refined} of {total} units with the {refinement['tier']} tier "
-            f"({share}){eta}; the rest are searched with the static tier")
+    """``refining  120 of 400 units with the full tier (30%), about 12 s left; ...``."""
+    from codeseek.service import describe_refinement
 
-
-def _duration(seconds: float) -> str:
-    if seconds < 90:
-        return f"{max(seconds, 0):.0f} s"
-    if seconds < 5400:
-        return f"{seconds / 60:.0f} min"
-    return f"{seconds / 3600:.1f} h"
+    return (f"refining     {describe_refinement(refinement)}; the rest are searched with "
+            "the static tier")
 
 
 def _daemon_lines(daemon: dict[str, Any] | None) -> list[str]:

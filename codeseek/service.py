@@ -73,6 +73,25 @@ class IndexStatus:
         return record
 
 
+def describe_refinement(refinement: dict[str, Any]) -> str:
+    """``120 of 400 units with the full tier (30%), about 12 s left``: a refinement's
+    progress (:attr:`IndexStatus.refinement`) for ``status`` and the UI."""
+    refined, total = int(str(refinement["refined"])), int(str(refinement["total"]))
+    share = f"{100 * refined / total:.0f}%" if total else "-"
+    left = refinement.get("seconds_left")
+    eta = (f", about {_duration(float(left))} left" if isinstance(left, int | float)
+           else ", time left known after the first batch")
+    return f"{refined} of {total} units with the {refinement['tier']} tier ({share}){eta}"
+
+
+def _duration(seconds: float) -> str:
+    if seconds < 90:
+        return f"{max(seconds, 0):.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
+
+
 @runtime_checkable
 class SearchService(Protocol):
     """What answers searches: the in-process index or a running daemon."""

@@ -130,6 +130,11 @@ def test_progress_in_status_text_and_json(sample_copy: Path) -> None:
     assert record["seconds_left"] is not None and record["seconds_left"] >= 0
     code, out, _ = _run("status", str(sample_copy))
     assert f"refining     {refined} of {total} units with the full tier" in out
+    from codeseek.tui.render import index_summary
+
+    with open_index(sample_copy, backend="fake") as index:
+        status = index.status()
+    assert f"· refining {refined} of {total} units" in index_summary(status, "in process")
 
 
 def test_most_documented_files_are_refined_first(sample_copy: Path) -> None:
