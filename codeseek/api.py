@@ -30,6 +30,7 @@ from codeseek.confidence import Baseline
 from codeseek.config import Settings, load_settings
 from codeseek.embed import Embedder
 from codeseek.errors import (
+    ConfigError,
     IndexBuilding,
     IndexCorrupt,
     IndexLocked,
@@ -51,6 +52,15 @@ from codeseek.indexer import (
 from codeseek.locks import ReadWriteLock
 from codeseek.multi import Basis, Pick, Sides
 from codeseek.query import DEFAULT_K, Filters, Query, as_queries, filters_of
+from codeseek.refine import (
+    FIRST_TIER,
+    REFINE_MODEL_KEY,
+    UNITS_PER_REFINE_BATCH,
+    Refiner,
+    RefiningSearcher,
+    begin_refinement,
+    refinement_of,
+)
 from codeseek.scan import ScanResult, SourceFile
 from codeseek.search import DEFAULT_FUSION, Fusion, Searcher, SearchHit, neighbour_units
 from codeseek.service import IndexStatus, repository_mismatch
@@ -69,10 +79,13 @@ LOCK_NAME = "writer.lock"
 class Index:
     """One repository's index: update it, search it, ask its status."""
 
-    def __init__(self, settings: Settings, store: Store, embedder: Embedder | None = None) -> None:
+    def __init__(self, settings: Settings, store: Store, embedder: Embedder | None = None,
+                 refine_embedder: Embedder | None = None) -> None:
         self.settings = settings
         self.store = store
         self._embedder = embedder
+        self._refine_embedder = refine_embedder  # the target of a refinement (refine.py)
+        self._refiner: Refiner | None = None
         self._vectors: VectorIndex | None = None
         self._searcher: Searcher | None = None
         self._adapter_seen: tuple[int, int, int] | None = None  # the adapter file searched with
@@ -103,8 +116,30 @@ class Index:
         the one its vectors were made with, else DEFAULT_TIER (a new index)."""
         if self._embedder is not None:
             return tier_of(self._embedder.model_id) or DEFAULT_TIER
-        return (self.settings.tier or tier_of(self.store.manifest().get("model_id"))
-                or DEFAULT_TIER)
+        manifest = self.store.manifest()
+        target = tier_of(manifest.get(REFINE_MODEL_KEY))
+        if target is not None and self.settings.tier in (None, target):
+            return FIRST_TIER  # under refinement: the index's own vectors are static
+        return self.settings.tier or tier_of(manifest.get("model_id")) or DEFAULT_TIER
+
+    @property
+    def refine_embedder(self) -> Embedder:
+        """The model a refinement embeds toward: the one the manifest names, else the
+        settings' tier (default: full), loaded on first use."""
+        if self._refine_embedder is None:
+            target = tier_of(self.store.manifest().get(REFINE_MODEL_KEY))
+            tier = target or self.settings.tier or DEFAULT_TIER
+            if tier == FIRST_TIER:
+                raise ConfigError(f"--refine embeds toward a slower tier than {FIRST_TIER}; "
+                                  "ask for --tier full or --tier int8")
+            self._refine_embedder = load_tier_embedder(self.settings, tier)
+        return self._refine_embedder
+
+    @property
+    def refining(self) -> bool:
+        """Whether a refinement is under way (the first tier searchable, the target tier
+        filled in behind, :mod:`codeseek.refine`)."""
+        return REFINE_MODEL_KEY in self.store.manifest()
 
     # -- writing ---------------------------------------------------------------------
 
@@ -113,9 +148,16 @@ class Index:
         """Warnings about the index folder, to show once (when the index was made)."""
         return list(self.store.notes)
 
-    def update(self, progress: ProgressCallback | None = None) -> UpdateSummary:
-        """Bring the index up to date with the files on disk, and save the vector index."""
+    def update(self, progress: ProgressCallback | None = None, *,
+               refine: bool = False) -> UpdateSummary:
+        """Bring the index up to date with the files on disk, and save the vector index.
+
+        With ``refine``, an index whose vectors are not all of the target tier (the
+        settings' tier, default full) is built with the static tier first and marked for
+        refinement: :meth:`refine` then embeds it with the target tier behind."""
         with self.writer_lock():
+            if refine:
+                self._begin_refinement()
             summary = self.updater(progress).full()
             self.finish_build(progress)
             return summary
@@ -129,6 +171,55 @@ class Index:
         self.save()
         if progress:
             progress("save", 1, 1)
+
+    def _begin_refinement(self) -> None:
+        target = self.refine_embedder
+        if self.store.manifest().get("model_id") == target.model_id:
+            return  # built with the target tier already: a plain update
+        begin_refinement(self.store, target, self.lock.write)
+        if self._embedder is None or tier_of(self._embedder.model_id) != FIRST_TIER:
+            self._embedder = load_tier_embedder(self.settings, FIRST_TIER)
+            self._vectors = None
+            self._searcher = None
+
+    def refine(self, progress: ProgressCallback | None = None,
+               limit: int | None = None) -> int:
+        """Embed up to ``limit`` units (default: all) with the refinement's target tier,
+        in committed batches, most useful files first; once none is left, the target
+        tier becomes the index's own. Returns the units embedded (0: not refining)."""
+        if not self.refining:
+            return 0
+        done = 0
+        with self.writer_lock():
+            refiner = self._refiner
+            if refiner is None or refiner.embedder is not self.refine_embedder:
+                refiner = self._refiner = Refiner(self.store, self.refine_embedder,
+                                                  self.lock.write)
+            while limit is None or done < limit:
+                batch = UNITS_PER_REFINE_BATCH if limit is None else min(
+                    UNITS_PER_REFINE_BATCH, limit - done)
+                embedded = refiner.step(batch)
+                done += embedded
+                state = refinement_of(self.store)
+                if progress and state is not None:
+                    progress("refine", state.refined, state.total)
+                if embedded == 0:
+                    break
+            if refiner.finish():
+                self._finish_refinement()
+        return done
+
+    def _finish_refinement(self) -> None:
+        """Search with the target tier from now on (its HNSW built and saved)."""
+        with self.lock.write():
+            if self._refine_embedder is not None:  # else a search switched already
+                self._embedder = self._refine_embedder
+            self._refine_embedder = None
+            self._refiner = None
+            self._vectors = None
+            self._searcher = None
+        self._vectors_for(self.embedder.model_id, self.embedder.dim)
+        self.save()
 
     def update_files(self, files: list[SourceFile], gone: list[str],
                      scan: ScanResult | None = None) -> UpdateSummary:
@@ -240,6 +331,15 @@ class Index:
         An index whose first build is not whole is refused (:class:`IndexBuilding`).
         """
         self._check_built()
+        if isinstance(self._searcher, RefiningSearcher) and not self.refining:
+            # the refinement finished (in another process, or this one's writer thread
+            # is switching): search its target tier now
+            with self.lock.write():
+                target = self._refine_embedder
+                self._searcher = self._vectors = None
+                self._embedder = target if target is not None and target.model_id == (
+                    self.store.manifest().get("model_id")) else None
+                self._refine_embedder = None
         if self._searcher is not None:
             self._refresh_adapter(self._searcher)
         if self._searcher is None:
@@ -265,8 +365,14 @@ class Index:
             vectors = self._vectors_for(embedder.model_id, embedder.dim)
             self._adapter_seen = self._adapter_signature()
             adapter = load_adapter(self.settings.index_dir, embedder.model_id)
-            self._searcher = Searcher(self.store, vectors, embedder, embedder.model_id,
-                                      self.lock, adapter=adapter, fusion=_fusion_of(adapter))
+            if self.refining and tier_of(embedder.model_id) == FIRST_TIER:
+                self._searcher = RefiningSearcher(
+                    self.store, vectors, embedder, embedder.model_id, self.lock,
+                    adapter=adapter, fusion=_fusion_of(adapter), full=self.refine_embedder)
+            else:
+                self._searcher = Searcher(self.store, vectors, embedder, embedder.model_id,
+                                          self.lock, adapter=adapter,
+                                          fusion=_fusion_of(adapter))
         return self._searcher
 
     def search(self, query: str | Query, k: int = DEFAULT_K, *,
@@ -559,6 +665,7 @@ class Index:
         size = sum(info.st_size for info in map(os.lstat, self.settings.index_dir.iterdir())
                    if stat.S_ISREG(info.st_mode))
         updated = manifest.get("updated_at")
+        refinement = refinement_of(self.store)
         return IndexStatus(
             repo=str(self.settings.repo), index_dir=str(self.settings.index_dir),
             files=counts["files"], units=counts["units"], languages=self.store.languages(),
@@ -574,6 +681,7 @@ class Index:
             updated_at=float(updated) if updated else None,
             bytes_on_disk=size,
             adapter=adapter_summary(self.settings.index_dir),
+            refinement=refinement.to_json() if refinement is not None else None,
         )
 
 
@@ -618,6 +726,7 @@ def open_index(
     embedder: Embedder | None = None,
     settings: Settings | None = None,
     tier: str | None = None,
+    refine_embedder: Embedder | None = None,
 ) -> Index:
     """Open the index of ``repo`` (with ``create``, make it if missing).
 
@@ -635,7 +744,7 @@ def open_index(
     except BaseException:
         store.close()
         raise
-    return Index(settings, store, embedder)
+    return Index(settings, store, embedder, refine_embedder)
 
 
 def check_repository(settings: Settings, store: Store) -> None:

@@ -35,7 +35,7 @@ from codeseek.query import Filters, Query
 
 if TYPE_CHECKING:
     from codeseek.api import Index, IndexStatus
-    from codeseek.indexer import UpdateSummary
+    from codeseek.indexer import ProgressCallback, UpdateSummary
     from codeseek.search import SearchHit
     from codeseek.service import SearchService
     from codeseek.tui.app import CodeseekApp
@@ -109,6 +109,14 @@ def _index_parser(commands: Any) -> None:
     index.add_argument("--rebuild", action="store_true",
                        help="discard the existing index and build it from scratch")
     index.add_argument("-q", "--quiet", action="store_true", help="no progress bar")
+    _refine_option(index, "then embeds it with the full tier (or --tier) in the foreground, "
+                          "in committed batches, while searches answer from what exists")
+
+
+def _refine_option(parser: argparse.ArgumentParser, then: str) -> None:
+    parser.add_argument("--refine", action="store_true",
+                        help="searchable first: build with the fast static tier, "
+                             f"{then}; an interrupted refinement resumes on the next run")
 
 
 def _search_parser(commands: Any) -> None:
@@ -183,6 +191,8 @@ def _watch_parser(commands: Any) -> None:
     _common_index_options(watch, tier=True)
     watch.add_argument("--poll", action="store_true",
                        help="watch by polling instead of inotify (network file systems)")
+    _refine_option(watch, "then embeds it with the full tier (or --tier) behind, between "
+                          "changes")
 
 
 def _outline_parser(commands: Any) -> None:
@@ -306,6 +316,8 @@ NO_INDEX_HINT = "; for an index built elsewhere, give --index-dir DIR or set COD
 def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
     if args.workers is not None and args.ray is None:
         raise UsageError("--workers goes with --ray")
+    if args.ray is not None and args.refine:
+        raise UsageError("--refine goes without --ray: a Ray build embeds with one tier")
     if args.ray and Path(args.ray).is_dir():
         raise UsageError(f"--ray took {printable(args.ray)} as its address; put --ray after "
                          "the paths, or write --ray=ADDRESS")
@@ -362,10 +374,14 @@ def _index_one(path: str, args: argparse.Namespace, out: TextIO, err: TextIO) ->
     with _open(path, args, create=True) as index:
         _print_notes(index, err)
         if args.quiet or not err.isatty():
-            summary = index.update(progress=_LineProgress(err) if not args.quiet else None)
+            summary, refined = _update_and_refine(
+                index, _LineProgress(err) if not args.quiet else None, args.refine, err)
         else:
-            summary = _update_with_bar(index, err)
+            summary, refined = _update_with_bar(index, err, args.refine)
+        tier = index.tier
     _print_summary(summary, out, err, path if len(args.paths) > 1 else None)
+    if refined is not None:
+        print(f"refined {refined} units with the {tier} tier", file=out)
 
 
 def _print_summary(summary: UpdateSummary, out: TextIO, err: TextIO,
@@ -409,11 +425,26 @@ class _LineProgress:
         if stage != self.stage:
             self.stage = stage
             label = {"scan": "scanning files", "parse": "parsing changed files",
-                     "embed": f"embedding {total} new units", "save": "saving"}.get(stage, stage)
+                     "embed": f"embedding {total} new units", "save": "saving",
+                     "refine": f"refining {total} units"}.get(stage, stage)
             print(f"codeseek: {label}", file=self.err, flush=True)
 
 
-def _update_with_bar(index: Index, err: TextIO) -> UpdateSummary:
+def _update_and_refine(index: Index, progress: ProgressCallback | None, refine: bool,
+                       err: TextIO) -> tuple[UpdateSummary, int | None]:
+    """Update the index; then, when a refinement is under way (``--refine`` now or an
+    interrupted one before), refine it to the end: the summary, and the units refined
+    (None: no refinement)."""
+    summary = index.update(progress=progress, refine=refine)
+    if not index.refining:
+        return summary, None
+    print("codeseek: searchable now; refining with the full-quality tier "
+          "(Ctrl-C is safe: the next run resumes)", file=err, flush=True)
+    return summary, index.refine(progress=progress)
+
+
+def _update_with_bar(index: Index, err: TextIO,
+                     refine: bool = False) -> tuple[UpdateSummary, int | None]:
     from rich.console import Console
     from rich.progress import (
         BarColumn,
@@ -433,7 +464,7 @@ def _update_with_bar(index: Index, err: TextIO) -> UpdateSummary:
                 tasks[stage] = bar.add_task(stage, total=total or None)
             bar.update(tasks[stage], completed=done, total=total or None)
 
-        return index.update(progress=progress)
+        return _update_and_refine(index, progress, refine, err)
 
 
 def format_summary(summary: UpdateSummary) -> str:
@@ -753,6 +784,8 @@ def format_status(status: IndexStatus, daemon: dict[str, Any] | None) -> str:
     ]
     if status.tier is not None:  # the vectors' embedding tier (codeseek/tiers.py)
         lines.insert(3, f"tier         {status.tier}")
+    if status.refinement is not None:  # codeseek/refine.py
+        lines.insert(4 if status.tier is not None else 3, _refinement_line(status.refinement))
     lines += [f"             {count:>6} {printable(language)}"
               for language, count in sorted(status.languages.items())]
     lines.append(f"updated      {updated} (generation {status.generation}; vector index "
@@ -766,6 +799,14 @@ def format_status(status: IndexStatus, daemon: dict[str, Any] | None) -> str:
         lines += [f"             {count:>6} {reason}"
                   for reason, count in sorted(status.skipped.items(), key=lambda kv: -kv[1])]
     return "".join(line + "\n" for line in lines)
+
+
+def _refinement_line(refinement: dict[str, Any]) -> str:
+    """``refining  120 of 400 units with the full tier (30%), about 12 s left; ...``."""
+    from codeseek.service import describe_refinement
+
+    return (f"refining     {describe_refinement(refinement)}; the rest are searched with "
+            "the static tier")
 
 
 def _daemon_lines(daemon: dict[str, Any] | None) -> list[str]:
@@ -825,7 +866,7 @@ def cmd_watch(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
 
     with _open(args.path, args, create=True) as index:
         _print_notes(index, err)
-        run_foreground(index, log, poll=args.poll)
+        run_foreground(index, log, poll=args.poll, refine=args.refine)
     return EXIT_OK
 
 

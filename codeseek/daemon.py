@@ -76,6 +76,7 @@ from codeseek.display import printable
 from codeseek.errors import CodeseekError, IndexLocked
 from codeseek.multi import Pick
 from codeseek.query import Query
+from codeseek.refine import refinement_of
 from codeseek.watch import RECONCILE_SECONDS, Watcher
 
 LOCK_NAME = "daemon.lock"
@@ -153,8 +154,9 @@ class Daemon:
 
     def __init__(self, index: Index, *, log: Log | None = None, poll: bool = False,
                  reconcile_seconds: float = RECONCILE_SECONDS,
-                 debounce: float | None = None) -> None:
+                 debounce: float | None = None, refine: bool = False) -> None:
         self.index = index
+        self.refine = refine  # build with the static tier first (codeseek/refine.py)
         self.log = log or (lambda message: None)
         folder = index.settings.index_dir
         self.socket_path = folder / SOCKET_NAME
@@ -185,9 +187,13 @@ class Daemon:
         self.watcher.observe()
         self.state = "indexing"
         self.log(f"codeseek: indexing {self.index.settings.repo}")
-        summary = self.index.update()
+        summary = self.index.update(refine=self.refine)
         self.log(f"codeseek: {summary.files} files, {summary.units} units indexed "
                  f"({summary.embedded} embedded, {summary.seconds:.1f} s)")
+        refinement = refinement_of(self.index.store)
+        if refinement is not None:
+            self.log(f"codeseek: searchable now; refining with the {refinement.tier} tier "
+                     f"behind ({refinement.refined} of {refinement.total} units so far)")
         self.watcher.start()  # applies what arrived during the build first
         self.state = "watching"
         self.log(f"codeseek: watching ({self.watcher.state.mode}); queries on {self.socket_path}")
@@ -408,9 +414,10 @@ def _send(handler: socketserver.StreamRequestHandler, message: dict[str, Any]) -
     return True
 
 
-def run_foreground(index: Index, log: Log, *, poll: bool = False) -> None:
+def run_foreground(index: Index, log: Log, *, poll: bool = False,
+                   refine: bool = False) -> None:
     """``codeseek watch``: run until Ctrl-C, SIGTERM or a shutdown request."""
-    daemon = Daemon(index, log=log, poll=poll)
+    daemon = Daemon(index, log=log, poll=poll, refine=refine)
 
     def on_signal(signum: int, frame: object) -> None:
         threading.Thread(target=daemon.stop, daemon=True).start()

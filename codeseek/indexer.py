@@ -38,6 +38,9 @@ from codeseek.store import FileRow, Store, missing_vector_units, vector_unit_ids
 from codeseek.units import LEXICAL_TEXT, CodeUnit, lexical_codes
 from codeseek.vectors import HNSW_NAME, VectorIndex
 
+REFINE_MODEL_KEY = "refine_model_id"
+"""The manifest key naming the model a refinement embeds toward (:mod:`codeseek.refine`)."""
+
 ProgressCallback = Callable[[str, int, int], None]
 """Called as ``progress(stage, done, total)``; stages: scan, parse, embed, save."""
 
@@ -198,11 +201,14 @@ class Updater:
     # -- stages ----------------------------------------------------------------------
 
     def adopt_model(self) -> None:
-        """Record the embedder's model; a new model drops the old vectors."""
-        if self.store.manifest().get("model_id") == self.embedder.model_id:
+        """Record the embedder's model; a new model drops the old vectors (but those of
+        a refinement's target model, :mod:`codeseek.refine`)."""
+        manifest = self.store.manifest()
+        if manifest.get("model_id") == self.embedder.model_id:
             return
+        target = manifest.get(REFINE_MODEL_KEY)
         with self.write_lock(), self.store.transaction():
-            self.store.drop_other_models(self.embedder.model_id)
+            self.store.drop_other_models(self.embedder.model_id, *([target] if target else []))
             self.store.set_manifest(model_id=self.embedder.model_id, dim=str(self.embedder.dim))
             bump_generation(self.store)
 

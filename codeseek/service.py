@@ -61,10 +61,35 @@ class IndexStatus:
     bytes_on_disk: int
     adapter: dict[str, object] | None = None
     tier: str | None = None  # the embedding tier of the stored vectors (codeseek/tiers.py)
+    # a refinement under way (codeseek/refine.py): tier, model_id, refined, total,
+    # units_per_second, seconds_left; None (and left out of the JSON) when there is none
+    refinement: dict[str, object] | None = None
 
     def to_json(self) -> dict[str, object]:
-        """A JSON-ready dict."""
-        return dict(self.__dict__)
+        """A JSON-ready dict (``refinement`` only while one is under way)."""
+        record = dict(self.__dict__)
+        if record["refinement"] is None:
+            del record["refinement"]
+        return record
+
+
+def describe_refinement(refinement: dict[str, Any]) -> str:
+    """``120 of 400 units with the full tier (30%), about 12 s left``: a refinement's
+    progress (:attr:`IndexStatus.refinement`) for ``status`` and the UI."""
+    refined, total = int(str(refinement["refined"])), int(str(refinement["total"]))
+    share = f"{100 * refined / total:.0f}%" if total else "-"
+    left = refinement.get("seconds_left")
+    eta = (f", about {_duration(float(left))} left" if isinstance(left, int | float)
+           else ", time left known after the first batch")
+    return f"{refined} of {total} units with the {refinement['tier']} tier ({share}){eta}"
+
+
+def _duration(seconds: float) -> str:
+    if seconds < 90:
+        return f"{max(seconds, 0):.0f} s"
+    if seconds < 5400:
+        return f"{seconds / 60:.0f} min"
+    return f"{seconds / 3600:.1f} h"
 
 
 @runtime_checkable

@@ -330,6 +330,11 @@ class Store:
         except sqlite3.Error as exc:
             raise _translate(exc, self.path) from exc
 
+    def delete_manifest(self, *keys: str) -> None:
+        """Remove manifest keys (inside the caller's transaction if there is one)."""
+        for key in keys:
+            self._exec("DELETE FROM manifest WHERE key=?", (key,))
+
     def first_build_finished(self) -> bool:
         """Whether a full build has been committed (an index made before this mark
         existed counts as finished)."""
@@ -602,9 +607,11 @@ class Store:
         )
         return cursor.rowcount
 
-    def drop_other_models(self, model_id: str) -> None:
-        """Delete the vectors of every other model."""
-        self._exec("DELETE FROM vectors WHERE model_id != ?", (model_id,))
+    def drop_other_models(self, model_id: str, *keep: str) -> None:
+        """Delete the vectors of every other model (but those of ``keep``)."""
+        kept = (model_id, *keep)
+        self._exec(f"DELETE FROM vectors WHERE model_id NOT IN ({','.join('?' * len(kept))})",
+                   kept)
 
     # -- lexical search ------------------------------------------------------------
 

@@ -30,6 +30,7 @@ from codeseek.api import Index
 from codeseek.display import printable
 from codeseek.errors import CodeseekError
 from codeseek.indexer import UpdateSummary
+from codeseek.refine import UNITS_PER_REFINE_BATCH
 from codeseek.scan import (
     IgnoreRules,
     ScanResult,
@@ -194,6 +195,7 @@ class Watcher:
         self._worker: threading.Thread | None = None
         self._failed: set[str] = set()
         self._failed_at = 0.0
+        self._refine_retry_at = 0.0
         self.retry_seconds = RETRY_SECONDS
 
     # -- lifecycle -------------------------------------------------------------------
@@ -275,8 +277,10 @@ class Watcher:
     def _run(self) -> None:
         next_reconcile = time.monotonic() + self._reconcile_seconds
         next_save = time.monotonic() + self._save_seconds
+        refining = self._refining()
         while not self._stop.is_set():
-            batch = self.queue.take(timeout=1.0, debounce=self._debounce)
+            # while a refinement runs, changes still come first: a short wait, then a batch
+            batch = self.queue.take(timeout=0.05 if refining else 1.0, debounce=self._debounce)
             if self._stop.is_set():
                 break
             now = time.monotonic()
@@ -284,12 +288,37 @@ class Watcher:
                 batch, self._failed = set(self._failed), set()  # retry after a write error
             if batch:
                 self.apply(batch)
+            elif refining and now >= self._refine_retry_at:
+                refining = self.refine_step()
             if now >= next_reconcile:
                 self.apply({""})
                 next_reconcile = time.monotonic() + self._reconcile_seconds
             if now >= next_save:
                 self._save()
                 next_save = time.monotonic() + self._save_seconds
+
+    def _refining(self) -> bool:
+        try:
+            return self.index.refining
+        except CodeseekError:
+            return False
+
+    def refine_step(self) -> bool:
+        """Embed one batch of the refinement (codeseek/refine.py); whether more remain."""
+        try:
+            self.index.refine(limit=UNITS_PER_REFINE_BATCH)
+        except Exception as exc:  # noqa: BLE001 - the watcher must outlive any one batch
+            message = str(exc) if isinstance(exc, CodeseekError) else (
+                f"unexpected {type(exc).__name__}: {exc}")
+            self.state.last_error = message
+            self.log(f"error: refining: {message}; searching what is refined so far, "
+                     f"retrying in {self.retry_seconds:.0f} s")
+            self._refine_retry_at = time.monotonic() + self.retry_seconds
+            return True
+        if self.index.refining:
+            return True
+        self.log("codeseek: refinement done; every unit has its full-quality vector")
+        return False
 
     def apply(self, batch: set[str]) -> UpdateSummary | None:
         """Apply a batch of changed paths ("" = reconcile the whole tree)."""

@@ -52,6 +52,7 @@ import tempfile
 import time
 from collections.abc import Callable
 from pathlib import Path
+from typing import TypeVar
 
 import numpy as np
 
@@ -65,9 +66,11 @@ from codeseek.config import load_settings  # noqa: E402
 from codeseek.embed import load_embedder  # noqa: E402
 from codeseek.languages import LanguageSpec, spec_by_name  # noqa: E402
 from codeseek.parse import _parser, parse_source  # noqa: E402
+from codeseek.refine import pending_units  # noqa: E402
 from codeseek.scan import SkipFile, read_source, scan_repository  # noqa: E402
-from codeseek.tiers import TIERS  # noqa: E402
+from codeseek.tiers import TIERS, load_tier_embedder  # noqa: E402
 
+T = TypeVar("T")
 SKIP = shutil.ignore_patterns("test", "tests", "idle_test", "site-packages", "__pycache__")
 
 
@@ -260,6 +263,62 @@ def ray_scaling(repo: Path, scratch: Path) -> None:
           f"Ray 2 / Ray 1 workers = {rates['ray2'] / rates['ray1']:.2f}")
 
 
+def timed(run: Callable[[], T]) -> tuple[T, float]:
+    """What ``run`` returns, and its wall time in seconds."""
+    start = time.perf_counter()
+    result = run()
+    return result, time.perf_counter() - start
+
+
+QUESTIONS = PROJECT / "tests" / "data" / "questions" / "stdlib.jsonl"
+
+
+def refinement_figures(index: Index, label: str, queries: list[str]) -> None:
+    """The standard-library questions' hit@10 and MRR@10 and the warm query p50 now."""
+    report = index.evaluate_questions(QUESTIONS)
+    walls = []
+    for query in queries:
+        _, wall = timed(functools.partial(index.search, query, 10))
+        walls.append(wall * 1000)
+    figures = (f"questions hit@10 {report.metrics['hit@10']:.3f}, MRR@10 "
+               f"{report.metrics['mrr@10']:.3f}" if report is not None else "no questions")
+    print(f"  {label:<22} {figures}; warm query p50 {statistics.median(walls):.1f} ms")
+
+
+def searchable_first(repo: Path, scratch: Path, queries: int) -> None:
+    """Time to first searchable with ``--refine`` (keyword + static tier) beside a full
+    build, the refinement's own time, and the question figures as it goes, in one run."""
+    full_index = open_index(repo, index_dir=scratch / "index-full", create=True)
+    full_index.embedder.encode(["warm up"])  # loaded (and exported once) outside the clock
+    summary, full = timed(full_index.update)
+    print(f"full build (full tier): {summary.units} units, {full:.1f} s")
+    docs = [s.unit.doc_summary for s in full_index.store.iter_units() if s.unit.doc_summary]
+    asked = docs[:: max(1, len(docs) // queries)][:queries]
+    refinement_figures(full_index, "full build", asked)
+    index = open_index(repo, index_dir=scratch / "index-refine", create=True,
+                       refine_embedder=full_index.embedder)
+    load_tier_embedder(index.settings, "static").encode(["warm up"])  # distilled once
+    _, first = timed(lambda: index.update(refine=True))
+    hits = index.search("read a config file", 10)
+    print(f"--refine, searchable (keyword + static tier): {first:.1f} s "
+          f"({first / full:.2f}x the full build); first hit's tier: {hits[0].tier}")
+    todo = len(pending_units(index.store, full_index.embedder.model_id, 10**9))
+    refine = 0.0
+    done = 0
+    for share in (0, 25, 50, 75, 100):
+        limit = max(0, todo * share // 100 - done)  # 0: none embedded (the switch at 100%)
+        step, seconds = timed(functools.partial(index.refine, limit=limit))
+        done += step
+        refine += seconds
+        refinement_figures(index, f"{share}% refined" + (" (switched)" if share == 100
+                                                          else ""), asked)
+    print(f"--refine, refinement to the full tier: {done} units, {refine:.1f} s (with the "
+          f"figures' searches out of the clock); full quality after {first + refine:.1f} s "
+          f"({(first + refine) / full:.2f}x the full build)")
+    full_index.close()
+    index.close()
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -277,11 +336,14 @@ def main() -> None:
                         help="unit texts of the raw encode for --tiers (default 2000)")
     parser.add_argument("--ray", action="store_true",
                         help="only the local build beside Ray builds with 1 and 2 workers")
+    parser.add_argument("--refine", action="store_true",
+                        help="time to first searchable with --refine beside a full build "
+                             "(default repository: as for --tiers)")
     args = parser.parse_args()
     if args.corpora:
         corpus_throughput(args.repeat)
         return
-    if args.tiers:
+    if args.tiers or args.refine:
         with tempfile.TemporaryDirectory() as scratch:
             sys.path.insert(0, str(PROJECT / "tests"))
             from corpora import stdlib_question_subset
@@ -290,7 +352,10 @@ def main() -> None:
                     else stdlib_question_subset(Path(scratch) / "stdlib-subset"))
             print(f"command: .venv/bin/python scripts/bench_index.py {' '.join(sys.argv[1:])}")
             print(f"repository: {repo}")
-            compare_tiers(repo, Path(scratch), args.tier_units)
+            if args.tiers:
+                compare_tiers(repo, Path(scratch), args.tier_units)
+            if args.refine:
+                searchable_first(repo, Path(scratch), args.queries)
         return
     if args.ray:
         with tempfile.TemporaryDirectory() as scratch:

@@ -782,3 +782,17 @@ def test_since_refuses_what_it_cannot_read(indexed: Path, value: str) -> None:
     assert err == ("error: --since wants an ISO date (2026-11-30), a date and time "
                    "(2026-11-30T14:00) or an age (90m, 12h, 3d, 2w), not "
                    f"'{value}'\n")
+
+
+@pytest.mark.parametrize(("extra", "message"), [
+    (["--workers", "2"], "--workers goes with --ray"),
+    (["--refine", "--ray"], "--refine goes without --ray"),
+])
+def test_ray_options_that_do_not_go_together_are_one_usage_line(
+        sample_copy: Path, extra: list[str], message: str) -> None:
+    code, out, err = run_cli("index", str(sample_copy), "--backend", "fake", "-q", *extra)
+    assert code == 2
+    assert out == ""
+    lines = err.strip().splitlines()
+    assert len(lines) == 1 and message in lines[0]
+    assert not (sample_copy / ".codeseek").exists()  # refused before anything is written

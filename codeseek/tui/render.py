@@ -30,6 +30,7 @@ from codeseek.errors import FileRefused
 from codeseek.languages import spec_for_path
 from codeseek.safefs import read_regular_file
 from codeseek.search import STOPWORDS, SearchHit
+from codeseek.service import describe_refinement
 from codeseek.tui.theme import CodeLook, code_look
 from codeseek.units import split_identifier
 
@@ -273,8 +274,11 @@ def when(timestamp: float | None, now: float | None = None) -> str:
 
 def index_summary(status: IndexStatus, service: str) -> str:
     """The index line when idle: repository, counts, freshness and the service state."""
-    return (f"{printable(repo_label(status.repo))} · {status.units:,} units · "
+    line = (f"{printable(repo_label(status.repo))} · {status.units:,} units · "
             f"{status.files:,} files · updated {when(status.updated_at)} · {service}")
+    if status.refinement is not None:  # codeseek/refine.py
+        line += f" · refining {describe_refinement(status.refinement)}"
+    return line
 
 
 def repo_label(repo: str | os.PathLike[str]) -> str:

@@ -1,0 +1,348 @@
+"""Searchable first, refined behind (codeseek/refine.py), on the fake backend: its static
+tier (FakeTierEmbedder, 128 dimensions) stands in for the static model and FakeEmbedder
+(256) for the full one; the two have different model ids, as the real tiers do."""
+
+from __future__ import annotations
+
+import io
+import json
+import os
+import shutil
+import signal
+import subprocess
+import sys
+import threading
+from collections.abc import Sequence
+from pathlib import Path
+
+import numpy as np
+import pytest
+
+from codeseek import open_index
+from codeseek.api import Index
+from codeseek.cli import main
+from codeseek.embed import FakeEmbedder, Progress
+from codeseek.errors import ConfigError
+from codeseek.refine import pending_units, refinement_of
+from codeseek.store import Store
+from codeseek.watch import Watcher
+
+PROJECT = Path(__file__).resolve().parent.parent
+QUERIES = ["parse a station code", "price a fare with discounts", "zone of a stop",
+           "read the timetable file", "rider card balance"]
+
+
+def _run(*argv: str) -> tuple[int, str, str]:
+    out, err = io.StringIO(), io.StringIO()
+    code = main(list(argv), out=out, err=err)
+    return code, out.getvalue(), err.getvalue()
+
+
+def _started(repo: Path, **kwargs: object) -> Index:
+    """An index of ``repo`` built with the static tier, its refinement not begun."""
+    index = open_index(repo, create=True, backend="fake", **kwargs)  # type: ignore[arg-type]
+    index.update(refine=True)
+    return index
+
+
+def _snapshot(store: Store) -> tuple[list[tuple], dict[tuple[str, str], bytes], dict[str, str]]:
+    """Units (every column but the row id), vectors by (model, content hash) and the
+    manifest keys a build decides, read straight from SQLite."""
+    units = sorted(store._query(
+        "SELECT f.path, f.language, f.sha256, u.uid, u.kind, u.name, u.qualname, u.signature, "
+        "u.doc, u.start_line, u.end_line, u.code, u.doc_start, u.doc_end, u.ordinal, "
+        "u.content_hash FROM units u JOIN files f ON f.id=u.file_id"))
+    vectors = {(model, digest): bytes(blob) for digest, model, blob in
+               store._query("SELECT content_hash, model_id, vector FROM vectors")}
+    manifest = {key: value for key, value in store.manifest().items()
+                if key in ("model_id", "dim", "lexical_text")}
+    return units, vectors, manifest
+
+
+def _assert_equals_fresh_full_build(index: Index, repo: Path, tmp_path: Path) -> None:
+    fresh_repo = tmp_path / "fresh"
+    shutil.copytree(repo, fresh_repo, ignore=shutil.ignore_patterns(".codeseek"))
+    with open_index(fresh_repo, create=True, backend="fake") as fresh:
+        fresh.update()
+        units, vectors, manifest = _snapshot(fresh.store)
+        fresh_hits = [[(h.path, h.qualname) for h in hits]
+                      for hits in fresh.search_many(QUERIES, 10)]
+    got_units, got_vectors, got_manifest = _snapshot(index.store)
+    assert got_units == units
+    assert got_manifest == manifest
+    assert got_vectors.keys() == vectors.keys()
+    # reference: numpy, on the float32 rows themselves
+    for key, blob in vectors.items():
+        np.testing.assert_array_equal(np.frombuffer(got_vectors[key], np.float32),
+                                      np.frombuffer(blob, np.float32))
+    assert [[(h.path, h.qualname) for h in hits]
+            for hits in index.search_many(QUERIES, 10)] == fresh_hits
+
+
+class CrashingEmbedder(FakeEmbedder):
+    """The full tier's stand-in, failing on its ``crash_at``-th encode (a crash mid-run)."""
+
+    def __init__(self, crash_at: int) -> None:
+        super().__init__()
+        self.crash_at = crash_at
+
+    def encode(self, texts: Sequence[str], progress: Progress | None = None) -> np.ndarray:
+        if self.calls + 1 == self.crash_at:
+            self.crash_at = 0  # once
+            raise RuntimeError("injected crash")
+        return super().encode(texts, progress)
+
+
+def test_searchable_with_the_static_tier_before_any_refinement(sample_copy: Path) -> None:
+    with _started(sample_copy) as index:
+        assert index.refining and index.tier == "static"
+        state = refinement_of(index.store)
+        assert state is not None and state.refined == 0
+        assert state.total == index.store.counts()["units"] > 0
+        hits = index.search("price a fare with discounts", 5)
+        assert hits and {h.tier for h in hits} == {"static"}
+        assert any("fare" in h.qualname.lower() for h in hits)
+
+
+def test_default_update_is_unchanged(sample_copy: Path) -> None:
+    with open_index(sample_copy, create=True, backend="fake") as index:
+        index.update()
+        assert not index.refining and index.tier == "full"
+        assert "refinement" not in index.status().to_json()
+    code, out, _ = _run("status", str(sample_copy), "--json")
+    assert code == 0 and "refinement" not in json.loads(out)
+
+
+def test_progress_in_status_text_and_json(sample_copy: Path) -> None:
+    with _started(sample_copy) as index:
+        assert index.refine(limit=40) == 40
+        total = index.store.counts()["units"]
+        # reference: SQLite directly, units that have a full-model vector
+        full = FakeEmbedder().model_id
+        refined = index.store._query(
+            "SELECT COUNT(*) FROM units u JOIN vectors v ON v.content_hash=u.content_hash "
+            "AND v.model_id=?", (full,))[0][0]
+    code, out, _ = _run("status", str(sample_copy), "--json")
+    record = json.loads(out)["refinement"]
+    assert code == 0
+    assert record["refined"] == refined and 40 <= refined < total == record["total"]
+    assert record["tier"] == "full" and record["model_id"] == full
+    assert record["seconds_left"] is not None and record["seconds_left"] >= 0
+    code, out, _ = _run("status", str(sample_copy))
+    assert f"refining     {refined} of {total} units with the full tier" in out
+    from codeseek.tui.render import index_summary
+
+    with open_index(sample_copy, backend="fake") as index:
+        status = index.status()
+    assert f"· refining {refined} of {total} units" in index_summary(status, "in process")
+
+
+def test_most_documented_files_are_refined_first(sample_copy: Path) -> None:
+    with _started(sample_copy) as index:
+        documented: dict[str, int] = {}
+        for stored in index.store.iter_units():
+            documented[stored.unit.path] = (documented.get(stored.unit.path, 0)
+                                            + bool(stored.unit.doc))
+        order = [s.unit.path for s in pending_units(index.store, FakeEmbedder().model_id,
+                                                     10_000)]
+        counts = [documented[path] for path in order]
+        assert counts == sorted(counts, reverse=True) and counts[0] > counts[-1]
+
+
+def test_refinement_ends_equal_to_a_fresh_full_build(sample_copy: Path, tmp_path: Path) -> None:
+    with _started(sample_copy) as index:
+        index.refine(limit=30)
+        # a change mid-refinement is embedded with the static tier, then refined too
+        target = sample_copy / "python" / "kestrune" / "billing" / "fares.py"
+        target.write_text(target.read_text(encoding="utf-8") + "\n\ndef surcharge_for_night"
+                          "_rides(fare):\n    \"\"\"Add the night surcharge.\"\"\"\n"
+                          "    return fare * 1.2\n", encoding="utf-8")
+        (sample_copy / "python" / "kestrune" / "uploads.py").unlink()
+        index.update()
+        assert index.refining
+        index.refine()
+        assert not index.refining and index.tier == "full"
+        assert "refinement" not in index.status().to_json()
+        assert {h.tier for h in index.search("night surcharge", 5)} == {"full"}
+        _assert_equals_fresh_full_build(index, sample_copy, tmp_path)
+
+
+def test_fully_refined_ranking_before_the_switch_is_the_full_ranking(sample_copy: Path,
+                                                                     tmp_path: Path) -> None:
+    """At 100% refined, the fused ranking is the full tier's (the merge rule changes each
+    tier's scores by an increasing affine map only)."""
+    with _started(sample_copy) as index:
+        while index._refiner is None or index._refiner.step(64):
+            if index._refiner is None:
+                index.refine(limit=1)
+        assert index.refining  # every vector is there; the switch has not happened
+        hits = index.search_many(QUERIES, 10)
+        assert {h.tier for answer in hits for h in answer} == {"full"}
+        order = [[(h.path, h.qualname) for h in answer] for answer in hits]
+    fresh_repo = tmp_path / "fresh"
+    shutil.copytree(sample_copy, fresh_repo, ignore=shutil.ignore_patterns(".codeseek"))
+    with open_index(fresh_repo, create=True, backend="fake") as fresh:
+        fresh.update()
+        assert [[(h.path, h.qualname) for h in answer]
+                for answer in fresh.search_many(QUERIES, 10)] == order
+
+
+def test_a_crash_mid_refinement_resumes_where_it_stopped(sample_copy: Path,
+                                                         tmp_path: Path) -> None:
+    import codeseek.api
+
+    with _started(sample_copy) as index:
+        hashes = len(pending_units(index.store, FakeEmbedder().model_id, 10_000))
+    crashing = CrashingEmbedder(crash_at=3)
+    with open_index(sample_copy, backend="fake", refine_embedder=crashing) as index, \
+            pytest.MonkeyPatch.context() as patch:
+        patch.setattr(codeseek.api, "UNITS_PER_REFINE_BATCH", 16)
+        with pytest.raises(RuntimeError, match="injected crash"):
+            index.refine()
+        committed = crashing.texts_encoded
+        assert committed == 32  # two batches committed before the crash
+        assert refinement_of(index.store).refined >= committed  # type: ignore[union-attr]
+        assert index.search("zone of a stop", 5)  # still searchable, partly refined
+    resumed = FakeEmbedder()
+    with open_index(sample_copy, backend="fake", refine_embedder=resumed) as index:
+        assert index.refining
+        index.refine()
+        assert resumed.texts_encoded == hashes - committed  # nothing embedded twice
+        assert not index.refining
+        _assert_equals_fresh_full_build(index, sample_copy, tmp_path)
+
+
+KILLED_CHILD = """
+import os, signal, sys
+from codeseek import open_index
+from codeseek.embed import FakeEmbedder
+import codeseek.api
+codeseek.api.UNITS_PER_REFINE_BATCH = 16
+
+class Killed(FakeEmbedder):
+    def encode(self, texts, progress=None):
+        if self.calls == 2:
+            os.kill(os.getpid(), signal.SIGKILL)
+        return super().encode(texts, progress)
+
+with open_index(sys.argv[1], backend="fake", refine_embedder=Killed()) as index:
+    index.refine()
+"""
+
+
+def test_kill_9_mid_refinement_resumes(sample_copy: Path, tmp_path: Path) -> None:
+    _started(sample_copy).close()
+    env = {**os.environ, "PYTHONPATH": str(PROJECT)}
+    child = subprocess.run([sys.executable, "-c", KILLED_CHILD, str(sample_copy)], env=env,
+                           capture_output=True, text=True, timeout=60)
+    assert child.returncode == -signal.SIGKILL, child.stderr
+    with open_index(sample_copy, backend="fake") as index:
+        state = refinement_of(index.store)
+        assert state is not None and 32 <= state.refined < state.total
+    code, out, err = _run("index", str(sample_copy), "--backend", "fake", "-q")
+    assert code == 0, err
+    assert "refined" in out
+    with open_index(sample_copy, backend="fake") as index:
+        assert not index.refining
+        _assert_equals_fresh_full_build(index, sample_copy, tmp_path)
+
+
+def test_searches_during_refinement_never_fail(sample_copy: Path) -> None:
+    import codeseek.api
+
+    errors: list[BaseException] = []
+    tiers: set[str | None] = set()
+    with _started(sample_copy) as index, pytest.MonkeyPatch.context() as patch:
+        patch.setattr(codeseek.api, "UNITS_PER_REFINE_BATCH", 4)
+        done = threading.Event()
+
+        def ask() -> None:
+            while not done.is_set():
+                try:
+                    for answer in index.search_many(QUERIES, 10):
+                        assert answer
+                        tiers.update(h.tier for h in answer)
+                except BaseException as exc:  # noqa: BLE001 - collected for the assert
+                    errors.append(exc)
+                    return
+
+        asker = threading.Thread(target=ask)
+        asker.start()
+        try:
+            while index.refining:
+                index.refine(limit=4)
+        finally:
+            done.set()
+            asker.join()
+        assert not errors, errors
+        assert "full" in tiers
+        assert {h.tier for h in index.search("zone of a stop", 10)} == {"full"}
+
+
+def test_the_watcher_refines_between_changes(sample_copy: Path) -> None:
+    with _started(sample_copy) as index:
+        watcher = Watcher(index)
+        steps = 0
+        while watcher.refine_step():
+            steps += 1
+        assert steps >= 0 and not index.refining and index.tier == "full"
+        assert watcher.state.last_error is None
+
+
+def test_cli_index_refine_and_watch_option(sample_copy: Path) -> None:
+    code, out, err = _run("index", str(sample_copy), "--backend", "fake", "-q", "--refine")
+    assert code == 0, err
+    units = json.loads(_run("status", str(sample_copy), "--json")[1])["units"]
+    assert f"refined {units} units with the full tier" in out
+    code, _, err = _run("index", str(sample_copy), "--backend", "fake", "--tier", "static",
+                        "--refine")
+    assert code != 0 and "--refine embeds toward" in err
+    from codeseek.cli import build_parser
+
+    assert build_parser().parse_args(["watch", "--refine"]).refine
+    assert not build_parser().parse_args(["watch"]).refine
+
+
+def test_refine_toward_the_static_tier_is_refused(sample_copy: Path) -> None:
+    with open_index(sample_copy, create=True, backend="fake", tier="static") as index, \
+            pytest.raises(ConfigError, match="--tier full"):
+        index.update(refine=True)
+
+
+def test_watch_refine_serves_throughout_and_ends_on_the_full_tier(sample_copy: Path) -> None:
+    import time
+
+    import codeseek.watch
+    from codeseek.client import DaemonClient
+    from codeseek.daemon import Daemon
+
+    with open_index(sample_copy, create=True, backend="fake") as index, \
+            pytest.MonkeyPatch.context() as patch:
+        patch.setattr(codeseek.watch, "UNITS_PER_REFINE_BATCH", 16)
+        daemon = Daemon(index, reconcile_seconds=3600, debounce=0.05, refine=True)
+        daemon.start()
+        try:
+            client = DaemonClient(index.settings.index_dir)
+            new = sample_copy / "python" / "kestrune" / "lanterns.py"
+            new.write_text('def count_teal_lanterns(street):\n    """Count the teal '
+                           'lanterns on a street."""\n    return len(street)\n',
+                           encoding="utf-8")
+            seen: list[dict[str, object] | None] = []
+            tiers: set[str | None] = set()
+            deadline = time.monotonic() + 30
+            while time.monotonic() < deadline:
+                record = client.status()["index"]
+                seen.append(record.get("refinement"))
+                tiers.update(h.tier for h in client.search("count the teal lanterns", 5))
+                if record.get("refinement") is None and record["tier"] == "full":
+                    break
+                time.sleep(0.05)
+            assert seen[0] is not None  # searchable (and answering) before it is refined
+            assert seen[-1] is None and index.tier == "full"
+            assert tiers <= {"static", "full"} and "full" in tiers
+            hits = client.search("count the teal lanterns", 1)
+            assert [h.qualname for h in hits] == ["count_teal_lanterns"]
+            assert hits[0].tier == "full"
+            assert daemon.watcher.state.last_error is None
+        finally:
+            daemon.stop()
