@@ -322,28 +322,40 @@ class OnnxEmbedder:
             # the one slow first step: say what it is (stderr, so JSON output stays clean)
             print(EXPORT_NOTICE, file=sys.stderr, flush=True)
             export_onnx(folder, graph)
+        self._graph = graph
+        self._tokenizer: Any = None
+        self._session: Any = None
+        self._inputs: set[str] = set()
+
+    def _load(self) -> None:
+        """Open the tokenizer and the ONNX session, on the first encode: an update with
+        nothing to embed (an unchanged repository) never pays for them."""
+        if self._session is not None:
+            return
         try:
             import onnxruntime
             from tokenizers import Tokenizer
 
-            self._tokenizer = Tokenizer.from_file(str(folder / "tokenizer.json"))
+            tokenizer = Tokenizer.from_file(str(self.config.folder / "tokenizer.json"))
             options = onnxruntime.SessionOptions()
             options.intra_op_num_threads = max(1, os.cpu_count() or 1)
             options.log_severity_level = 3
-            self._session = onnxruntime.InferenceSession(
-                str(graph), options, providers=["CPUExecutionProvider"]
+            session = onnxruntime.InferenceSession(
+                str(self._graph), options, providers=["CPUExecutionProvider"]
             )
         except Exception as exc:
-            raise ModelUnavailable(f"cannot load the ONNX model {graph}: {exc}; delete it "
-                                   "and it will be exported again") from exc
-        self._tokenizer.no_padding()
-        self._tokenizer.enable_truncation(max_length=self.config.max_length)
-        self._inputs = {i.name for i in self._session.get_inputs()}
+            raise ModelUnavailable(f"cannot load the ONNX model {self._graph}: {exc}; delete "
+                                   "it and it will be exported again") from exc
+        tokenizer.no_padding()
+        tokenizer.enable_truncation(max_length=self.config.max_length)
+        self._inputs = {i.name for i in session.get_inputs()}
+        self._tokenizer, self._session = tokenizer, session
 
     def encode(self, texts: Sequence[str], progress: Progress | None = None) -> np.ndarray:
         out = np.zeros((len(texts), self.dim), dtype=np.float32)
         if not texts:
             return out
+        self._load()
         encodings = self._tokenizer.encode_batch(list(texts))
         order = sorted(range(len(texts)), key=lambda i: len(encodings[i].ids))
         for start in range(0, len(order), self.batch_size):
