@@ -32,7 +32,7 @@ from codeseek.bm25 import CorpusStats
 from codeseek.errors import CodeseekError, DaemonError
 from codeseek.hits import SearchHit
 from codeseek.multi import Basis, Pick, Sides
-from codeseek.query import DEFAULT_K, Filters, Query, as_queries, filters_of
+from codeseek.query import DEFAULT_K, MAX_K, Filters, Query, as_queries, filters_of
 from codeseek.service import IndexStatus, Notice
 
 if TYPE_CHECKING:
@@ -47,7 +47,7 @@ CLIENT_TIMEOUT = 30.0
 # The daemon's limits (codeseek.daemon enforces them; the client fits its requests to them).
 MAX_REQUEST_BYTES = 16 * 1024 * 1024  # one request line
 MAX_QUERIES = 1000  # queries in one search request
-MAX_K = 2**31 - 1  # no index holds this many units, so a larger k has the same answer
+# MAX_K (the largest k) lives in codeseek.query, beside the Query it bounds.
 
 # How much the client puts in one request, so that each answer stays a few MB and
 # comes well within CLIENT_TIMEOUT, even from a real model on a busy machine.

@@ -39,8 +39,8 @@ that is not UTF-8 or not JSON, nesting too deep to parse, a whole number outside
 files whose names are not UTF-8) are malformed requests; an unexpected failure
 is answered as a ``DaemonError`` and logged on one line. A request line over
 :data:`MAX_REQUEST_BYTES` is refused and the connection closed; the limits
-(:data:`MAX_REQUEST_BYTES`, :data:`MAX_QUERIES`, :data:`MAX_K`) live in
-:mod:`codeseek.client`, which splits a batch to fit them. The daemon only ever
+(:data:`MAX_REQUEST_BYTES`, :data:`MAX_QUERIES`) live in :mod:`codeseek.client`,
+which splits a batch to fit them (:data:`MAX_K` in :mod:`codeseek.query`). The daemon only ever
 returns what the index holds; it reads no file on request.
 """
 
@@ -66,7 +66,6 @@ from codeseek.api import Index
 from codeseek.bm25 import CorpusStats
 from codeseek.client import (
     CLIENT_TIMEOUT,
-    MAX_K,
     MAX_QUERIES,
     MAX_REQUEST_BYTES,
     PROTOCOL_VERSION,
@@ -75,7 +74,7 @@ from codeseek.client import (
 from codeseek.display import printable
 from codeseek.errors import CodeseekError, IndexLocked
 from codeseek.multi import Pick
-from codeseek.query import Query
+from codeseek.query import MAX_K, Query
 from codeseek.refine import refinement_of
 from codeseek.watch import RECONCILE_SECONDS, Watcher
 

@@ -55,7 +55,7 @@ from codeseek.service import IndexStatus, SearchService
 
 MIN_CANDIDATES = 50
 """Each index is asked for at least this many candidates (and at least 3 k)."""
-MAX_CANDIDATES = 2**31 - 1  # the daemon's largest k (codeseek.client.MAX_K)
+MAX_CANDIDATES = 2**31 - 1  # the daemon's largest k (codeseek.query.MAX_K)
 
 
 MERGE_KINDS = ("shared", "served", "restandardised")

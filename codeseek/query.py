@@ -19,6 +19,9 @@ from typing import Any
 from codeseek.errors import InvalidQuery
 
 DEFAULT_K = 10
+MAX_K = 2**31 - 1
+"""The largest k any search takes: no index holds this many units, so a larger k has the
+same answer (the daemon refuses more; SQLite's integers stop at 2**63)."""
 
 
 @dataclass(frozen=True)

@@ -31,11 +31,10 @@ from dataclasses import dataclass, replace
 
 import numpy as np
 
-from codeseek.client import MAX_K
 from codeseek.embed import Embedder
 from codeseek.hits import SearchHit
 from codeseek.indexer import REFINE_MODEL_KEY, WriteLock, _no_lock, bump_generation
-from codeseek.query import Filters
+from codeseek.query import MAX_K, Filters
 from codeseek.search import CANDIDATES, Searcher, fuse
 from codeseek.store import Store, StoredUnit, _stored_unit
 from codeseek.tiers import tier_of

@@ -27,7 +27,6 @@ import pathspec
 from codeseek import bm25
 from codeseek.adapter import QueryAdapter
 from codeseek.bm25 import CorpusStats
-from codeseek.client import MAX_K
 from codeseek.confidence import OFF_TOPIC_QUERIES, Baseline
 from codeseek.embed import Embedder
 from codeseek.errors import InvalidQuery
@@ -45,7 +44,7 @@ from codeseek.fusion import (  # noqa: F401 - the fusion names search has always
 from codeseek.hits import SearchHit
 from codeseek.locks import ReadWriteLock
 from codeseek.multi import Pick, Sides
-from codeseek.query import Filters
+from codeseek.query import MAX_K, Filters
 from codeseek.store import Store, StoredUnit
 from codeseek.tiers import tier_of
 from codeseek.units import CodeUnit, split_identifier
