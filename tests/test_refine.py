@@ -366,15 +366,17 @@ def test_merge_maps_static_onto_full_and_falls_back_to_static() -> None:
         full = sorted(((i, float(full_scores[i])) for i in refined_ids),
                       key=lambda pair: -pair[1])
         refined = {i: float(full_scores[i]) for i, _ in static if i in refined_ids}
-        merged = merge_tiers(full, static, refined, 40)
+        merged = merge_tiers(full, static, refined, 40, how="linear")
         assert [i for i, _ in merged] == expected
     line = fit_static_to_full(dict(static), {i: float(full_scores[i]) for i in range(10)})
     assert line is not None and np.allclose(line, (0.5, 0.3))
     few = {i: float(full_scores[i]) for i in range(MIN_PAIRS - 1)}
-    assert merge_tiers(sorted(few.items(), key=lambda p: -p[1]), static, few, 40) == static[:40]
+    assert merge_tiers(sorted(few.items(), key=lambda p: -p[1]), static, few, 40,
+                       how="linear") == static[:40]
 
 
-def test_searches_mid_refinement_rank_as_designed(sample_copy: Path) -> None:
+@pytest.mark.parametrize("how", ["standardised", "linear"])
+def test_searches_mid_refinement_rank_as_designed(sample_copy: Path, how: str) -> None:
     """Through the served path on the fake tiers: at 0% refined the dense side is the
     static tier's ranking; with every unit refined (before the switch) it is the full
     tier's exact ranking (reference: numpy brute force over the stored full vectors)."""
@@ -384,6 +386,7 @@ def test_searches_mid_refinement_rank_as_designed(sample_copy: Path) -> None:
     index = _started(sample_copy)
     searcher = index.searcher()
     assert isinstance(searcher, RefiningSearcher)
+    searcher.tier_map = how
     query = QUERIES[0]
     static_vector = searcher.query_vectors([query])[0]
     with searcher.lock.read():
@@ -406,8 +409,8 @@ def test_searches_mid_refinement_rank_as_designed(sample_copy: Path) -> None:
         index.search(query, 10)
         labels, matrix = index.store.unit_vectors(searcher.full.model_id, searcher.full.dim)
         full = exact_search(searcher.full.encode([query])[0], labels, matrix, 200)
-        refined_ids = {int(label) for label in labels}
-        got = [score for i, score in captured[-1] if i in refined_ids]
+        cosine = dict(full)
+        got = [cosine[i] for i, _ in captured[-1] if i in cosine]
         half = len(full) // 2  # refined units ranked by their full cosines (ties: any order)
         np.testing.assert_allclose(got[:half], [score for _, score in full][:half], atol=1e-6)
     finally:
