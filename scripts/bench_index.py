@@ -32,6 +32,16 @@ close each derived tier's vectors are to the full one's (mean cosine, int8 only:
 same space; top-10 neighbour overlap among those texts, every tier). Each tier's model
 is made (quantised, distilled) before the clock starts.
 
+With --refine (default repository: as for --tiers) it prints, in one run: a full
+build; a fresh index built with --refine (seconds to searchable) and refined to the
+end, with the standard-library questions, a docstring check (documented units found
+by their own summary) and the warm p50 at 0/25/50/75/100% refined, for each way of
+mixing the tiers (codeseek.refine.TIER_MAPS); the same refinement with the earlier
+256-unit chunks, for comparison; the full tier's exact scan at 19,200 and 200,000
+rows; and `codeseek watch --refine` on a fresh index: seconds to searchable, warm
+query p50/p95 through the daemon while it refines, then the cold `codeseek search`
+median without a daemon, mid-refinement.
+
 With --corpora it prints parse throughput only, per language, on the real
 registry code the language tests use (tests/corpora.py; fetched and cached on
 first use) and on this machine's standard library for Python: the raw
