@@ -200,9 +200,8 @@ class Index:
                     UNITS_PER_REFINE_BATCH, limit - done)
                 embedded = refiner.step(batch)
                 done += embedded
-                state = refinement_of(self.store)
-                if progress and state is not None:
-                    progress("refine", state.refined, state.total)
+                if progress:
+                    progress("refine", *refiner.progress())
                 if embedded == 0:
                     break
             if refiner.finish():

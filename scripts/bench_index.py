@@ -32,6 +32,16 @@ close each derived tier's vectors are to the full one's (mean cosine, int8 only:
 same space; top-10 neighbour overlap among those texts, every tier). Each tier's model
 is made (quantised, distilled) before the clock starts.
 
+With --refine (default repository: as for --tiers) it prints, in one run: a full
+build; a fresh index built with --refine (seconds to searchable) and refined to the
+end, with the standard-library questions, a docstring check (documented units found
+by their own summary) and the warm p50 at 0/25/50/75/100% refined, for each way of
+mixing the tiers (codeseek.refine.TIER_MAPS); the same refinement with the earlier
+256-unit chunks, for comparison; the full tier's exact scan at 19,200 and 200,000
+rows; and `codeseek watch --refine` on a fresh index: seconds to searchable, warm
+query p50/p95 through the daemon while it refines, then the cold `codeseek search`
+median without a daemon, mid-refinement.
+
 With --corpora it prints parse throughput only, per language, on the real
 registry code the language tests use (tests/corpora.py; fetched and cached on
 first use) and on this machine's standard library for Python: the raw
@@ -59,16 +69,18 @@ import numpy as np
 PROJECT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(PROJECT))
 
+import codeseek.refine as refine_module  # noqa: E402
 import codeseek.search as search_module  # noqa: E402
 from codeseek import open_index  # noqa: E402
 from codeseek.api import Index  # noqa: E402
 from codeseek.config import load_settings  # noqa: E402
-from codeseek.embed import load_embedder  # noqa: E402
+from codeseek.embed import Embedder, load_embedder  # noqa: E402
 from codeseek.languages import LanguageSpec, spec_by_name  # noqa: E402
 from codeseek.parse import _parser, parse_source  # noqa: E402
-from codeseek.refine import pending_units  # noqa: E402
+from codeseek.refine import TIER_MAPS, RefiningSearcher, pending_units  # noqa: E402
 from codeseek.scan import SkipFile, read_source, scan_repository  # noqa: E402
 from codeseek.tiers import TIERS, load_tier_embedder  # noqa: E402
+from codeseek.vectors import exact_search  # noqa: E402
 
 T = TypeVar("T")
 SKIP = shutil.ignore_patterns("test", "tests", "idle_test", "site-packages", "__pycache__")
@@ -273,50 +285,189 @@ def timed(run: Callable[[], T]) -> tuple[T, float]:
 QUESTIONS = PROJECT / "tests" / "data" / "questions" / "stdlib.jsonl"
 
 
-def refinement_figures(index: Index, label: str, queries: list[str]) -> None:
-    """The standard-library questions' hit@10 and MRR@10 and the warm query p50 now."""
-    report = index.evaluate_questions(QUESTIONS)
-    walls = []
-    for query in queries:
-        _, wall = timed(functools.partial(index.search, query, 10))
-        walls.append(wall * 1000)
-    figures = (f"questions hit@10 {report.metrics['hit@10']:.3f}, MRR@10 "
-               f"{report.metrics['mrr@10']:.3f}" if report is not None else "no questions")
-    print(f"  {label:<22} {figures}; warm query p50 {statistics.median(walls):.1f} ms")
+def docstring_check(index: Index, asked: list[tuple[str, int]]) -> tuple[float, float]:
+    """hit@10 and MRR@10 of documented units found by their own docstring summary
+    (the unit that carries the docstring is the answer): the selection check."""
+    answers = index.search_many([summary for summary, _ in asked], 10)
+    ranks = [next((hit.rank for hit in hits if hit.unit_id == unit), None)
+             for hits, (_, unit) in zip(answers, asked, strict=True)]
+    return (sum(rank is not None for rank in ranks) / len(ranks),
+            sum(1 / rank for rank in ranks if rank is not None) / len(ranks))
 
 
-def searchable_first(repo: Path, scratch: Path, queries: int) -> None:
-    """Time to first searchable with ``--refine`` (keyword + static tier) beside a full
-    build, the refinement's own time, and the question figures as it goes, in one run."""
-    full_index = open_index(repo, index_dir=scratch / "index-full", create=True)
-    full_index.embedder.encode(["warm up"])  # loaded (and exported once) outside the clock
-    summary, full = timed(full_index.update)
-    print(f"full build (full tier): {summary.units} units, {full:.1f} s")
-    docs = [s.unit.doc_summary for s in full_index.store.iter_units() if s.unit.doc_summary]
-    asked = docs[:: max(1, len(docs) // queries)][:queries]
-    refinement_figures(full_index, "full build", asked)
-    index = open_index(repo, index_dir=scratch / "index-refine", create=True,
-                       refine_embedder=full_index.embedder)
-    load_tier_embedder(index.settings, "static").encode(["warm up"])  # distilled once
-    _, first = timed(lambda: index.update(refine=True))
-    hits = index.search("read a config file", 10)
-    print(f"--refine, searchable (keyword + static tier): {first:.1f} s "
-          f"({first / full:.2f}x the full build); first hit's tier: {hits[0].tier}")
-    todo = len(pending_units(index.store, full_index.embedder.model_id, 10**9))
+def refinement_figures(index: Index, label: str, asked: list[tuple[str, int]]) -> None:
+    """At this point of a refinement, with each way of putting the two tiers on one
+    scale (codeseek.refine.TIER_MAPS; the served one first): the docstring check, the
+    standard-library questions' hit@10 and MRR@10, and the warm query p50."""
+    searcher = index.searcher()
+    maps = TIER_MAPS if isinstance(searcher, RefiningSearcher) else ("(one tier)",)
+    for how in maps:
+        if isinstance(searcher, RefiningSearcher):
+            searcher.tier_map = how
+        hit, mrr = docstring_check(index, asked)
+        report = index.evaluate_questions(QUESTIONS)
+        if isinstance(searcher, RefiningSearcher):
+            searcher._queries.clear()  # time the full tier's query encoder too
+        walls = [timed(functools.partial(index.search, summary, 10))[1] * 1000
+                 for summary, _ in asked[:50]]
+        questions = (f"questions hit@10 {report.metrics['hit@10']:.3f} MRR@10 "
+                     f"{report.metrics['mrr@10']:.3f}" if report is not None else "no questions")
+        print(f"  {label:<20} {how:<13} docstrings hit@10 {hit:.3f} MRR@10 {mrr:.3f}; "
+              f"{questions}; warm p50 {statistics.median(walls):.1f} ms", flush=True)
+    if isinstance(searcher, RefiningSearcher):
+        searcher.tier_map = TIER_MAPS[0]
+
+
+def refine_all(index: Index, asked: list[tuple[str, int]] | None, todo: int) -> float:
+    """Refine to the end; with ``asked``, print the figures at 0/25/50/75/100% (their
+    searches out of the clock). The refinement's own seconds."""
     refine = 0.0
     done = 0
-    for share in (0, 25, 50, 75, 100):
+    for share in (0, 25, 50, 75, 100) if asked is not None else (100,):
         limit = max(0, todo * share // 100 - done)  # 0: none embedded (the switch at 100%)
         step, seconds = timed(functools.partial(index.refine, limit=limit))
         done += step
         refine += seconds
-        refinement_figures(index, f"{share}% refined" + (" (switched)" if share == 100
-                                                          else ""), asked)
-    print(f"--refine, refinement to the full tier: {done} units, {refine:.1f} s (with the "
-          f"figures' searches out of the clock); full quality after {first + refine:.1f} s "
-          f"({(first + refine) / full:.2f}x the full build)")
-    full_index.close()
+        if asked is not None:
+            refinement_figures(index, f"{share}% refined" + (" (switched)" if share == 100
+                                                              else ""), asked)
+    return refine
+
+
+def refine_run(repo: Path, index_dir: Path, full_embedder: Embedder,
+               asked: list[tuple[str, int]] | None) -> tuple[float, float]:
+    """A fresh index built with --refine and refined to the end: (seconds to searchable,
+    seconds of the refinement)."""
+    index = open_index(repo, index_dir=index_dir, create=True, refine_embedder=full_embedder)
+    load_tier_embedder(index.settings, "static").encode(["warm up"])  # distilled once
+    _, first = timed(lambda: index.update(refine=True))
+    todo = len(pending_units(index.store, full_embedder.model_id, 10**9))
+    refine = refine_all(index, asked, todo)
     index.close()
+    return first, refine
+
+
+def scan_figures(dim: int) -> None:
+    """The full tier's exact scan over refined rows (numpy, random unit rows) at the
+    whole standard-library copy's size and at a large monorepo's."""
+    generator = np.random.default_rng(0)
+    for rows in (19_200, 200_000):
+        matrix = generator.standard_normal((rows, dim)).astype(np.float32)
+        matrix /= np.linalg.norm(matrix, axis=1, keepdims=True)
+        labels = np.arange(rows, dtype=np.int64)
+        queries = matrix[:50] + 0.1
+        walls = [timed(functools.partial(exact_search, q, labels, matrix, 200))[1] * 1000
+                 for q in queries]
+        print(f"full-tier exact scan over {rows:,} refined rows ({dim} dimensions, top 200): "
+              f"p50 {statistics.median(walls):.1f} ms")
+
+
+def daemon_during_refinement(repo: Path, index_dir: Path, queries: list[str],
+                             seconds: float) -> None:
+    """`codeseek watch --refine` on a fresh index: time to searchable from its start, warm
+    query p50 through the daemon while it refines, then (daemon stopped mid-refinement)
+    the cold `codeseek search` median without a daemon."""
+    from codeseek.client import DaemonClient, DaemonUnavailable
+
+    codeseek = str(PROJECT / ".venv" / "bin" / "codeseek")
+    command = [codeseek, "watch", str(repo), "--index-dir", str(index_dir), "--refine"]
+    started = time.perf_counter()
+    process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    client = DaemonClient(index_dir)
+    walls: list[float] = []
+    refined: list[int] = []
+    try:
+        while True:
+            if process.poll() is not None:
+                raise SystemExit(f"the daemon exited with status {process.returncode}")
+            try:
+                if client.status()["daemon"]["state"] == "watching":
+                    break
+            except (DaemonUnavailable, KeyError):
+                pass
+            time.sleep(0.2)
+        print(f"`codeseek watch --refine`: searchable {time.perf_counter() - started:.1f} s "
+              "after its start", flush=True)
+        client.search(queries[0], 10)  # the daemon's first query loads the full tier's encoder
+        until = time.perf_counter() + seconds
+        for query in queries * 10:
+            if time.perf_counter() > until:
+                break
+            walls.append(timed(functools.partial(client.search, query, 10))[1] * 1000)
+            state = client.status()["index"].get("refinement")
+            if not state:
+                break  # refined to the end: what follows is not during refinement
+            refined.append(int(state["refined"]))
+            time.sleep(0.1)
+        total = client.status()["index"]["units"]
+    finally:
+        try:
+            client.shutdown()
+        except DaemonUnavailable:
+            process.terminate()
+        process.wait(timeout=120)
+    print(f"warm query through the daemon during refinement ({min(refined, default=0)} to "
+          f"{max(refined, default=0)} of {total} units refined): {len(walls)} queries, "
+          f"p50 {percentile(walls, 0.5):.1f} ms, p95 {percentile(walls, 0.95):.1f} ms")
+    cli = [codeseek, "search", "read a config file", "--repo", str(repo), "--index-dir",
+           str(index_dir), "-k", "5"]
+    colds = [timed(functools.partial(subprocess.run, cli, check=True, capture_output=True))[1]
+             for _ in range(5)]
+    print(f"cold `codeseek search` mid-refinement (new process, no daemon): median "
+          f"{statistics.median(colds):.2f} s, best {min(colds):.2f} s")
+
+
+def searchable_first(repo: Path, scratch: Path, queries: int) -> None:
+    """--refine beside a full build, in one run: the full build; a refinement with the
+    served batching (figures at 0/25/50/75/100%); one with 256-unit chunks (the earlier
+    batching, for comparison); the exact scan at scale; the daemon during refinement."""
+    full_index = open_index(repo, index_dir=scratch / "index-full", create=True)
+    full_embedder = full_index.embedder
+    full_embedder.encode(["warm up"])  # loaded (and exported once) outside the clock
+    summary, full = timed(full_index.update)
+    print(f"full build (full tier): {summary.units} units, {full:.1f} s", flush=True)
+    documented = [(s.unit.doc_summary, s.id) for s in full_index.store.iter_units()
+                  if s.unit.doc_summary]
+    picked = documented[:: max(1, len(documented) // queries)][:queries]
+    paths = {s.id: (s.unit.path, s.unit.qualname) for s in full_index.store.iter_units()}
+    refinement_figures(full_index, "full build", picked)
+    full_index.close()
+
+    def asked_in(index_dir: Path) -> list[tuple[str, int]]:
+        """The same docstring questions by the unit ids of another index."""
+        with open_index(repo, index_dir=index_dir) as other:
+            ids = {(s.unit.path, s.unit.qualname): s.id for s in other.store.iter_units()}
+        return [(summary, ids[paths[unit]]) for summary, unit in picked]
+
+    # the figures need the refining index's unit ids: build it, then map the questions
+    index = open_index(repo, index_dir=scratch / "index-refine", create=True,
+                       refine_embedder=full_embedder)
+    load_tier_embedder(index.settings, "static").encode(["warm up"])  # distilled once
+    _, first = timed(lambda: index.update(refine=True))
+    hits = index.search("read a config file", 10)
+    print(f"--refine, searchable (keyword + static tier): {first:.1f} s "
+          f"({first / full:.2f}x the full build); first hit's tier: {hits[0].tier}", flush=True)
+    asked = asked_in(scratch / "index-refine")
+    todo = len(pending_units(index.store, full_embedder.model_id, 10**9))
+    refine = refine_all(index, asked, todo)
+    index.close()
+    print(f"--refine, served batching ({refine_module.UNITS_PER_REFINE_CHUNK}-unit chunks "
+          f"sorted by length, {refine_module.UNITS_PER_REFINE_BATCH}-unit commits): "
+          f"refinement {refine:.1f} s; full quality after {first + refine:.1f} s "
+          f"({(first + refine) / full:.2f}x the full build)", flush=True)
+    served_chunk = refine_module.UNITS_PER_REFINE_CHUNK
+    refine_module.UNITS_PER_REFINE_CHUNK = refine_module.UNITS_PER_REFINE_BATCH
+    try:
+        old_first, old_refine = refine_run(repo, scratch / "index-refine-256", full_embedder,
+                                           None)
+    finally:
+        refine_module.UNITS_PER_REFINE_CHUNK = served_chunk
+    print(f"--refine, 256-unit chunks (the earlier batching, for comparison): refinement "
+          f"{old_refine:.1f} s; full quality after {old_first + old_refine:.1f} s "
+          f"({(old_first + old_refine) / full:.2f}x the full build); served / earlier "
+          f"refinement time {refine / old_refine:.2f}", flush=True)
+    scan_figures(full_embedder.dim)
+    daemon_during_refinement(repo, scratch / "index-daemon", [q for q, _ in picked], 60.0)
 
 
 def main() -> None:

@@ -346,3 +346,73 @@ def test_watch_refine_serves_throughout_and_ends_on_the_full_tier(sample_copy: P
             assert daemon.watcher.state.last_error is None
         finally:
             daemon.stop()
+
+
+def test_merge_maps_static_onto_full_and_falls_back_to_static() -> None:
+    """The two tiers' cosines put on one scale (refine.merge_tiers): when the full tier's
+    cosines are an increasing line of the static ones, the merged list at any share
+    refined is the full tier's own ranking (reference: numpy argsort of the full scores);
+    with fewer refined pairs than MIN_PAIRS it is the static ranking unchanged."""
+    from codeseek.refine import MIN_PAIRS, fit_static_to_full, merge_tiers
+
+    generator = np.random.default_rng(7)
+    static_scores = generator.uniform(-0.2, 0.8, 60)
+    full_scores = 0.5 * static_scores + 0.3  # another scale, the same order
+    expected = [int(i) for i in np.argsort(-full_scores, kind="stable")[:40]]
+    static = sorted(((i, float(s)) for i, s in enumerate(static_scores)),
+                    key=lambda pair: -pair[1])
+    for share in (0.25, 0.5, 0.75, 1.0):
+        refined_ids = set(range(0, 60, max(1, round(1 / share))))
+        full = sorted(((i, float(full_scores[i])) for i in refined_ids),
+                      key=lambda pair: -pair[1])
+        refined = {i: float(full_scores[i]) for i, _ in static if i in refined_ids}
+        merged = merge_tiers(full, static, refined, 40, how="linear")
+        assert [i for i, _ in merged] == expected
+    line = fit_static_to_full(dict(static), {i: float(full_scores[i]) for i in range(10)})
+    assert line is not None and np.allclose(line, (0.5, 0.3))
+    few = {i: float(full_scores[i]) for i in range(MIN_PAIRS - 1)}
+    assert merge_tiers(sorted(few.items(), key=lambda p: -p[1]), static, few, 40,
+                       how="linear") == static[:40]
+
+
+@pytest.mark.parametrize("how", ["standardised", "linear"])
+def test_searches_mid_refinement_rank_as_designed(sample_copy: Path, how: str) -> None:
+    """Through the served path on the fake tiers: at 0% refined the dense side is the
+    static tier's ranking; with every unit refined (before the switch) it is the full
+    tier's exact ranking (reference: numpy brute force over the stored full vectors)."""
+    from codeseek.refine import RefiningSearcher
+    from codeseek.vectors import exact_search
+
+    index = _started(sample_copy)
+    searcher = index.searcher()
+    assert isinstance(searcher, RefiningSearcher)
+    searcher.tier_map = how
+    query = QUERIES[0]
+    static_vector = searcher.query_vectors([query])[0]
+    with searcher.lock.read():
+        static = searcher.dense(static_vector, 200, None)
+    captured: list[list[tuple[int, float]]] = []
+    import codeseek.refine as refine_module
+
+    real_fuse = refine_module.fuse
+
+    def spy(dense, lexical, fusion):  # type: ignore[no-untyped-def]
+        captured.append(list(dense))
+        return real_fuse(dense, lexical, fusion)
+
+    refine_module.fuse = spy  # type: ignore[assignment]
+    try:
+        index.search(query, 10)
+        assert [i for i, _ in captured[-1]] == [i for i, _ in static]
+        total = index.store.counts()["units"]
+        index.refine(limit=total - 1)  # all but one: still refining
+        index.search(query, 10)
+        labels, matrix = index.store.unit_vectors(searcher.full.model_id, searcher.full.dim)
+        full = exact_search(searcher.full.encode([query])[0], labels, matrix, 200)
+        cosine = dict(full)
+        got = [cosine[i] for i, _ in captured[-1] if i in cosine]
+        half = len(full) // 2  # refined units ranked by their full cosines (ties: any order)
+        np.testing.assert_allclose(got[:half], [score for _, score in full][:half], atol=1e-6)
+    finally:
+        refine_module.fuse = real_fuse  # type: ignore[assignment]
+        index.close()
