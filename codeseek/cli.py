@@ -16,7 +16,7 @@ import json
 import os
 import sys
 import time
-from collections.abc import Iterable, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from pathlib import Path
 from typing import TYPE_CHECKING, Any, TextIO
 
@@ -329,18 +329,70 @@ def cmd_index(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
             _index_one(path, args, out, err)
         return EXIT_OK
     from codeseek.distributed import DEFAULT_WORKERS, index_on_ray
+    from codeseek.errors import ClusterError
 
     with contextlib.ExitStack() as stack:
         indexes = [stack.enter_context(_open(path, args, create=True)) for path in paths]
+        if not indexes:
+            return EXIT_OK
         for index in indexes:
             _print_notes(index, err)
-        summaries = index_on_ray(
-            indexes, address=args.ray or None,
-            workers=DEFAULT_WORKERS if args.workers is None else args.workers,
-            progress=lambda _index: None if args.quiet else _LineProgress(err))
+        log = indexes[0].settings.index_dir / RAY_LOG
+        try:
+            with _ray_output_to(log, err) as shown:
+                summaries = index_on_ray(
+                    indexes, address=args.ray or None,
+                    workers=DEFAULT_WORKERS if args.workers is None else args.workers,
+                    progress=lambda _index: None if args.quiet else _LineProgress(shown))
+        except ClusterError as exc:
+            raise ClusterError(f"{exc} (Ray's own output: {log})") from None
     for path, summary in zip(paths, summaries, strict=True):
         _print_summary(summary, out, err, path if len(paths) > 1 else None)
     return EXIT_OK
+
+
+RAY_LOG = "ray.log"
+"""Ray's own output of the last ``index --ray`` run, in the (first) index folder."""
+
+
+@contextlib.contextmanager
+def _ray_output_to(log: Path, err: TextIO) -> Iterator[TextIO]:
+    """Send what Ray prints to ``log`` for the run; yield the stream for codeseek's lines.
+
+    Ray's C++ core and its Python loggers write to file descriptor 2 directly,
+    including tracebacks for a failure codeseek reports in one line, so the
+    descriptor itself points at ``log`` for the run. When ``err`` is that
+    descriptor, codeseek's own lines go to a copy of the original. Ray prints its
+    cluster's error reports to ``sys.stdout``, which points at ``log`` too
+    (codeseek's own output, written after the run, keeps its stream).
+    """
+    from codeseek.safefs import open_regular
+
+    try:
+        err_fd: int | None = err.fileno()
+    except (AttributeError, OSError, ValueError):  # a StringIO, a closed stream
+        err_fd = None
+    log_fd = open_regular(log, os.O_WRONLY | os.O_CREAT | os.O_TRUNC)
+    err.flush()
+    sys.stderr.flush()
+    saved = os.dup(2)
+    os.dup2(log_fd, 2)
+    os.close(log_fd)
+    try:
+        with contextlib.ExitStack() as streams:
+            shown = err
+            if err_fd == 2:
+                shown = streams.enter_context(open(
+                    saved, "w", buffering=1, closefd=False, errors="replace",
+                    encoding=getattr(err, "encoding", None) or "utf-8"))
+            reports = streams.enter_context(open(os.dup(2), "w", buffering=1,
+                                                 encoding="utf-8", errors="replace"))
+            streams.enter_context(contextlib.redirect_stdout(reports))
+            yield shown
+    finally:
+        sys.stderr.flush()
+        os.dup2(saved, 2)
+        os.close(saved)
 
 
 def _ready_to_index(path: str, args: argparse.Namespace, out: TextIO) -> bool:

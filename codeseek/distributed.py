@@ -13,6 +13,9 @@ into :meth:`~codeseek.indexer.Updater.finish`, the write path of a local build
 (vectors, then files and units, batch by batch, one transaction each), so the
 index equals a local build's and a run cut short resumes as a local one does:
 committed files are not read again, committed vectors are not stored again.
+A worker that dies mid-batch (killed, out of memory) is restarted and its batch
+retried, :data:`WORKER_RETRIES` times, before the run fails in one line; a
+killed driver leaves what it committed, and the next run goes on from there.
 
 ``import ray`` happens only here, and only when a run needs it.
 """
@@ -23,6 +26,7 @@ import logging
 import os
 import pickle
 import socket
+import warnings
 from collections.abc import Callable, Iterator, Sequence
 from contextlib import ExitStack, contextmanager
 from dataclasses import dataclass, field
@@ -47,6 +51,10 @@ if TYPE_CHECKING:
 DEFAULT_WORKERS = 2
 FILES_PER_CALL = 16
 """Files one actor call parses and embeds (Ray Data's ``batch_size``)."""
+WORKER_RETRIES = 2
+"""How often a worker that died (killed, out of memory) is restarted and its batch
+retried before the run fails; Ray Data's default retries forever, so a file that
+crashes every worker would hang the run."""
 PROBE_SECONDS = 5.0
 """How long the address is tried before a run gives up (Ray itself retries for minutes)."""
 RAY_MISSING = "codeseek index --ray needs Ray: pip install 'codeseek[ray]'"
@@ -170,9 +178,9 @@ def check_address(address: str) -> None:
 
 
 def _quiet() -> None:
-    """Ray's and Ray Data's own logs stay out of the terminal (they go to Ray's log folder)."""
+    """Ray's and Ray Data's own logs stay quiet below errors (the command line sends
+    what remains to the index folder's ``ray.log``)."""
     os.environ.setdefault("RAY_DATA_LOG_LEVEL", "ERROR")
-    os.environ.setdefault("RAY_BACKEND_LOG_LEVEL", "fatal")
     os.environ.setdefault("RAY_DEDUP_LOGS", "0")
     for name in ("ray", "ray.data"):
         logging.getLogger(name).setLevel(logging.ERROR)
@@ -306,12 +314,20 @@ def _run_pool(ray: ModuleType, tasks: list[FileTask], make_embedder: EmbedderFac
     blocks = max(1, min(len(tasks), -(-len(tasks) // FILES_PER_CALL)))
     dataset = ray.data.from_items([{"task": pickle.dumps(task)} for task in tasks],
                                   override_num_blocks=blocks)
-    dataset = dataset.map_batches(
-        UnitWorker, batch_size=FILES_PER_CALL,
-        compute=ray.data.ActorPoolStrategy(size=workers),
-        fn_constructor_args=(make_embedder, model_id), num_cpus=1)
+    with warnings.catch_warnings():
+        # Ray 2.60 names no parameter for an actor's restarts; the remote arguments that
+        # carry them are deprecated, not yet replaced
+        warnings.filterwarnings("ignore", message="`ray_remote_args` is deprecated")
+        dataset = dataset.map_batches(
+            UnitWorker, batch_size=FILES_PER_CALL,
+            compute=ray.data.ActorPoolStrategy(size=workers),
+            fn_constructor_args=(make_embedder, model_id), num_cpus=1,
+            max_restarts=WORKER_RETRIES, max_task_retries=WORKER_RETRIES)
     try:
         for row in dataset.iter_rows():
             yield pickle.loads(row["result"])
     except ray.exceptions.RayError as exc:
-        raise ClusterError(f"a Ray worker failed: {_first_line(exc)}") from None
+        reason = _first_line(exc).rstrip(".")
+        raise ClusterError(f"a Ray worker failed ({WORKER_RETRIES} restarts tried): {reason}; "
+                           "what was written is kept, run the same command again to go on"
+                           ) from None
