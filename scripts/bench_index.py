@@ -8,7 +8,9 @@ Usage: .venv/bin/python scripts/bench_index.py [PATH] [--torch-sample N] [--quer
 With --ray it builds three fresh indexes of PATH in one run, with the packaged
 model: a local build, then a build on a local Ray instance with 1 worker and
 with 2 workers (``codeseek index --ray``), and prints units/s of each and the
-ratios (the Ray figures include starting the actor pool, not starting Ray).
+ratios (the Ray figures include starting the actor pool, not starting Ray); then
+the one local writer alone (a fresh index written from vectors made beforehand), the
+rate past which more workers stop helping.
 
 Without PATH it indexes a copy of this machine's Python standard library
 (test folders left out). It prints, from one run on one machine:
@@ -273,6 +275,44 @@ def ray_scaling(repo: Path, scratch: Path) -> None:
     print(f"ratios: Ray 1 worker / local = {rates['ray1'] / rates['local']:.2f}, "
           f"Ray 2 workers / local = {rates['ray2'] / rates['local']:.2f}, "
           f"Ray 2 / Ray 1 workers = {rates['ray2'] / rates['ray1']:.2f}")
+    written, seconds = writer_alone(repo, scratch / "local", scratch / "writer")
+    writer = written / seconds
+    print(f"the one local writer alone: {written} units in {seconds:.2f} s, {writer:.0f} units/s "
+          f"(= {writer / rates['ray1']:.0f} Ray workers at this machine's per-worker rate)")
+
+
+def writer_alone(repo: Path, built: Path, scratch: Path) -> tuple[int, float]:
+    """Units and seconds of the local writer alone: a fresh index written from files
+    parsed and vectors made beforehand (as the workers' results arrive in a Ray build:
+    store the vectors, then files and units batch by batch, the HNSW index, saving)."""
+    from codeseek.indexer import FileChange
+
+    with open_index(repo, index_dir=built) as done:
+        model = done.embedder.model_id
+        digest_of = {s.id: s.content_hash for s in done.store.iter_units()}
+        labels, matrix = done.store.unit_vectors(model, done.embedder.dim)
+        stored = {digest_of[int(label)]: matrix[i] for i, label in enumerate(labels)}
+    index = open_index(repo, index_dir=scratch, create=True)
+    with index.writer_lock():
+        updater = index.updater(None)
+        plan = updater.begin()
+        changes = []
+        for source, digest, data in updater.read_files(plan.todo, plan.known, plan.scan):
+            if data is None:
+                continue
+            try:
+                parse = parse_source(source.path, data, source.spec)
+            except SkipFile:
+                continue
+            updater.note_parsed(source, parse)
+            vectors = {u.content_hash: stored[u.content_hash] for u in parse.units}
+            changes.append(FileChange(source, digest, parse, vectors))
+        start = time.perf_counter()
+        summary = updater.finish(plan, iter(changes))
+        index.finish_build(None)
+        seconds = time.perf_counter() - start
+    index.close()
+    return summary.units, seconds
 
 
 def timed(run: Callable[[], T]) -> tuple[T, float]:
