@@ -56,6 +56,7 @@ from codeseek.refine import (
     FIRST_TIER,
     REFINE_MODEL_KEY,
     UNITS_PER_REFINE_BATCH,
+    QueryTraffic,
     Refiner,
     RefiningSearcher,
     begin_refinement,
@@ -86,6 +87,7 @@ class Index:
         self._embedder = embedder
         self._refine_embedder = refine_embedder  # the target of a refinement (refine.py)
         self._refiner: Refiner | None = None
+        self.traffic = QueryTraffic()  # the searches a refinement gives way to
         self._vectors: VectorIndex | None = None
         self._searcher: Searcher | None = None
         self._adapter_seen: tuple[int, int, int] | None = None  # the adapter file searched with
@@ -194,7 +196,7 @@ class Index:
             refiner = self._refiner
             if refiner is None or refiner.embedder is not self.refine_embedder:
                 refiner = self._refiner = Refiner(self.store, self.refine_embedder,
-                                                  self.lock.write)
+                                                  self.lock.write, self.traffic)
             while limit is None or done < limit:
                 batch = UNITS_PER_REFINE_BATCH if limit is None else min(
                     UNITS_PER_REFINE_BATCH, limit - done)
@@ -389,11 +391,12 @@ class Index:
         """The k best units for each of several queries (each run of queries with the
         same k and filters is embedded in one batch and answered from one state)."""
         batch = as_queries(queries, k, filters_of(filters, languages, paths, kinds))
-        searcher = self.searcher()
-        answers: list[list[SearchHit]] = []
-        for (run_k, run_filters), run in groupby(batch, key=lambda q: (q.k, q.filters)):
-            texts = [_text_of(query) for query in run]
-            answers.extend(searcher.search_many(texts, run_k, run_filters))
+        with self.traffic.searching():
+            searcher = self.searcher()
+            answers: list[list[SearchHit]] = []
+            for (run_k, run_filters), run in groupby(batch, key=lambda q: (q.k, q.filters)):
+                texts = [_text_of(query) for query in run]
+                answers.extend(searcher.search_many(texts, run_k, run_filters))
         return answers
 
     # -- the steps of a search across several indexes (codeseek.multi) ---------------
@@ -415,11 +418,12 @@ class Index:
         searcher = self.searcher()
         answers: list[Sides] = []
         at = 0
-        for (run_k, run_filters), run in groupby(queries, key=lambda q: (q.k, q.filters)):
-            texts = [_text_of(query) for query in run]
-            answers.extend(searcher.sides(texts, run_k, run_filters,
-                                          stats[at:at + len(texts)]))
-            at += len(texts)
+        with self.traffic.searching():
+            for (run_k, run_filters), run in groupby(queries, key=lambda q: (q.k, q.filters)):
+                texts = [_text_of(query) for query in run]
+                answers.extend(searcher.sides(texts, run_k, run_filters,
+                                              stats[at:at + len(texts)]))
+                at += len(texts)
         return answers
 
     def merge_hits(self, queries: Sequence[Query], picks: Sequence[Sequence[Pick]],

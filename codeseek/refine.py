@@ -21,6 +21,12 @@ them has a target vector too (vectors are keyed by model id, so both coexist).
   guaranteed to improve monotonically (README gives the measured figures).
 * Batching (:class:`Refiner`): pending units are taken 2,048 at a time in order of
   usefulness, sorted by length, and committed 256 at a time.
+* Queries first (:class:`QueryTraffic`): the index counts the searches under way;
+  between the encoder's batches the refiner waits while one runs and for
+  :data:`QUIET_SECONDS` after the last, so a search in the same process does not
+  share the two cores with a refinement batch (at most one encoder batch already
+  in flight), and a steady stream of searches still lets a batch through every
+  :data:`MAX_YIELD_SECONDS`.
 * Finishing (:meth:`Refiner.finish`): once no unit lacks a target vector, in one
   transaction, the static vectors and target vectors no unit uses are deleted and
   the target model becomes the index's model; the index then equals a fresh build
@@ -29,8 +35,10 @@ them has a target vector too (vectors are keyed by model id, so both coexist).
 
 from __future__ import annotations
 
+import threading
 import time
-from collections.abc import Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass, replace
 
 import numpy as np
@@ -44,8 +52,8 @@ from codeseek.store import Store, StoredUnit, _stored_unit, vector_unit_ids
 from codeseek.tiers import tier_of
 from codeseek.vectors import exact_search
 
-__all__ = ["FIRST_TIER", "REFINE_MODEL_KEY", "Refinement", "Refiner", "RefiningSearcher",
-           "pending_units", "refinement_of"]
+__all__ = ["FIRST_TIER", "REFINE_MODEL_KEY", "QueryTraffic", "Refinement", "Refiner",
+           "RefiningSearcher", "pending_units", "refinement_of"]
 
 FIRST_TIER = "static"
 REFINE_DIM_KEY = "refine_dim"
@@ -54,6 +62,45 @@ REFINE_STEP_KEY = "refine_step"  # bumped by every committed batch: searchers re
 REFINE_KEYS = (REFINE_MODEL_KEY, REFINE_DIM_KEY, REFINE_RATE_KEY, REFINE_STEP_KEY)
 UNITS_PER_REFINE_BATCH = 256
 UNITS_PER_REFINE_CHUNK = 2048  # taken in usefulness order, then sorted by length
+QUIET_SECONDS = 0.5
+"""How long after a search the refiner waits before its next encoder batch: a person
+reading hits, or a script's next query, finds the cores free."""
+MAX_YIELD_SECONDS = 2.0
+"""The longest the refiner waits between two encoder batches, however busy searching is."""
+
+
+class QueryTraffic:
+    """The searches under way in this process, for the refiner to give way to."""
+
+    def __init__(self, clock: Callable[[], float] = time.monotonic) -> None:
+        self._clock = clock
+        self._lock = threading.Lock()
+        self._active = 0
+        self._last = float("-inf")  # when the latest search ended
+
+    @contextmanager
+    def searching(self) -> Iterator[None]:
+        """Count one search for as long as it runs."""
+        with self._lock:
+            self._active += 1
+        try:
+            yield
+        finally:
+            with self._lock:
+                self._active -= 1
+                self._last = self._clock()
+
+    def busy(self) -> bool:
+        """Whether a search runs, or ended less than :data:`QUIET_SECONDS` ago."""
+        with self._lock:
+            return self._active > 0 or self._clock() - self._last < QUIET_SECONDS
+
+    def give_way(self, sleep: Callable[[float], None] = time.sleep) -> float:
+        """Wait while :meth:`busy`, at most :data:`MAX_YIELD_SECONDS`; seconds waited."""
+        started = self._clock()
+        while self.busy() and self._clock() - started < MAX_YIELD_SECONDS:
+            sleep(0.01)
+        return self._clock() - started
 
 
 @dataclass(frozen=True)
@@ -130,10 +177,13 @@ class Refiner:
     """
 
     def __init__(self, store: Store, embedder: Embedder,
-                 write_lock: WriteLock | None = None) -> None:
+                 write_lock: WriteLock | None = None,
+                 traffic: QueryTraffic | None = None) -> None:
         self.store = store
         self.embedder = embedder
         self.write_lock = write_lock or _no_lock
+        self.traffic = traffic  # searches to give way to between encoder batches
+        self.waited = 0.0  # seconds spent giving way
         self._seconds = 0.0  # spent embedding in this run
         self._done = 0
         self._queue: list[tuple[str, str]] = []  # (content hash, text), shortest first
@@ -163,9 +213,20 @@ class Refiner:
         batch, self._queue = self._queue[:limit], self._queue[limit:]
         if not batch:
             return 0
+        traffic = self.traffic
+        waited = 0.0
+        if traffic is not None:
+            waited += traffic.give_way()
+
+        def give_way(_: int) -> None:
+            nonlocal waited
+            waited += traffic.give_way() if traffic is not None else 0.0
+
         started = time.perf_counter()
-        matrix = self.embedder.encode([text for _, text in batch])
-        self._seconds += time.perf_counter() - started
+        matrix = self.embedder.encode([text for _, text in batch], progress=give_way)
+        # the rate is the encoder's: time spent giving way to searches is not counted
+        self._seconds += time.perf_counter() - started - waited
+        self.waited += waited
         self._done += len(batch)
         rate = self._done / self._seconds if self._seconds > 0 else 0.0
         with self.write_lock(), self.store.transaction():

@@ -402,15 +402,23 @@ def scan_figures(dim: int) -> None:
               f"p50 {statistics.median(walls):.1f} ms")
 
 
+# `codeseek watch` with the refiner never giving way to searches (the earlier behaviour)
+NO_GIVING_WAY = ("import sys, codeseek.refine as r; r.MAX_YIELD_SECONDS = 0.0; "
+                 "from codeseek.cli import main; sys.exit(main(sys.argv[1:]))")
+
+
 def daemon_during_refinement(repo: Path, index_dir: Path, queries: list[str],
-                             seconds: float) -> None:
+                             seconds: float, give_way: bool = True) -> None:
     """`codeseek watch --refine` on a fresh index: time to searchable from its start, warm
     query p50 through the daemon while it refines, then (daemon stopped mid-refinement)
-    the cold `codeseek search` median without a daemon."""
+    the cold `codeseek search` median without a daemon. ``give_way=False``: the refiner
+    does not wait for searches (codeseek.refine.QueryTraffic), for comparison."""
     from codeseek.client import DaemonClient, DaemonUnavailable
 
     codeseek = str(PROJECT / ".venv" / "bin" / "codeseek")
-    command = [codeseek, "watch", str(repo), "--index-dir", str(index_dir), "--refine"]
+    launcher = [codeseek] if give_way else [sys.executable, "-c", NO_GIVING_WAY]
+    command = [*launcher, "watch", str(repo), "--index-dir", str(index_dir), "--refine"]
+    print(f"-- the refiner {'gives way to searches (served)' if give_way else 'never gives way'}")
     started = time.perf_counter()
     process = subprocess.Popen(command, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
     client = DaemonClient(index_dir)
@@ -507,7 +515,9 @@ def searchable_first(repo: Path, scratch: Path, queries: int) -> None:
           f"({(old_first + old_refine) / full:.2f}x the full build); served / earlier "
           f"refinement time {refine / old_refine:.2f}", flush=True)
     scan_figures(full_embedder.dim)
-    daemon_during_refinement(repo, scratch / "index-daemon", [q for q, _ in picked], 60.0)
+    for give_way in (False, True):
+        daemon_during_refinement(repo, scratch / f"index-daemon-{give_way}",
+                                 [q for q, _ in picked], 60.0, give_way)
 
 
 def main() -> None:
@@ -530,7 +540,29 @@ def main() -> None:
     parser.add_argument("--refine", action="store_true",
                         help="time to first searchable with --refine beside a full build "
                              "(default repository: as for --tiers)")
+    parser.add_argument("--refine-daemon", action="store_true",
+                        help="only `codeseek watch --refine` with and without the refiner "
+                             "giving way to searches (default repository: as for --tiers)")
     args = parser.parse_args()
+    if args.refine_daemon:
+        with tempfile.TemporaryDirectory() as scratch:
+            sys.path.insert(0, str(PROJECT / "tests"))
+            from corpora import stdlib_question_subset
+
+            repo = (Path(args.path).resolve() if args.path
+                    else stdlib_question_subset(Path(scratch) / "stdlib-subset"))
+            print(f"command: .venv/bin/python scripts/bench_index.py {' '.join(sys.argv[1:])}")
+            print(f"repository: {repo}")
+            with open_index(repo, index_dir=Path(scratch) / "docs", create=True,
+                            backend="fake") as index:
+                index.update()
+                documented = [s.unit.doc_summary for s in index.store.iter_units()
+                              if s.unit.doc_summary]
+            picked = documented[:: max(1, len(documented) // args.queries)][:args.queries]
+            for give_way in (False, True):
+                daemon_during_refinement(repo, Path(scratch) / f"index-daemon-{give_way}",
+                                         picked, 60.0, give_way)
+        return
     if args.corpora:
         corpus_throughput(args.repeat)
         return

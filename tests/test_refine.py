@@ -18,12 +18,13 @@ from pathlib import Path
 import numpy as np
 import pytest
 
+import codeseek.refine as refine_module
 from codeseek import open_index
 from codeseek.api import Index
 from codeseek.cli import main
 from codeseek.embed import FakeEmbedder, Progress
 from codeseek.errors import ConfigError
-from codeseek.refine import pending_units, refinement_of
+from codeseek.refine import QueryTraffic, pending_units, refinement_of
 from codeseek.store import Store
 from codeseek.watch import Watcher
 
@@ -254,6 +255,9 @@ def test_searches_during_refinement_never_fail(sample_copy: Path) -> None:
     tiers: set[str | None] = set()
     with _started(sample_copy) as index, pytest.MonkeyPatch.context() as patch:
         patch.setattr(codeseek.api, "UNITS_PER_REFINE_BATCH", 4)
+        # searches never stop here: the refiner gives way only briefly, or would wait
+        # its longest between every batch (test_a_refinement_gives_way_to_searches)
+        patch.setattr(refine_module, "MAX_YIELD_SECONDS", 0.01)
         done = threading.Event()
 
         def ask() -> None:
@@ -277,6 +281,78 @@ def test_searches_during_refinement_never_fail(sample_copy: Path) -> None:
         assert not errors, errors
         assert "full" in tiers
         assert {h.tier for h in index.search("zone of a stop", 10)} == {"full"}
+
+
+class Clock:
+    """A clock the test moves by hand (``sleep`` moves it too)."""
+
+    def __init__(self) -> None:
+        self.now = 100.0
+
+    def __call__(self) -> float:
+        return self.now
+
+    def sleep(self, seconds: float) -> None:
+        self.now += seconds
+
+
+def test_query_traffic_is_busy_during_a_search_and_for_a_quiet_spell_after() -> None:
+    clock = Clock()
+    traffic = QueryTraffic(clock)
+    assert not traffic.busy()
+    assert traffic.give_way(clock.sleep) == 0.0  # nobody searching: no wait
+    with traffic.searching():
+        with traffic.searching():
+            pass
+        assert traffic.busy()  # the outer search still runs
+        clock.now += 10 * refine_module.QUIET_SECONDS
+        assert traffic.busy()
+    assert traffic.busy()  # just ended
+    clock.now += refine_module.QUIET_SECONDS / 2
+    assert traffic.busy()
+    waited = traffic.give_way(clock.sleep)  # the rest of the quiet spell
+    assert 0 < waited <= refine_module.QUIET_SECONDS / 2 + 0.011
+    assert not traffic.busy()
+
+
+def test_giving_way_is_bounded_however_busy_searching_is() -> None:
+    clock = Clock()
+    traffic = QueryTraffic(clock)
+    with traffic.searching():
+        waited = traffic.give_way(clock.sleep)
+    assert refine_module.MAX_YIELD_SECONDS <= waited <= refine_module.MAX_YIELD_SECONDS + 0.011
+
+
+def test_a_refinement_gives_way_to_searches(sample_copy: Path,
+                                            monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.setattr(refine_module, "QUIET_SECONDS", 0.05)
+    monkeypatch.setattr(refine_module, "MAX_YIELD_SECONDS", 60.0)
+    index = _started(sample_copy)
+    target = index.refine_embedder
+    assert isinstance(target, FakeEmbedder)
+    search_started, search_may_end = threading.Event(), threading.Event()
+
+    def long_search() -> None:
+        with index.traffic.searching():  # a search under way, as search_many holds it
+            search_started.set()
+            search_may_end.wait(30)
+
+    searcher = threading.Thread(target=long_search)
+    searcher.start()
+    search_started.wait(30)
+    refiner = threading.Thread(target=index.refine, kwargs={"limit": 8})
+    refiner.start()
+    refiner.join(0.5)
+    try:
+        assert refiner.is_alive() and target.texts_encoded == 0  # waiting, not encoding
+    finally:
+        search_may_end.set()
+        searcher.join(30)
+        refiner.join(30)
+    assert not refiner.is_alive()
+    assert target.texts_encoded == 8  # then it went on
+    assert index._refiner is not None and index._refiner.waited >= 0.5
+    index.close()
 
 
 def test_the_watcher_refines_between_changes(sample_copy: Path) -> None:
@@ -319,6 +395,9 @@ def test_watch_refine_serves_throughout_and_ends_on_the_full_tier(sample_copy: P
     with open_index(sample_copy, create=True, backend="fake") as index, \
             pytest.MonkeyPatch.context() as patch:
         patch.setattr(codeseek.watch, "UNITS_PER_REFINE_BATCH", 16)
+        # this client searches every 50 ms: the refiner's longest wait between batches
+        # is cut short, or it would wait that long every batch
+        patch.setattr(refine_module, "MAX_YIELD_SECONDS", 0.01)
         daemon = Daemon(index, reconcile_seconds=3600, debounce=0.05, refine=True)
         daemon.start()
         try:
