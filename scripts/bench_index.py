@@ -275,10 +275,34 @@ def ray_scaling(repo: Path, scratch: Path) -> None:
     print(f"ratios: Ray 1 worker / local = {rates['ray1'] / rates['local']:.2f}, "
           f"Ray 2 workers / local = {rates['ray2'] / rates['local']:.2f}, "
           f"Ray 2 / Ray 1 workers = {rates['ray2'] / rates['ray1']:.2f}")
+    same_index(repo, scratch / "local", scratch / "ray2")
     written, seconds = writer_alone(repo, scratch / "local", scratch / "writer")
     writer = written / seconds
     print(f"the one local writer alone: {written} units in {seconds:.2f} s, {writer:.0f} units/s "
           f"(= {writer / rates['ray1']:.0f} Ray workers at this machine's per-worker rate)")
+
+
+def same_index(repo: Path, local_dir: Path, ray_dir: Path) -> None:
+    """Whether the 2-worker Ray build equals the local one: units, vectors (numpy, the
+    largest difference) and the top 10 of 50 docstring queries."""
+    with open_index(repo, index_dir=local_dir) as local, \
+            open_index(repo, index_dir=ray_dir) as on_ray:
+        units = [(s.id, s.unit.uid, s.content_hash) for s in local.store.iter_units()]
+        same_units = units == [(s.id, s.unit.uid, s.content_hash)
+                               for s in on_ray.store.iter_units()]
+        dim = local.embedder.dim
+        labels, vectors = local.store.unit_vectors(local.embedder.model_id, dim)
+        ray_labels, ray_vectors = on_ray.store.unit_vectors(on_ray.embedder.model_id, dim)
+        same_labels = bool(np.array_equal(labels, ray_labels))
+        largest = float(np.abs(vectors - ray_vectors).max()) if same_labels else float("nan")
+        documented = [s.unit.doc_summary for s in local.store.iter_units() if s.unit.doc_summary]
+        queries = documented[:: max(1, len(documented) // 50)][:50]
+        same_top = sum([(h.path, h.qualname) for h in a] == [(h.path, h.qualname) for h in b]
+                       for a, b in zip(local.search_many(queries, 10),
+                                       on_ray.search_many(queries, 10), strict=True))
+    print(f"Ray 2 workers vs local build: same units {same_units} ({len(units)}), same vector "
+          f"rows {same_labels}, largest vector difference {largest:.2e}, same top 10 on "
+          f"{same_top} of {len(queries)} docstring queries")
 
 
 def writer_alone(repo: Path, built: Path, scratch: Path) -> tuple[int, float]:
