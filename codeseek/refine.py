@@ -259,12 +259,14 @@ MIN_PAIRS = 8
 """Refined candidates needed to fit the map from static to full cosines; with fewer, the
 dense side is the static tier's alone (as at 0% refined)."""
 
-TIER_MAPS = ("standardised", "linear")
+TIER_MAPS = ("standardised", "linear", "matched")
 """How :func:`merge_tiers` puts the two tiers' cosines on one scale, the served one
 first: ``standardised`` scores each tier in standard deviations over its own candidate
 list; ``linear`` fits full = a * static + b on the refined candidates (kept for the
 benchmark's comparison: on the standard-library subset it ranked worse at 25% and 50%
-refined, the fitted slope shrinking the unrefined units' scores toward the mean)."""
+refined, the fitted slope shrinking the unrefined units' scores toward the mean);
+``matched`` maps static onto full by the mean and spread of the same pairs (no shrinking:
+the slope is the ratio of spreads, not times the correlation), also for comparison."""
 
 
 def _standardised(side: Sequence[tuple[int, float]]) -> list[tuple[int, float]]:
@@ -277,9 +279,10 @@ def _standardised(side: Sequence[tuple[int, float]]) -> list[tuple[int, float]]:
     return [(item, float(value)) for (item, _), value in zip(side, values, strict=True)]
 
 
-def fit_static_to_full(static: Mapping[int, float],
-                       full: Mapping[int, float]) -> tuple[float, float] | None:
-    """(a, b) of the least-squares line full = a * static + b over the units both scored,
+def fit_static_to_full(static: Mapping[int, float], full: Mapping[int, float],
+                       matched: bool = False) -> tuple[float, float] | None:
+    """(a, b) of the least-squares line full = a * static + b over the units both scored
+    (``matched``: the line that gives the static scores the full ones' mean and spread),
     None when fewer than :data:`MIN_PAIRS` did, the static scores do not vary, or the
     line does not rise (the static tier would then say nothing of the full one)."""
     both = sorted(static.keys() & full.keys())
@@ -293,6 +296,8 @@ def fit_static_to_full(static: Mapping[int, float],
     slope = float(((x - x.mean()) * (y - y.mean())).mean() / spread)
     if slope <= 0:
         return None
+    if matched:
+        slope = float(y.std() / x.std())
     return slope, float(y.mean() - slope * x.mean())
 
 
@@ -309,6 +314,8 @@ def merge_tiers(full: Sequence[tuple[int, float]], static: Sequence[tuple[int, f
     static cosines. Were the two tiers' cosines related by an increasing line, the list
     would be the full tier's ranking at any share refined. Without a fit (too few pairs)
     the list is the static tier's alone, as at 0% refined.
+    ``matched``: the same pairs, the line that gives the static cosines the full ones'
+    mean and spread.
     ``standardised``: each tier in standard deviations over its own list.
     """
     if how == "standardised":
@@ -316,14 +323,14 @@ def merge_tiers(full: Sequence[tuple[int, float]], static: Sequence[tuple[int, f
         merged += [(item, score) for item, score in _standardised(static)
                    if item not in refined]
         return sorted(merged, key=lambda pair: (-pair[1], pair[0]))[:n]
-    if how != "linear":
+    if how not in TIER_MAPS:
         raise ValueError(f"unknown tier map {how!r}; expected one of {', '.join(TIER_MAPS)}")
     assert isinstance(refined, Mapping)
     full_scores = dict(full)
     full_scores.update(refined)
     static_scores = dict(static)
     static_scores.update(static_of or {})
-    line = fit_static_to_full(static_scores, full_scores)
+    line = fit_static_to_full(static_scores, full_scores, matched=how == "matched")
     if line is None:
         return list(static[:n])
     slope, intercept = line
@@ -416,7 +423,7 @@ class RefiningSearcher(Searcher):
             labels, matrix = labels[keep], matrix[keep]
         full_vector = self._full_query(query)
         full = exact_search(full_vector, labels, matrix, n)
-        if self.tier_map != "linear":
+        if self.tier_map == "standardised":
             dense = merge_tiers(full, static, set(self._rows), n, how=self.tier_map)
         else:
             # both scores of every refined candidate: the fit's pairs
@@ -425,7 +432,7 @@ class RefiningSearcher(Searcher):
             seen = {unit for unit, _ in static}
             missing = [unit for unit, _ in full if unit not in seen]
             static_of = self._cosines(vector, missing, {}) if missing else {}
-            dense = merge_tiers(full, static, refined, n, static_of, how="linear")
+            dense = merge_tiers(full, static, refined, n, static_of, how=self.tier_map)
         lexical = self.lexical(query, n, pool)
         return fuse(dense, lexical, self.fusion)[:k], dict(static)
 

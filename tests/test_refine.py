@@ -445,16 +445,32 @@ def test_merge_maps_static_onto_full_and_falls_back_to_static() -> None:
         full = sorted(((i, float(full_scores[i])) for i in refined_ids),
                       key=lambda pair: -pair[1])
         refined = {i: float(full_scores[i]) for i, _ in static if i in refined_ids}
-        merged = merge_tiers(full, static, refined, 40, how="linear")
-        assert [i for i, _ in merged] == expected
+        for how in ("linear", "matched"):
+            merged = merge_tiers(full, static, refined, 40, how=how)
+            assert [i for i, _ in merged] == expected
     line = fit_static_to_full(dict(static), {i: float(full_scores[i]) for i in range(10)})
     assert line is not None and np.allclose(line, (0.5, 0.3))
+    # an exact line: matching mean and spread gives the same line (numpy's polyfit too)
+    matched = fit_static_to_full(dict(static), {i: float(full_scores[i]) for i in range(10)},
+                                 matched=True)
+    reference = np.polyfit([static_scores[i] for i in range(10)],
+                           [full_scores[i] for i in range(10)], 1)
+    assert matched is not None and np.allclose(matched, reference)
+    # noisy pairs: least squares shrinks the slope by the correlation, matching does not
+    noisy = full_scores + generator.normal(0, 0.2, 60)
+    pairs = {i: float(noisy[i]) for i in range(60)}
+    shrunk = fit_static_to_full(dict(static), pairs)
+    spread = fit_static_to_full(dict(static), pairs, matched=True)
+    assert shrunk is not None and spread is not None
+    correlation = float(np.corrcoef(static_scores, noisy)[0, 1])
+    assert np.isclose(spread[0], noisy.std() / static_scores.std())
+    assert np.isclose(shrunk[0], correlation * spread[0])
     few = {i: float(full_scores[i]) for i in range(MIN_PAIRS - 1)}
     assert merge_tiers(sorted(few.items(), key=lambda p: -p[1]), static, few, 40,
                        how="linear") == static[:40]
 
 
-@pytest.mark.parametrize("how", ["standardised", "linear"])
+@pytest.mark.parametrize("how", ["standardised", "linear", "matched"])
 def test_searches_mid_refinement_rank_as_designed(sample_copy: Path, how: str) -> None:
     """Through the served path on the fake tiers: at 0% refined the dense side is the
     static tier's ranking; with every unit refined (before the switch) it is the full
