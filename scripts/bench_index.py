@@ -4,6 +4,7 @@ Usage: .venv/bin/python scripts/bench_index.py [PATH] [--torch-sample N] [--quer
        .venv/bin/python scripts/bench_index.py [PATH] --tiers [--tier-units N]
        .venv/bin/python scripts/bench_index.py --corpora [--repeat N]
        .venv/bin/python scripts/bench_index.py [PATH] --ray
+       .venv/bin/python scripts/bench_index.py [PATH] --refine | --refine-daemon
 
 With --ray it builds three fresh indexes of PATH in one run, with the packaged
 model: a local build, then a build on a local Ray instance with 1 worker and
@@ -42,7 +43,9 @@ mixing the tiers (codeseek.refine.TIER_MAPS); the same refinement with the earli
 256-unit chunks, for comparison; the full tier's exact scan at 19,200 and 200,000
 rows; and `codeseek watch --refine` on a fresh index: seconds to searchable, warm
 query p50/p95 through the daemon while it refines, then the cold `codeseek search`
-median without a daemon, mid-refinement.
+median without a daemon, mid-refinement; twice, with the refiner not giving way to
+searches and then giving way (the served behaviour, codeseek.refine.QueryTraffic).
+--refine-daemon runs only that last part.
 
 With --corpora it prints parse throughput only, per language, on the real
 registry code the language tests use (tests/corpora.py; fetched and cached on
