@@ -51,7 +51,7 @@ import sysconfig
 import tempfile
 import time
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -93,7 +93,6 @@ from codeseek.evaluate import (  # noqa: E402
     protocols_for,
     recall_at,
     select_cases,
-    served_ranks,
     without_doc,
 )
 from codeseek.evaluate.questions import CUTOFF  # noqa: E402
@@ -437,7 +436,7 @@ def full_signals(bench: Bench, cases: Sequence[Case], docs: DocumentIndex, lexic
     dense = dense_signals(cases, queries, docs, sampler, protocols_for(cases, sampler),
                           depth=depth)
     return CaseSignals(tuple(cases), lexical, dense,
-                       ann_signals(cases, queries, docs, depth=depth))
+                       ann_signals(cases, queries, docs, depth=depth), docs.enclosing)
 
 
 @dataclass
@@ -466,8 +465,7 @@ class Ranked:
 
 
 def fusion_ranks(signals: CaseSignals, fusion: Fusion) -> dict:
-    return {p: Ranked(served_ranks(signals.cases, *signals.served_for(p), fusion))
-            for p in signals.lexical}
+    return {p: Ranked(signals.served(p, fusion)) for p in signals.lexical}
 
 
 def fusion_table(bench: Bench, served: Served) -> Table:
@@ -492,11 +490,149 @@ def candidates_table(bench: Bench, served: Served, fusion: Fusion) -> Table:
         deep.append(full_signals(bench, cases, served.docs, lexical, depth=max(DEPTHS)))
     table: Table = {
         f"best {n} of each side": tuple(  # type: ignore[misc]
-            {p: Ranked(served_ranks(sig.cases, *sig.served_for(p), fusion, n))
-             for p in sig.lexical} for sig in deep)
+            {p: Ranked(sig.served(p, fusion, n)) for p in sig.lexical} for sig in deep)
         for n in DEPTHS}
     print_table(bench, "3b. candidates fused: served MRR", table, recall=True)
     return table
+
+
+# the nested-helper rules measured (codeseek/fusion.py NESTED_RULES), beside the served fusion
+NESTED = {
+    "no rule": replace(DEFAULT_FUSION, nested="none", nested_amount=0.0),
+    "enclosing unit first": replace(DEFAULT_FUSION, nested="enclosing-first",
+                                    nested_amount=0.0),
+    **{f"helper's score x {f:g}": replace(DEFAULT_FUSION, nested="scaled", nested_amount=f)
+       for f in (0.9, 0.75, 0.5)},
+    **{f"helper's score - {a:g}": replace(DEFAULT_FUSION, nested="lowered", nested_amount=a)
+       for a in (0.25, 0.5, 1.0)},
+}
+SERVED_NESTED = next(name for name, f in NESTED.items() if f == DEFAULT_FUSION)
+
+
+def nested_table(bench: Bench, served: Served) -> Table:
+    """Served MRR under each nested-helper rule, and how many cases it can touch."""
+    enclosing = served.docs.enclosing
+    outers = set(enclosing.values())
+    table: Table = {name: (fusion_ranks(served.train, fusion), fusion_ranks(served.test, fusion))
+                    for name, fusion in NESTED.items()}
+    print_table(bench, "3c. nested-helper rule: served MRR", table, recall=True)
+    for label, cases in (("training", bench.train), ("held-out", bench.test)):
+        print(f"  {label}: {sum(c.position in enclosing for c in cases)} of {len(cases)} "
+              f"answers are nested helpers, {sum(c.position in outers for c in cases)} "
+              f"enclose one ({len(enclosing)} nested helpers among {len(served.docs)} units)")
+    return table
+
+
+def question_half(text: str) -> str:
+    """A question's side of the split: ``training`` or ``held-out`` (by a hash of its text,
+    half each), so a ranking rule is chosen on questions it is not judged on."""
+    import hashlib
+
+    return "training" if hashlib.sha256(text.encode()).digest()[0] % 2 == 0 else "held-out"
+
+
+def question_corpora(cache: Path) -> list[tuple[str, Path, Path]]:
+    """(name, repository, question file) of every public question set that can be asked
+    here: sample_repo, the standard-library subset its questions answer from (copied
+    once into the cache folder, so its index there stays valid) and the packaged ones."""
+    subset = cache / "nested" / "stdlib-subset"
+    if not subset.is_dir():
+        stdlib_question_subset(subset)
+    found = [("sample_repo", PROJECT / "sample_repo", QUESTION_FILES / "sample_repo.jsonl"),
+             ("standard-library subset", subset, QUESTION_FILES / "stdlib.jsonl")]
+    for language, questions in (("go", "pflag"), ("ruby", "thor")):
+        corpus = CORPORA[language]
+        try:
+            found.append((corpus.label, fetch(corpus), QUESTION_FILES / f"{questions}.jsonl"))
+        except CorpusUnavailable as exc:
+            print(f"left out {corpus.label}: {exc.args[0]}")
+    return found
+
+
+def nested_questions(embedder: Embedder, cache: Path) -> dict[str, dict[str, dict]]:
+    """Each question set asked through a real index (kept in the cache folder) under each
+    nested-helper rule, exactly as search serves it: corpus -> rule -> half -> figures."""
+    from codeseek.evaluate import load_questions
+    from codeseek.evaluate.questions import check_questions
+    from codeseek.search import Searcher
+
+    figures: dict[str, dict[str, dict]] = {}
+    for name, repo, path in question_corpora(cache):
+        folder = cache / "nested" / re.sub(r"[^A-Za-z0-9]+", "-", name)
+        with open_index(repo, index_dir=folder, create=True, embedder=embedder) as index:
+            index.update()
+            plain = index.searcher()
+            known = {(s.unit.path, s.unit.qualname) for s in index.store.iter_units()}
+            questions = load_questions(path)
+            halves = {half: [q for q in questions if question_half(q.text) == half]
+                      for half in ("training", "held-out")}
+            figures[name] = {}
+            for rule, fusion in NESTED.items():
+                trial = Searcher(index.store, plain.vectors, plain.embedder, plain.model_id,
+                                 index.lock, fusion=fusion)
+
+                def ask(texts: list[str], depth: int, trial: Searcher = trial
+                        ) -> list[list[tuple[str, str]]]:
+                    return [[(h.path, h.qualname) for h in hits]
+                            for hits in trial.search_many(texts, depth)]
+
+                figures[name][rule] = {
+                    half: check_questions(asked, ask, known, source=path.name,
+                                          corpus=len(known)).metrics
+                    for half, asked in halves.items()}
+            counts = {half: len(asked) for half, asked in halves.items()}
+        print(f"\n[{name}] 3c. nested-helper rule: {path.name} through a real index "
+              f"({len(known)} units), questions training {counts['training']} | held-out "
+              f"{counts['held-out']}: hit@10 and MRR@10")
+        for rule, halves_of in figures[name].items():
+            train, test = halves_of["training"], halves_of["held-out"]
+            print(f"  {rule:<30} {train['hit@10']:.3f}  {train['mrr@10']:.4f} | "
+                  f"{test['hit@10']:.3f}  {test['mrr@10']:.4f}")
+    return figures
+
+
+def choose_nested(tables: dict[str, Table], benches: Sequence[Bench],
+                  questions: dict[str, dict[str, dict]]) -> str:
+    """The nested-helper rule with the best training figure: the mean, over corpora, of the
+    docstring MRR (every pool) beside the mean, over question sets, of MRR@10, each half of
+    the figure; kept only if neither held-out mean falls below the served rule's."""
+    benches = [b for b in benches if b.chooses]
+
+    def docstrings(name: str, side: int) -> float:
+        return float(np.mean([np.mean([mean_reciprocal_rank(by_pool[p].ranks)
+                                       for p in b.pools if p in by_pool])
+                              for b in benches
+                              for by_pool in (tables[b.name][name][side],)]))
+
+    def asked(name: str, half: str) -> float:
+        return float(np.mean([q[name][half]["mrr@10"] for q in questions.values()]))
+
+    print("\nnested-helper rule: docstring MRR (mean over corpora of the mean over pools) and "
+          "question MRR@10 (mean over question sets), training | held-out")
+    scores = {}
+    for name in NESTED:
+        scores[name] = (docstrings(name, 0) + asked(name, "training")) / 2
+        print(f"  {name:<30} docstrings {docstrings(name, 0):.4f}  questions "
+              f"{asked(name, 'training'):.4f}  (training figure {scores[name]:.4f}) | "
+              f"docstrings {docstrings(name, 1):.4f}  questions {asked(name, 'held-out'):.4f}")
+    best = max(NESTED, key=lambda name: scores[name])
+    if best != SERVED_NESTED and scores[best] - scores[SERVED_NESTED] <= TIE:
+        print(f"best on training: {best}, within {TIE} of the served {SERVED_NESTED}: a tie")
+        best = SERVED_NESTED
+    holds = (docstrings(best, 1) >= docstrings(SERVED_NESTED, 1)
+             and asked(best, "held-out") >= asked(SERVED_NESTED, "held-out"))
+    print(f"chosen on training: {best}; held-out docstring and question figures at least the "
+          f"served rule's ({SERVED_NESTED}): {holds}")
+    return best
+
+
+def section_nested(benches: Sequence[Bench], served: dict[str, Served], embedder: Embedder,
+                   cache: Path) -> None:
+    tables = {b.name: nested_table(b, served[b.name]) for b in benches}
+    questions = nested_questions(embedder, cache)
+    chosen = choose_nested(tables, benches, questions)
+    print(f"the served nested-helper rule ({DEFAULT_FUSION.nested}, "
+          f"{DEFAULT_FUSION.nested_amount:g}) is this choice: {chosen == SERVED_NESTED}")
 
 
 def section_served(bench: Bench, served: Served) -> None:
@@ -692,8 +828,9 @@ def main() -> None:
                         help="folder of the vector cache (default /tmp/codeseek-bench-quality)")
     parser.add_argument("--train-sample", type=int, default=1500,
                         help="training pairs used to choose the keyword side and the fusion")
-    parser.add_argument("--corpus", choices=("all", "stdlib", "sample", "packaged", "tune"),
-                        default="all")
+    parser.add_argument("--corpus", choices=("all", "stdlib", "sample", "packaged", "tune",
+                                             "nested"), default="all",
+                        help="the corpora (nested: every one, only stage 3c)")
     parser.add_argument("--tiers", action="store_true",
                         help="compare the embedding tiers on sample_repo and a small "
                              "standard-library copy instead")
@@ -734,18 +871,22 @@ def main() -> None:
             return
         cache = VectorCache(cache_dir / "vectors.npz", embedder.model_id, prune=False)
         corpora: list[tuple[str, Path, bool]] = []
-        if args.corpus in ("all", "stdlib"):
+        if args.corpus in ("all", "stdlib", "nested"):
             corpora.append(("python standard library", copy_stdlib(Path(scratch) / "stdlib"),
                             True))
-        if args.corpus in ("all", "sample"):
+        if args.corpus in ("all", "sample", "nested"):
             corpora.append(("sample_repo", PROJECT / "sample_repo", True))
-        if args.corpus in ("all", "packaged"):
+        if args.corpus in ("all", "packaged", "nested"):
             corpora.extend(packaged_corpora())
         # a corpus too small to split is held out whole (it takes no part in the choices)
         benches = [Bench(name, units_of(repo), embedder, cache,
                          Split() if chooses else Split(1.0), args.train_sample, chooses)
                    for name, repo, chooses in corpora]
-        run([b for b in benches if b.chooses], [b for b in benches if not b.chooses])
+        choosing = [b for b in benches if b.chooses]
+        if args.corpus == "nested":
+            run_nested(choosing, embedder, cache_dir)
+        else:
+            run(choosing, [b for b in benches if not b.chooses], (embedder, cache_dir))
     print(f"\n{time.perf_counter() - started:.0f} s")
 
 
@@ -761,7 +902,19 @@ def packaged_corpora() -> list[tuple[str, Path, bool]]:
     return found
 
 
-def run(benches: Sequence[Bench], checked: Sequence[Bench] = ()) -> None:
+def run_nested(benches: Sequence[Bench], embedder: Embedder, cache: Path) -> None:
+    """Stage 3c alone, on the shipped text and keyword side."""
+    for bench in benches:
+        if len(bench.train) < CHOOSING:
+            bench.chooses = False
+    served = {b.name: served_signals(b, SHIPPED_TEXT, next(iter(KEYWORDS))) for b in benches}
+    for bench in benches:
+        bench.pools = list(served[bench.name].test.lexical)
+    section_nested(benches, served, embedder, cache)
+
+
+def run(benches: Sequence[Bench], checked: Sequence[Bench] = (),
+        nested: tuple[Embedder, Path] | None = None) -> None:
     for bench in benches:
         if len(bench.train) < CHOOSING:
             bench.chooses = False
@@ -792,6 +945,8 @@ def run(benches: Sequence[Bench], checked: Sequence[Bench] = ()) -> None:
     served_depth = f"best {CANDIDATES} of each side"
     depth = choose_across(tables, benches, served_depth)
     print(f"search's CANDIDATES ({CANDIDATES}) is this choice: {depth == served_depth}")
+    if nested is not None:
+        section_nested(benches, served, *nested)
     for bench in benches:
         section_served(bench, served[bench.name])
         if len(bench.test) < SMALL:
