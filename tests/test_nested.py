@@ -158,6 +158,16 @@ def test_penalty_rules_lower_only_nested_helpers(tmp_path: Path, rule: str,
     assert names.index(helper) > plain.index(helper)
 
 
+def test_served_rule_lowers_a_helper_by_its_amount_only(tmp_path: Path) -> None:
+    plain = dict(_ranking(_depot(tmp_path), replace(DEFAULT_FUSION, nested="none")))
+    (tmp_path / "again").mkdir()
+    served = dict(_ranking(_depot(tmp_path / "again"), DEFAULT_FUSION))
+    assert DEFAULT_FUSION.nested == NESTED_RULE != "none"
+    helper = "restock_kiosk.refill_shelf"
+    assert served.pop(helper) == pytest.approx(plain.pop(helper) - DEFAULT_FUSION.nested_amount)
+    assert served == plain
+
+
 def test_fuse_leaves_units_without_nesting_alone() -> None:
     dense = [(1, 0.9), (2, 0.8), (3, 0.7), (4, 0.6)]
     lexical = [(3, 12.0), (1, 9.0), (4, 1.0)]
