@@ -4,7 +4,9 @@ become one ranking (:func:`fuse`), and how many candidates each side gives.
 Light (numpy, nothing of the index): :mod:`codeseek.search` fuses one index's
 candidates with it, and :mod:`codeseek.multi` fuses the pooled candidates of
 several indexes with the same function, so a search across repositories ranks
-exactly as one index of them all would.
+exactly as one index of them all would. A nested helper's fused score is lowered
+(``Fusion.nested``): callers pass which candidates are nested helpers (``enclosing``,
+from :meth:`codeseek.store.Store.enclosing` or :func:`enclosing_map`).
 """
 
 from __future__ import annotations

@@ -568,7 +568,8 @@ class Store:
         names and lines only, over the units of the same files."""
         rows = self._by_ids(
             "SELECT c.id, p.id FROM units c JOIN units p ON p.file_id = c.file_id "
-            "WHERE c.id IN ({ids}) AND c.kind = 'function' AND p.kind IN ('function', 'method') "
+            "WHERE c.id IN ({ids}) AND c.kind = 'function' AND instr(c.qualname, '.') > 0 "
+            "AND p.kind IN ('function', 'method') "
             "AND c.qualname = p.qualname || '.' || c.name "
             "AND p.start_line <= c.start_line AND c.end_line <= p.end_line "
             "ORDER BY c.id, p.start_line, p.id", row_ids)

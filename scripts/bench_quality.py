@@ -13,7 +13,14 @@ MRR over the corpora; the shipped one stands unless beaten by more than TIE:
 1. the unit text the model embeds (the documents have no doc: see codeseek/evaluate/);
 2. the keyword side (fields, identifier splitting, stemming, stopwords);
 3. the fusion of the two (reciprocal rank fusion against scaled scores, weights),
-   and how many candidates of each side it fuses;
+   and how many candidates of each side it fuses; 3c: what the ranking does with a
+   nested helper (a function defined in a function or method): no rule, the enclosing
+   unit lifted above its helper, the helper's score times a factor or lowered by an
+   amount, on the docstrings and on the public question sets
+   (``tests/data/questions/``, split in halves by a hash of each question: training
+   and held-out), each asked through a real index kept in the cache folder; the rule
+   with the best training figure is printed with its held-out differences to no rule
+   (paired bootstrap 95% intervals). ``--corpus nested`` runs only this stage;
 4. the served ranking, every method under every protocol, as ``codeseek eval`` prints it;
 5. the query adapter of ``codeseek tune`` at batch sizes 32, 256 and 2048;
 6. ``codeseek tune`` itself, through a real index of each corpus with its public
@@ -36,7 +43,8 @@ in ``--cache`` (default ``/tmp/codeseek-bench-quality``), so a second run
 embeds nothing; the first embeds the standard library about twice (minutes).
 
 Reproduce: ``.venv/bin/python scripts/bench_quality.py`` (``--tiers`` for the tiers;
-section 6 alone: ``--corpus tune``)
+section 6 alone: ``--corpus tune``; stage 3c alone: ``--corpus nested``, 5 minutes once
+the cache holds the vectors)
 """
 
 from __future__ import annotations
