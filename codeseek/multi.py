@@ -43,7 +43,7 @@ from __future__ import annotations
 
 import math
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from pathlib import Path
 from typing import Any, Protocol, runtime_checkable
 
@@ -98,25 +98,32 @@ class Basis:
 class Sides:
     """One index's candidates for one query of a merge: its best dense (unit id, cosine)
     and keyword (unit id, BM25 under the shared statistics) pairs, best first, and the
-    cosine of each keyword candidate the dense side lacks."""
+    cosine of each keyword candidate the dense side lacks; and which candidates are
+    nested helpers, with the unit each is defined in (:meth:`~codeseek.store.Store.
+    enclosing`: what the fusion's nested-helper rule reads; absent from an older
+    daemon's answer, then empty)."""
 
     dense: list[tuple[int, float]]
     lexical: list[tuple[int, float]]
     cosines: dict[int, float]
+    enclosing: dict[int, int] = field(default_factory=dict)
 
     def to_json(self) -> dict[str, object]:
         """A JSON-ready dict (pairs as two-element lists)."""
         return {"dense": [list(p) for p in self.dense],
                 "lexical": [list(p) for p in self.lexical],
-                "cosines": [[u, c] for u, c in self.cosines.items()]}
+                "cosines": [[u, c] for u, c in self.cosines.items()],
+                "enclosing": [[u, p] for u, p in self.enclosing.items()]}
 
     @classmethod
     def from_json(cls, data: object) -> Sides:
         """The sides a :meth:`to_json` dict describes (ValueError if malformed)."""
         if not isinstance(data, dict):
             raise ValueError("merge sides must be an object")
+        enclosing = {u: int(p) for u, p in _pairs(data.get("enclosing", []))
+                     if float(p).is_integer()}
         return cls(_pairs(data.get("dense")), _pairs(data.get("lexical")),
-                   dict(_pairs(data.get("cosines"))))
+                   dict(_pairs(data.get("cosines"))), enclosing)
 
 
 def _pairs(value: object) -> list[tuple[int, float]]:
@@ -196,9 +203,13 @@ def pooled_ranking(sides: Sequence[Sides], k: int,
     keys = sorted({(r, u) for _, r, u in dense} | {(r, u) for _, r, u in lexical})
     number = {key: i for i, key in enumerate(keys)}  # ascending number: index, then unit id
     similarity = {number[(r, u)]: -c for c, r, u in dense}
+    # a helper's enclosing unit outside the pool is numbered -1: no candidate is
+    enclosing = {number[(r, u)]: number.get((r, p), -1) for r, side in enumerate(sides)
+                 for u, p in side.enclosing.items() if (r, u) in number}
     ranked = fuse([(number[(r, u)], -c) for c, r, u in dense],
                   [(number[(r, u)], -s) for s, r, u in lexical],
-                  DEFAULT_FUSION if fusion is None else Fusion.from_json(fusion))[:k]
+                  DEFAULT_FUSION if fusion is None else Fusion.from_json(fusion),
+                  enclosing)[:k]
     own = [{**side.cosines, **dict(side.dense)} for side in sides]
     return [(keys[item][0], Pick(keys[item][1], score, similarity.get(item),
                                  own[keys[item][0]].get(keys[item][1])))

@@ -434,7 +434,8 @@ class RefiningSearcher(Searcher):
             static_of = self._cosines(vector, missing, {}) if missing else {}
             dense = merge_tiers(full, static, refined, n, static_of, how=self.tier_map)
         lexical = self.lexical(query, n, pool)
-        return fuse(dense, lexical, self.fusion)[:k], dict(static)
+        return (fuse(dense, lexical, self.fusion, self.enclosing(dense, lexical))[:k],
+                dict(static))
 
     def _answer(self, query: str, vector: np.ndarray, k: int,
                 pool: set[int] | None) -> list[SearchHit]:

@@ -224,7 +224,9 @@ class Searcher:
                 lexical = self.shared_lexical(query, stats[i], n, pool)
                 seen = dict(dense)
                 cosines = self._cosines(matrix[i], [u for u, _ in lexical if u not in seen], {})
-                answers.append(Sides(dense, lexical, cosines))
+                # always: the merged fusion may be another index's or the default
+                enclosing = self.store.enclosing(sorted(seen.keys() | {u for u, _ in lexical}))
+                answers.append(Sides(dense, lexical, cosines, enclosing))
         return answers
 
     def picked(self, query: str, picks: Sequence[Pick],
@@ -251,7 +253,14 @@ class Searcher:
         n = max(CANDIDATES, k * 3)
         dense = self.dense(vector, n, pool)
         lexical = self.lexical(query, n, pool)
-        return fuse(dense, lexical, self.fusion)[:k], dict(dense)
+        return fuse(dense, lexical, self.fusion, self.enclosing(dense, lexical))[:k], dict(dense)
+
+    def enclosing(self, *sides: Candidates) -> dict[int, int]:
+        """Which candidates are nested helpers and where each is defined (what the fusion's
+        nested-helper rule reads; not looked up when the rule is ``none``)."""
+        if self.fusion.nested == "none":
+            return {}
+        return self.store.enclosing(sorted({item for side in sides for item, _ in side}))
 
     def _answer(self, query: str, vector: np.ndarray, k: int,
                 pool: set[int] | None) -> list[SearchHit]:

@@ -547,17 +547,33 @@ class Store:
 
     def paths_of(self, row_ids: Sequence[int]) -> dict[int, str]:
         """The file path of each unit id (ids and paths only: no unit text is read)."""
-        found: dict[int, str] = {}
+        rows = self._by_ids("SELECT u.id, f.path FROM units u JOIN files f ON f.id=u.file_id "
+                            "WHERE u.id IN ({ids})", row_ids)
+        return {int(row_id): from_column(path) for row_id, path in rows}
+
+    def _by_ids(self, sql: str, row_ids: Sequence[int]) -> list[tuple]:
+        """The rows of ``sql`` (its ``{ids}`` a list of marks), run for 500 ids at a time."""
         ids = list(row_ids)
+        rows: list[tuple] = []
         for start in range(0, len(ids), 500):
             chunk = ids[start : start + 500]
-            rows = self._query(
-                "SELECT u.id, f.path FROM units u JOIN files f ON f.id=u.file_id "
-                f"WHERE u.id IN ({','.join('?' * len(chunk))})",
-                chunk,
-            )
-            found.update((int(row_id), from_column(path)) for row_id, path in rows)
-        return found
+            rows.extend(self._query(sql.format(ids=",".join("?" * len(chunk))), chunk))
+        return rows
+
+    def enclosing(self, row_ids: Sequence[int]) -> dict[int, int]:
+        """Which of these units are nested helpers, and the unit each is defined in:
+        unit id -> enclosing unit id, by the rule of :func:`codeseek.fusion.is_enclosed_by`
+        (a function of the same file named ``outer.name``, within the lines of ``outer``,
+        a function or method; the innermost when redefinitions leave several). Reads
+        names and lines only, over the units of the same files."""
+        rows = self._by_ids(
+            "SELECT c.id, p.id FROM units c JOIN units p ON p.file_id = c.file_id "
+            "WHERE c.id IN ({ids}) AND c.kind = 'function' AND instr(c.qualname, '.') > 0 "
+            "AND p.kind IN ('function', 'method') "
+            "AND c.qualname = p.qualname || '.' || c.name "
+            "AND p.start_line <= c.start_line AND c.end_line <= p.end_line "
+            "ORDER BY c.id, p.start_line, p.id", row_ids)
+        return {int(inner): int(outer) for inner, outer in rows}  # the innermost comes last
 
     # -- vectors -------------------------------------------------------------------
 

@@ -13,7 +13,14 @@ MRR over the corpora; the shipped one stands unless beaten by more than TIE:
 1. the unit text the model embeds (the documents have no doc: see codeseek/evaluate/);
 2. the keyword side (fields, identifier splitting, stemming, stopwords);
 3. the fusion of the two (reciprocal rank fusion against scaled scores, weights),
-   and how many candidates of each side it fuses;
+   and how many candidates of each side it fuses; 3c: what the ranking does with a
+   nested helper (a function defined in a function or method): no rule, the enclosing
+   unit lifted above its helper, the helper's score times a factor or lowered by an
+   amount, on the docstrings and on the public question sets
+   (``tests/data/questions/``, split in halves by a hash of each question: training
+   and held-out), each asked through a real index kept in the cache folder; the rule
+   with the best training figure is printed with its held-out differences to no rule
+   (paired bootstrap 95% intervals). ``--corpus nested`` runs only this stage;
 4. the served ranking, every method under every protocol, as ``codeseek eval`` prints it;
 5. the query adapter of ``codeseek tune`` at batch sizes 32, 256 and 2048;
 6. ``codeseek tune`` itself, through a real index of each corpus with its public
@@ -36,7 +43,8 @@ in ``--cache`` (default ``/tmp/codeseek-bench-quality``), so a second run
 embeds nothing; the first embeds the standard library about twice (minutes).
 
 Reproduce: ``.venv/bin/python scripts/bench_quality.py`` (``--tiers`` for the tiers;
-section 6 alone: ``--corpus tune``)
+section 6 alone: ``--corpus tune``; stage 3c alone: ``--corpus nested``, 5 minutes once
+the cache holds the vectors)
 """
 
 from __future__ import annotations
@@ -51,7 +59,7 @@ import sysconfig
 import tempfile
 import time
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 
 import numpy as np
@@ -93,11 +101,16 @@ from codeseek.evaluate import (  # noqa: E402
     protocols_for,
     recall_at,
     select_cases,
-    served_ranks,
     without_doc,
 )
 from codeseek.evaluate.questions import CUTOFF  # noqa: E402
-from codeseek.search import CANDIDATES, DEFAULT_FUSION, Fusion, lexical_match  # noqa: E402
+from codeseek.search import (  # noqa: E402
+    CANDIDATES,
+    DEFAULT_FUSION,
+    RRF_K,
+    Fusion,
+    lexical_match,
+)
 from codeseek.tiers import TIERS  # noqa: E402
 from codeseek.tune import TrainSettings, fusion_for, train_adapter, training_data  # noqa: E402
 from codeseek.units import CodeUnit, code_words, lexical_codes, split_identifier  # noqa: E402
@@ -296,10 +309,13 @@ class KeywordIndex:
 
 
 FUSIONS: dict[str, Fusion] = {
-    "reciprocal rank fusion, k 60 (before)": Fusion("rrf", 0.5, 60),
-    **{f"weighted RRF, k {k}, dense {w}": Fusion("rrf", w, k)
+    # the nested-helper rule's amount is in standard deviations (the served kind's units):
+    # the other kinds are measured without it
+    "reciprocal rank fusion, k 60 (before)": Fusion("rrf", 0.5, 60, "none"),
+    **{f"weighted RRF, k {k}, dense {w}": Fusion("rrf", w, k, "none")
        for k in (5, 20) for w in (0.5, 0.6, 0.7)},
-    **{f"scaled to [0, 1], dense {w / 10:g}": Fusion("linear", w / 10) for w in range(5, 10)},
+    **{f"scaled to [0, 1], dense {w / 10:g}": Fusion("linear", w / 10, RRF_K, "none")
+       for w in range(5, 10)},
     **{f"standardised, dense {w / 10:g}": Fusion("zscore", w / 10) for w in range(5, 10)},
 }
 
@@ -437,7 +453,7 @@ def full_signals(bench: Bench, cases: Sequence[Case], docs: DocumentIndex, lexic
     dense = dense_signals(cases, queries, docs, sampler, protocols_for(cases, sampler),
                           depth=depth)
     return CaseSignals(tuple(cases), lexical, dense,
-                       ann_signals(cases, queries, docs, depth=depth))
+                       ann_signals(cases, queries, docs, depth=depth), docs.enclosing)
 
 
 @dataclass
@@ -466,8 +482,7 @@ class Ranked:
 
 
 def fusion_ranks(signals: CaseSignals, fusion: Fusion) -> dict:
-    return {p: Ranked(served_ranks(signals.cases, *signals.served_for(p), fusion))
-            for p in signals.lexical}
+    return {p: Ranked(signals.served(p, fusion)) for p in signals.lexical}
 
 
 def fusion_table(bench: Bench, served: Served) -> Table:
@@ -492,11 +507,173 @@ def candidates_table(bench: Bench, served: Served, fusion: Fusion) -> Table:
         deep.append(full_signals(bench, cases, served.docs, lexical, depth=max(DEPTHS)))
     table: Table = {
         f"best {n} of each side": tuple(  # type: ignore[misc]
-            {p: Ranked(served_ranks(sig.cases, *sig.served_for(p), fusion, n))
-             for p in sig.lexical} for sig in deep)
+            {p: Ranked(sig.served(p, fusion, n)) for p in sig.lexical} for sig in deep)
         for n in DEPTHS}
     print_table(bench, "3b. candidates fused: served MRR", table, recall=True)
     return table
+
+
+# the nested-helper rules measured (codeseek/fusion.py NESTED_RULES), beside the served fusion
+NESTED = {
+    "no rule": replace(DEFAULT_FUSION, nested="none", nested_amount=0.0),
+    "enclosing unit first": replace(DEFAULT_FUSION, nested="enclosing-first",
+                                    nested_amount=0.0),
+    **{f"helper's score x {f:g}": replace(DEFAULT_FUSION, nested="scaled", nested_amount=f)
+       for f in (0.9, 0.75, 0.5)},
+    **{f"helper's score - {a:g}": replace(DEFAULT_FUSION, nested="lowered", nested_amount=a)
+       for a in (0.25, 0.5, 1.0)},
+}
+SERVED_NESTED = next(name for name, f in NESTED.items() if f == DEFAULT_FUSION)
+
+
+def nested_table(bench: Bench, served: Served) -> Table:
+    """Served MRR under each nested-helper rule, and how many cases it can touch."""
+    enclosing = served.docs.enclosing
+    outers = set(enclosing.values())
+    table: Table = {name: (fusion_ranks(served.train, fusion), fusion_ranks(served.test, fusion))
+                    for name, fusion in NESTED.items()}
+    print_table(bench, "3c. nested-helper rule: served MRR", table, recall=True)
+    for label, cases in (("training", bench.train), ("held-out", bench.test)):
+        print(f"  {label}: {sum(c.position in enclosing for c in cases)} of {len(cases)} "
+              f"answers are nested helpers, {sum(c.position in outers for c in cases)} "
+              f"enclose one ({len(enclosing)} nested helpers among {len(served.docs)} units)")
+    return table
+
+
+def question_half(text: str) -> str:
+    """A question's side of the split: ``training`` or ``held-out`` (by a hash of its text,
+    half each), so a ranking rule is chosen on questions it is not judged on."""
+    import hashlib
+
+    return "training" if hashlib.sha256(text.encode()).digest()[0] % 2 == 0 else "held-out"
+
+
+def question_corpora(cache: Path) -> list[tuple[str, Path, Path]]:
+    """(name, repository, question file) of every public question set that can be asked
+    here: sample_repo, the standard-library subset its questions answer from (copied
+    once into the cache folder, so its index there stays valid) and the packaged ones."""
+    subset = cache / "nested" / "stdlib-subset"
+    if not subset.is_dir():
+        stdlib_question_subset(subset)
+    found = [("sample_repo", PROJECT / "sample_repo", QUESTION_FILES / "sample_repo.jsonl"),
+             ("standard-library subset", subset, QUESTION_FILES / "stdlib.jsonl")]
+    for language, questions in (("go", "pflag"), ("ruby", "thor")):
+        corpus = CORPORA[language]
+        try:
+            found.append((corpus.label, fetch(corpus), QUESTION_FILES / f"{questions}.jsonl"))
+        except CorpusUnavailable as exc:
+            print(f"left out {corpus.label}: {exc.args[0]}")
+    return found
+
+
+def nested_questions(embedder: Embedder, cache: Path) -> dict[str, dict[str, dict]]:
+    """Each question set asked through a real index (kept in the cache folder) under each
+    nested-helper rule, exactly as search serves it: corpus -> rule -> half -> figures."""
+    from codeseek.evaluate import load_questions
+    from codeseek.evaluate.questions import check_questions
+    from codeseek.search import Searcher
+
+    figures: dict[str, dict[str, dict]] = {}
+    for name, repo, path in question_corpora(cache):
+        folder = cache / "nested" / re.sub(r"[^A-Za-z0-9]+", "-", name)
+        with open_index(repo, index_dir=folder, create=True, embedder=embedder) as index:
+            index.update()
+            plain = index.searcher()
+            known = {(s.unit.path, s.unit.qualname) for s in index.store.iter_units()}
+            questions = load_questions(path)
+            halves = {half: [q for q in questions if question_half(q.text) == half]
+                      for half in ("training", "held-out")}
+            figures[name] = {}
+            for rule, fusion in NESTED.items():
+                trial = Searcher(index.store, plain.vectors, plain.embedder, plain.model_id,
+                                 index.lock, fusion=fusion)
+
+                def ask(texts: list[str], depth: int, trial: Searcher = trial
+                        ) -> list[list[tuple[str, str]]]:
+                    return [[(h.path, h.qualname) for h in hits]
+                            for hits in trial.search_many(texts, depth)]
+
+                figures[name][rule] = {
+                    half: check_questions(asked, ask, known, source=path.name,
+                                          corpus=len(known))
+                    for half, asked in halves.items()}
+            counts = {half: len(asked) for half, asked in halves.items()}
+        print(f"\n[{name}] 3c. nested-helper rule: {path.name} through a real index "
+              f"({len(known)} units), questions training {counts['training']} | held-out "
+              f"{counts['held-out']}: hit@10 and MRR@10")
+        for rule, halves_of in figures[name].items():
+            train, test = halves_of["training"].metrics, halves_of["held-out"].metrics
+            print(f"  {rule:<30} {train['hit@10']:.3f}  {train['mrr@10']:.4f} | "
+                  f"{test['hit@10']:.3f}  {test['mrr@10']:.4f}")
+    return figures
+
+
+def choose_nested(tables: dict[str, Table], benches: Sequence[Bench],
+                  questions: dict[str, dict[str, dict]]) -> str:
+    """The nested-helper rule with the best training figure: the mean, over corpora, of the
+    docstring MRR (every pool) beside the mean, over question sets, of MRR@10, each half of
+    the figure; kept only if neither held-out mean falls below the served rule's."""
+    benches = [b for b in benches if b.chooses]
+
+    def docstrings(name: str, side: int) -> float:
+        return float(np.mean([np.mean([mean_reciprocal_rank(by_pool[p].ranks)
+                                       for p in b.pools if p in by_pool])
+                              for b in benches
+                              for by_pool in (tables[b.name][name][side],)]))
+
+    def asked(name: str, half: str) -> float:
+        return float(np.mean([q[name][half].metrics["mrr@10"] for q in questions.values()]))
+
+    print("\nnested-helper rule: docstring MRR (mean over corpora of the mean over pools) and "
+          "question MRR@10 (mean over question sets), training | held-out")
+    scores = {}
+    for name in NESTED:
+        scores[name] = (docstrings(name, 0) + asked(name, "training")) / 2
+        print(f"  {name:<30} docstrings {docstrings(name, 0):.4f}  questions "
+              f"{asked(name, 'training'):.4f}  (training figure {scores[name]:.4f}) | "
+              f"docstrings {docstrings(name, 1):.4f}  questions {asked(name, 'held-out'):.4f}")
+    best = max(NESTED, key=lambda name: scores[name])
+    if best != SERVED_NESTED and scores[best] - scores[SERVED_NESTED] <= TIE:
+        print(f"best on training: {best}, within {TIE} of the served {SERVED_NESTED}: a tie")
+        best = SERVED_NESTED
+    baseline = "no rule"
+    holds = (docstrings(best, 1) >= docstrings(baseline, 1)
+             and asked(best, "held-out") >= asked(baseline, "held-out"))
+    print(f"chosen on training: {best}; its held-out docstring and question figures at least "
+          f"those of {baseline}: {holds}")
+    for name in dict.fromkeys((best, SERVED_NESTED)):
+        if name != baseline:
+            nested_intervals(tables, benches, questions, name, baseline)
+    return best
+
+
+def nested_intervals(tables: dict[str, Table], benches: Sequence[Bench],
+                     questions: dict[str, dict[str, dict]], name: str, baseline: str) -> None:
+    """The held-out difference of a rule to another, per query in pairs, with its
+    percentile-bootstrap 95% interval: the whole-index docstrings of every corpus pooled,
+    and every question set's held-out half pooled (MRR@10)."""
+    def pooled(ranks: Sequence[np.ndarray]) -> np.ndarray:
+        return np.concatenate([np.asarray(r, dtype=np.int64) for r in ranks])
+
+    docs = [pooled([tables[b.name][rule][1]["all"].ranks for b in benches
+                    if "all" in tables[b.name][rule][1]]) for rule in (name, baseline)]
+    asked = [pooled([np.where(np.asarray(q[rule]["held-out"].ranks) <= CUTOFF,
+                              q[rule]["held-out"].ranks, 0) for q in questions.values()])
+             for rule in (name, baseline)]
+    for label, (mine, theirs) in (("whole-index docstrings", docs), ("questions, MRR@10", asked)):
+        difference, (low, high) = mrr_difference(mine, theirs, 0)  # type: ignore[arg-type]
+        print(f"  held-out {label}: {name} - {baseline} = {difference:+.4f} "
+              f"[{low:+.4f}, {high:+.4f}] over {len(mine)} queries, "
+              f"{int(np.sum(mine != theirs))} ranked differently")
+
+
+def section_nested(benches: Sequence[Bench], served: dict[str, Served], embedder: Embedder,
+                   cache: Path) -> None:
+    tables = {b.name: nested_table(b, served[b.name]) for b in benches}
+    questions = nested_questions(embedder, cache)
+    chosen = choose_nested(tables, benches, questions)
+    print(f"the served nested-helper rule ({DEFAULT_FUSION.nested}, "
+          f"{DEFAULT_FUSION.nested_amount:g}) is this choice: {chosen == SERVED_NESTED}")
 
 
 def section_served(bench: Bench, served: Served) -> None:
@@ -692,8 +869,9 @@ def main() -> None:
                         help="folder of the vector cache (default /tmp/codeseek-bench-quality)")
     parser.add_argument("--train-sample", type=int, default=1500,
                         help="training pairs used to choose the keyword side and the fusion")
-    parser.add_argument("--corpus", choices=("all", "stdlib", "sample", "packaged", "tune"),
-                        default="all")
+    parser.add_argument("--corpus", choices=("all", "stdlib", "sample", "packaged", "tune",
+                                             "nested"), default="all",
+                        help="the corpora (nested: every one, only stage 3c)")
     parser.add_argument("--tiers", action="store_true",
                         help="compare the embedding tiers on sample_repo and a small "
                              "standard-library copy instead")
@@ -734,18 +912,22 @@ def main() -> None:
             return
         cache = VectorCache(cache_dir / "vectors.npz", embedder.model_id, prune=False)
         corpora: list[tuple[str, Path, bool]] = []
-        if args.corpus in ("all", "stdlib"):
+        if args.corpus in ("all", "stdlib", "nested"):
             corpora.append(("python standard library", copy_stdlib(Path(scratch) / "stdlib"),
                             True))
-        if args.corpus in ("all", "sample"):
+        if args.corpus in ("all", "sample", "nested"):
             corpora.append(("sample_repo", PROJECT / "sample_repo", True))
-        if args.corpus in ("all", "packaged"):
+        if args.corpus in ("all", "packaged", "nested"):
             corpora.extend(packaged_corpora())
         # a corpus too small to split is held out whole (it takes no part in the choices)
         benches = [Bench(name, units_of(repo), embedder, cache,
                          Split() if chooses else Split(1.0), args.train_sample, chooses)
                    for name, repo, chooses in corpora]
-        run([b for b in benches if b.chooses], [b for b in benches if not b.chooses])
+        choosing = [b for b in benches if b.chooses]
+        if args.corpus == "nested":
+            run_nested(choosing, embedder, cache_dir)
+        else:
+            run(choosing, [b for b in benches if not b.chooses], (embedder, cache_dir))
     print(f"\n{time.perf_counter() - started:.0f} s")
 
 
@@ -761,7 +943,19 @@ def packaged_corpora() -> list[tuple[str, Path, bool]]:
     return found
 
 
-def run(benches: Sequence[Bench], checked: Sequence[Bench] = ()) -> None:
+def run_nested(benches: Sequence[Bench], embedder: Embedder, cache: Path) -> None:
+    """Stage 3c alone, on the shipped text and keyword side."""
+    for bench in benches:
+        if len(bench.train) < CHOOSING:
+            bench.chooses = False
+    served = {b.name: served_signals(b, SHIPPED_TEXT, next(iter(KEYWORDS))) for b in benches}
+    for bench in benches:
+        bench.pools = list(served[bench.name].test.lexical)
+    section_nested(benches, served, embedder, cache)
+
+
+def run(benches: Sequence[Bench], checked: Sequence[Bench] = (),
+        nested: tuple[Embedder, Path] | None = None) -> None:
     for bench in benches:
         if len(bench.train) < CHOOSING:
             bench.chooses = False
@@ -792,6 +986,8 @@ def run(benches: Sequence[Bench], checked: Sequence[Bench] = ()) -> None:
     served_depth = f"best {CANDIDATES} of each side"
     depth = choose_across(tables, benches, served_depth)
     print(f"search's CANDIDATES ({CANDIDATES}) is this choice: {depth == served_depth}")
+    if nested is not None:
+        section_nested(benches, served, *nested)
     for bench in benches:
         section_served(bench, served[bench.name])
         if len(bench.test) < SMALL:

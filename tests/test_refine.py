@@ -491,9 +491,9 @@ def test_searches_mid_refinement_rank_as_designed(sample_copy: Path, how: str) -
 
     real_fuse = refine_module.fuse
 
-    def spy(dense, lexical, fusion):  # type: ignore[no-untyped-def]
+    def spy(dense, lexical, fusion, enclosing=None):  # type: ignore[no-untyped-def]
         captured.append(list(dense))
-        return real_fuse(dense, lexical, fusion)
+        return real_fuse(dense, lexical, fusion, enclosing)
 
     refine_module.fuse = spy  # type: ignore[assignment]
     try:

@@ -12,6 +12,7 @@ import numpy as np
 
 from codeseek.embed import Embedder
 from codeseek.evaluate.cache import Progress, VectorCache, encode_cached
+from codeseek.fusion import enclosing_map
 from codeseek.search import lexical_match
 from codeseek.store import MIGRATIONS, Store
 from codeseek.units import CodeUnit, lexical_codes
@@ -58,6 +59,8 @@ class DocumentIndex:
         self.row_ids = self._fill(lexical_codes(units))  # members folded as the index folds them
         self._positions = np.full(int(self.row_ids.max(initial=0)) + 1, -1, dtype=np.int64)
         self._positions[self.row_ids] = np.arange(len(self.row_ids))
+        # nested helpers by position: what served search reads from the store (the same rule)
+        self.enclosing = enclosing_map(enumerate(self.units))
 
     def __len__(self) -> int:
         return len(self.units)

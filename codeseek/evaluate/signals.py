@@ -3,7 +3,7 @@
 from __future__ import annotations
 
 from collections.abc import Iterator, Sequence
-from dataclasses import dataclass, replace
+from dataclasses import dataclass, field, replace
 from typing import Protocol
 
 import numpy as np
@@ -12,6 +12,7 @@ from codeseek.evaluate.cache import Progress
 from codeseek.evaluate.documents import POOL_SIZES, WHOLE, DocumentIndex, Pool, PoolSampler
 from codeseek.evaluate.metrics import mean_reciprocal_rank, rank_in, rank_of_true
 from codeseek.evaluate.split import Case
+from codeseek.fusion import Enclosing
 from codeseek.search import CANDIDATES, DEFAULT_FUSION, Fusion, fuse
 from codeseek.vectors import exact_search
 
@@ -165,15 +166,19 @@ def ann_signals(cases: Sequence[Case], queries: np.ndarray, documents: DocumentI
 
 
 def served_ranks(cases: Sequence[Case], dense: Signals, lexical: Signals,
-                 fusion: Fusion, candidates: int = CANDIDATES) -> np.ndarray:
+                 fusion: Fusion, candidates: int = CANDIDATES,
+                 enclosing: Enclosing | None = None) -> np.ndarray:
     """Each case's rank in the served ranking (:func:`~codeseek.search.fuse`) of the
-    best ``candidates`` of each side."""
+    best ``candidates`` of each side; ``enclosing`` (positions: nested helper -> the unit
+    it is defined in, :func:`~codeseek.fusion.enclosing_map` of the documents' units) is
+    what the fusion's nested-helper rule reads, as served search reads the store's."""
     ranks = []
     for slot, index in enumerate(dense.cases):
         d_ids, d_scores = (a[:candidates] for a in dense.tops[slot])
         l_ids, l_scores = (a[:candidates] for a in lexical.tops[slot])
         fused = fuse(list(zip(d_ids.tolist(), d_scores.tolist(), strict=True)),
-                     list(zip(l_ids.tolist(), l_scores.tolist(), strict=True)), fusion)
+                     list(zip(l_ids.tolist(), l_scores.tolist(), strict=True)), fusion,
+                     enclosing)
         ranks.append(rank_in([item for item, _ in fused], cases[int(index)].position))
     return np.array(ranks, dtype=np.int64)
 
@@ -186,10 +191,17 @@ class CaseSignals:
     lexical: dict[Pool, Signals]
     dense: dict[Pool, Signals]
     ann: Signals
+    enclosing: Enclosing = field(default_factory=dict)
+    """Nested helpers among the documents (positions), for the nested-helper rule."""
 
     def served_for(self, pool: Pool) -> tuple[Signals, Signals]:
         """The dense and lexical candidates served search would fuse under a protocol."""
         return (self.ann if pool == WHOLE else self.dense[pool]), self.lexical[pool]
+
+    def served(self, pool: Pool, fusion: Fusion, candidates: int = CANDIDATES) -> np.ndarray:
+        """The served ranks under a protocol: :func:`served_ranks` of its candidates."""
+        return served_ranks(self.cases, *self.served_for(pool), fusion, candidates,
+                            self.enclosing)
 
     def ranks(self, fusion: Fusion) -> Iterator[tuple[str, Pool, np.ndarray]]:
         """(method, protocol, ranks) for every method under every protocol."""
@@ -198,7 +210,7 @@ class CaseSignals:
             yield "dense", pool, self.dense[pool].ranks
             if pool == WHOLE:
                 yield "dense-ann", pool, self.ann.ranks
-            yield "served", pool, served_ranks(self.cases, *self.served_for(pool), fusion)
+            yield "served", pool, self.served(pool, fusion)
 
 
 def collect_signals(cases: Sequence[Case], query_vectors: np.ndarray,
@@ -212,7 +224,7 @@ def collect_signals(cases: Sequence[Case], query_vectors: np.ndarray,
         lexical = lexical_signals(cases, documents, sampler, protocols, progress)
     dense = dense_signals(cases, query_vectors, documents, sampler, protocols, progress)
     ann = ann_signals(cases, query_vectors, documents, progress)
-    return CaseSignals(tuple(cases), lexical, dense, ann)
+    return CaseSignals(tuple(cases), lexical, dense, ann, documents.enclosing)
 
 
 FUSION_GRID = tuple(replace(DEFAULT_FUSION, dense_weight=weight / 10) for weight in range(3, 10))
@@ -222,8 +234,7 @@ FUSION_GRID = tuple(replace(DEFAULT_FUSION, dense_weight=weight / 10) for weight
 def choose_fusion(signals: CaseSignals,
                   grid: Sequence[Fusion] = FUSION_GRID) -> tuple[Fusion, dict[Fusion, float]]:
     """The fusion with the best served MRR, summed over protocols, on these (training) cases."""
-    scores = {fusion: sum(mean_reciprocal_rank(served_ranks(signals.cases,
-                                                            *signals.served_for(pool), fusion))
+    scores = {fusion: sum(mean_reciprocal_rank(signals.served(pool, fusion))
                           for pool in signals.lexical)
               for fusion in grid}
     best = max(grid, key=lambda fusion: scores[fusion])
