@@ -23,6 +23,7 @@ from __future__ import annotations
 import math
 import os
 import sqlite3
+import threading
 import time
 from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager, suppress
@@ -166,6 +167,10 @@ class Store:
     def __init__(self, connection: sqlite3.Connection, path: Path, *,
                  read_only: bool = False) -> None:
         self._db = connection
+        # one transaction at a time on the connection: the threads of one index (a search
+        # saving its vector file, a refinement, the watcher) share it, and SQLite refuses
+        # a BEGIN inside an open transaction
+        self._one_transaction = threading.RLock()  # the same thread: SQLite says no, as before
         self.path = path
         self.read_only = read_only  # opened so because the folder cannot be written
         self.notes: list[str] = []  # warnings about the index folder, shown once
@@ -285,24 +290,26 @@ class Store:
 
     @contextmanager
     def transaction(self) -> Iterator[None]:
-        """One atomic change; sqlite3 errors become codeseek errors."""
-        try:
-            self._db.execute("BEGIN IMMEDIATE")
-        except sqlite3.Error as exc:
-            raise _translate(exc, self.path) from exc
-        try:
-            yield
-        except sqlite3.Error as exc:
-            self._rollback()
-            raise _translate(exc, self.path) from exc
-        except BaseException:
-            self._rollback()
-            raise
-        try:
-            self._db.execute("COMMIT")
-        except sqlite3.Error as exc:
-            self._rollback()
-            raise _translate(exc, self.path) from exc
+        """One atomic change; sqlite3 errors become codeseek errors. Other threads'
+        transactions on this store wait for it to end."""
+        with self._one_transaction:
+            try:
+                self._db.execute("BEGIN IMMEDIATE")
+            except sqlite3.Error as exc:
+                raise _translate(exc, self.path) from exc
+            try:
+                yield
+            except sqlite3.Error as exc:
+                self._rollback()
+                raise _translate(exc, self.path) from exc
+            except BaseException:
+                self._rollback()
+                raise
+            try:
+                self._db.execute("COMMIT")
+            except sqlite3.Error as exc:
+                self._rollback()
+                raise _translate(exc, self.path) from exc
 
     def _rollback(self) -> None:
         """Undo the open transaction, if SQLite has not already (it rolls back by

@@ -292,3 +292,35 @@ def test_keyword_entries_after_an_edit_equal_a_fresh_build(
                        embedder=FakeEmbedder())
     fresh.update()
     assert keyword_entries(index) == keyword_entries(fresh)
+
+
+def test_threads_sharing_a_store_never_nest_transactions(sample_copy: Path) -> None:
+    """A search saving its vector file while a refinement or an update commits: both
+    use the index's one SQLite connection, and SQLite refuses a BEGIN inside an open
+    transaction ("cannot start a transaction within a transaction"), so the store lets
+    one transaction at a time run on it."""
+    import threading
+
+    with open_index(sample_copy, create=True, backend="fake") as index:
+        index.update()
+        store = index.store
+        errors: list[BaseException] = []
+        start = threading.Barrier(4)
+
+        def commit(worker: int) -> None:
+            start.wait()
+            try:
+                for step in range(200):
+                    with store.transaction():
+                        store.set_manifest(**{f"probe_{worker}": str(step)})
+            except BaseException as exc:  # noqa: BLE001 - collected for the assert
+                errors.append(exc)
+
+        threads = [threading.Thread(target=commit, args=(n,)) for n in range(4)]
+        for thread in threads:
+            thread.start()
+        for thread in threads:
+            thread.join()
+        assert not errors, errors[0]
+        manifest = store.manifest()
+        assert [manifest[f"probe_{n}"] for n in range(4)] == ["199"] * 4
