@@ -48,7 +48,7 @@ embeds nothing; the first embeds the standard library about twice (minutes).
 
 Reproduce: ``.venv/bin/python scripts/bench_quality.py`` (``--tiers`` for the tiers;
 section 6 alone: ``--corpus tune``; stage 3c alone: ``--corpus nested``, 5 minutes once
-the cache holds the vectors; stage 3d alone: ``--corpus paths``, 4 minutes)
+the cache holds the vectors; stage 3d alone: ``--corpus paths``, 3 to 4 minutes)
 """
 
 from __future__ import annotations
