@@ -21,6 +21,9 @@ WORDS_FROM = 800  # characters of code from which the embedded text gives identi
 # rewritten on its next update. "members-folded-3": inner units folded to their signatures,
 # a member's doc comment with it.
 LEXICAL_TEXT = "members-folded-3"
+# The lexical field the words of a unit's path go to (None: not indexed); measured in
+# scripts/bench_quality.py (stage 3d).
+PATH_WORDS_IN: str | None = None
 
 _CAMEL = re.compile(r"[A-Z]+(?=[A-Z][a-z])|[A-Z]?[a-z]+|[A-Z]+|\d+")
 _NON_WORD = re.compile(r"[^A-Za-z0-9]+")
@@ -121,19 +124,39 @@ class CodeUnit:
             :32
         ]
 
-    def lexical_fields(self, code: str | None = None) -> dict[str, str]:
+    def lexical_fields(self, code: str | None = None,
+                       path_in: str | None = PATH_WORDS_IN) -> dict[str, str]:
         """The fields of the lexical (BM25) index, identifiers split into words.
 
         ``code`` is the code to match (default: the code without the doc); the
         index passes the :func:`lexical_codes` text, in which a class's
-        methods are folded to their signatures.
+        methods are folded to their signatures. ``path_in`` names the field the
+        words of the unit's path (:func:`path_words`) are added to, or None for
+        none (default :data:`PATH_WORDS_IN`; ``scripts/bench_quality.py`` measures
+        each placement). A method's enclosing class is already in ``names``: it is
+        part of the qualified name.
         """
-        return {
+        fields = {
             "names": " ".join(split_identifier(self.qualname)),
             "signature": split_words(self.signature),
             "doc": self.doc,
             "code": split_words(self.code_without_doc if code is None else code),
         }
+        if path_in is not None:
+            fields[path_in] = " ".join(filter(None, (fields[path_in], path_words(self.path))))
+        return fields
+
+
+def path_words(path: str) -> str:
+    """The words of a repository path: each folder's and the file name's (without its
+    extension) identifier words, in order (``email/_header_value_parser.py`` ->
+    ``email header value parser``)."""
+    parts = [part for part in path.split("/") if part not in ("", ".", "..")]
+    if parts:
+        stem, dot, _ = parts[-1].rpartition(".")
+        if dot and stem.strip("."):
+            parts[-1] = stem
+    return " ".join(word for part in parts for word in split_identifier(part))
 
 
 def lexical_codes(units: Sequence[CodeUnit]) -> list[str]:

@@ -21,6 +21,10 @@ MRR over the corpora; the shipped one stands unless beaten by more than TIE:
    and held-out), each asked through a real index kept in the cache folder; the rule
    with the best training figure is printed with its held-out differences to no rule
    (paired bootstrap 95% intervals). ``--corpus nested`` runs only this stage;
+   3d: the words of each unit's path (folders and file name) added to one keyword field
+   (names x4, signature x2, code x1) or to none, on the docstrings and on the question
+   sets through the same real indexes (their keyword entries rewritten each way, then
+   as served), chosen and reported as 3c is. ``--corpus paths`` runs only this stage;
 4. the served ranking, every method under every protocol, as ``codeseek eval`` prints it;
 5. the query adapter of ``codeseek tune`` at batch sizes 32, 256 and 2048;
 6. ``codeseek tune`` itself, through a real index of each corpus with its public
@@ -44,12 +48,13 @@ embeds nothing; the first embeds the standard library about twice (minutes).
 
 Reproduce: ``.venv/bin/python scripts/bench_quality.py`` (``--tiers`` for the tiers;
 section 6 alone: ``--corpus tune``; stage 3c alone: ``--corpus nested``, 5 minutes once
-the cache holds the vectors)
+the cache holds the vectors; stage 3d alone: ``--corpus paths``, 3 to 4 minutes)
 """
 
 from __future__ import annotations
 
 import argparse
+import hashlib
 import re
 import shlex
 import shutil
@@ -78,6 +83,7 @@ from corpora import (  # noqa: E402
 
 from codeseek import open_index  # noqa: E402
 from codeseek.adapter import QueryAdapter  # noqa: E402
+from codeseek.api import Index  # noqa: E402
 from codeseek.config import load_settings  # noqa: E402
 from codeseek.embed import Embedder, load_embedder  # noqa: E402
 from codeseek.errors import TooFewExamples  # noqa: E402
@@ -113,7 +119,13 @@ from codeseek.search import (  # noqa: E402
 )
 from codeseek.tiers import TIERS  # noqa: E402
 from codeseek.tune import TrainSettings, fusion_for, train_adapter, training_data  # noqa: E402
-from codeseek.units import CodeUnit, code_words, lexical_codes, split_identifier  # noqa: E402
+from codeseek.units import (  # noqa: E402
+    PATH_WORDS_IN,
+    CodeUnit,
+    code_words,
+    lexical_codes,
+    split_identifier,
+)
 
 SMALL = 200  # a corpus with fewer held-out docstrings is also checked with all of them
 CHOOSING = 100  # training pairs a corpus needs to take part in the choices
@@ -221,6 +233,14 @@ def fields_shipped(unit: CodeUnit, folded: str) -> list[str]:
     return [fields["names"], fields["signature"], fields["doc"], fields["code"]]
 
 
+def fields_path(column: str | None) -> Callable[[CodeUnit, str], list[str]]:
+    """As the index writes them, with the words of the unit's path in one field (or none)."""
+    def fields(unit: CodeUnit, folded: str) -> list[str]:
+        made = unit.lexical_fields(folded, path_in=column)
+        return [made["names"], made["signature"], made["doc"], made["code"]]
+    return fields
+
+
 def fields_members_kept(unit: CodeUnit, folded: str) -> list[str]:
     """As shipped, but a class's entry keeps its methods' bodies."""
     fields = unit.lexical_fields()
@@ -276,6 +296,17 @@ KEYWORDS: dict[str, KeywordVariant] = {
     "all fields weighted 1": KeywordVariant(fields_shipped, weights=(1.0, 1.0, 1.0, 1.0)),
     "stopwords kept in the query": KeywordVariant(fields_shipped, match=match_with_stopwords),
 }
+# stage 3d: the words of a unit's path (folders and file name) in one lexical field, or none
+# (the field's weight in COLUMN_WEIGHTS is the path words' weight)
+PATHS: dict[str, str | None] = {
+    "no path words": None,
+    "path words in names (x4)": "names",
+    "path words in signature (x2)": "signature",
+    "path words in code (x1)": "code",
+}
+SERVED_PATH = next(name for name, column in PATHS.items() if column == PATH_WORDS_IN)
+KEYWORDS.update({f"3d: {name}": KeywordVariant(fields_path(column))
+                 for name, column in PATHS.items()})
 
 
 class KeywordIndex:
@@ -543,8 +574,6 @@ def nested_table(bench: Bench, served: Served) -> Table:
 def question_half(text: str) -> str:
     """A question's side of the split: ``training`` or ``held-out`` (by a hash of its text,
     half each), so a ranking rule is chosen on questions it is not judged on."""
-    import hashlib
-
     return "training" if hashlib.sha256(text.encode()).digest()[0] % 2 == 0 else "held-out"
 
 
@@ -566,16 +595,22 @@ def question_corpora(cache: Path) -> list[tuple[str, Path, Path]]:
     return found
 
 
-def nested_questions(embedder: Embedder, cache: Path) -> dict[str, dict[str, dict]]:
+def asked_through_indexes(embedder: Embedder, cache: Path, rules: Sequence[str],
+                          prepare: Callable[[Index, str], Fusion], title: str,
+                          finish: Callable[[Index], None] | None = None
+                          ) -> dict[str, dict[str, dict]]:
     """Each question set asked through a real index (kept in the cache folder) under each
-    nested-helper rule, exactly as search serves it: corpus -> rule -> half -> figures."""
+    rule, exactly as search serves it: ``prepare(index, rule)`` readies the index for a rule
+    and gives its fusion, ``finish(index)`` restores it. corpus -> rule -> half -> figures."""
     from codeseek.evaluate import load_questions
     from codeseek.evaluate.questions import check_questions
     from codeseek.search import Searcher
 
     figures: dict[str, dict[str, dict]] = {}
     for name, repo, path in question_corpora(cache):
-        folder = cache / "nested" / re.sub(r"[^A-Za-z0-9]+", "-", name)
+        # one index folder per corpus and repository path (sample_repo of each worktree)
+        where = hashlib.sha256(str(repo.resolve()).encode()).hexdigest()[:8]
+        folder = cache / "nested" / f"{re.sub(r'[^A-Za-z0-9]+', '-', name)}-{where}"
         with open_index(repo, index_dir=folder, create=True, embedder=embedder) as index:
             index.update()
             plain = index.searcher()
@@ -584,21 +619,25 @@ def nested_questions(embedder: Embedder, cache: Path) -> dict[str, dict[str, dic
             halves = {half: [q for q in questions if question_half(q.text) == half]
                       for half in ("training", "held-out")}
             figures[name] = {}
-            for rule, fusion in NESTED.items():
-                trial = Searcher(index.store, plain.vectors, plain.embedder, plain.model_id,
-                                 index.lock, fusion=fusion)
+            try:
+                for rule in rules:
+                    trial = Searcher(index.store, plain.vectors, plain.embedder,
+                                     plain.model_id, index.lock, fusion=prepare(index, rule))
 
-                def ask(texts: list[str], depth: int, trial: Searcher = trial
-                        ) -> list[list[tuple[str, str]]]:
-                    return [[(h.path, h.qualname) for h in hits]
-                            for hits in trial.search_many(texts, depth)]
+                    def ask(texts: list[str], depth: int, trial: Searcher = trial
+                            ) -> list[list[tuple[str, str]]]:
+                        return [[(h.path, h.qualname) for h in hits]
+                                for hits in trial.search_many(texts, depth)]
 
-                figures[name][rule] = {
-                    half: check_questions(asked, ask, known, source=path.name,
-                                          corpus=len(known))
-                    for half, asked in halves.items()}
+                    figures[name][rule] = {
+                        half: check_questions(asked, ask, known, source=path.name,
+                                              corpus=len(known))
+                        for half, asked in halves.items()}
+            finally:
+                if finish is not None:
+                    finish(index)
             counts = {half: len(asked) for half, asked in halves.items()}
-        print(f"\n[{name}] 3c. nested-helper rule: {path.name} through a real index "
+        print(f"\n[{name}] {title}: {path.name} through a real index "
               f"({len(known)} units), questions training {counts['training']} | held-out "
               f"{counts['held-out']}: hit@10 and MRR@10")
         for rule, halves_of in figures[name].items():
@@ -608,11 +647,25 @@ def nested_questions(embedder: Embedder, cache: Path) -> dict[str, dict[str, dic
     return figures
 
 
+def nested_questions(embedder: Embedder, cache: Path) -> dict[str, dict[str, dict]]:
+    """Each question set asked through a real index under each nested-helper rule."""
+    return asked_through_indexes(embedder, cache, list(NESTED),
+                                 lambda index, rule: NESTED[rule], "3c. nested-helper rule")
+
+
 def choose_nested(tables: dict[str, Table], benches: Sequence[Bench],
                   questions: dict[str, dict[str, dict]]) -> str:
-    """The nested-helper rule with the best training figure: the mean, over corpora, of the
-    docstring MRR (every pool) beside the mean, over question sets, of MRR@10, each half of
-    the figure; kept only if neither held-out mean falls below the served rule's."""
+    """The nested-helper rule with the best training figure (:func:`choose_rule`)."""
+    return choose_rule(tables, benches, questions, list(NESTED), SERVED_NESTED, "no rule",
+                       "nested-helper rule")[0]
+
+
+def choose_rule(tables: dict[str, Table], benches: Sequence[Bench],
+                questions: dict[str, dict[str, dict]], rules: Sequence[str], served: str,
+                baseline: str, title: str) -> tuple[str, bool]:
+    """The rule with the best training figure: the mean, over corpora, of the docstring
+    MRR (every pool) beside the mean, over question sets, of MRR@10, each half of the
+    figure; and whether it holds (neither held-out mean falls below the baseline's)."""
     benches = [b for b in benches if b.chooses]
 
     def docstrings(name: str, side: int) -> float:
@@ -624,27 +677,26 @@ def choose_nested(tables: dict[str, Table], benches: Sequence[Bench],
     def asked(name: str, half: str) -> float:
         return float(np.mean([q[name][half].metrics["mrr@10"] for q in questions.values()]))
 
-    print("\nnested-helper rule: docstring MRR (mean over corpora of the mean over pools) and "
+    print(f"\n{title}: docstring MRR (mean over corpora of the mean over pools) and "
           "question MRR@10 (mean over question sets), training | held-out")
     scores = {}
-    for name in NESTED:
+    for name in rules:
         scores[name] = (docstrings(name, 0) + asked(name, "training")) / 2
         print(f"  {name:<30} docstrings {docstrings(name, 0):.4f}  questions "
               f"{asked(name, 'training'):.4f}  (training figure {scores[name]:.4f}) | "
               f"docstrings {docstrings(name, 1):.4f}  questions {asked(name, 'held-out'):.4f}")
-    best = max(NESTED, key=lambda name: scores[name])
-    if best != SERVED_NESTED and scores[best] - scores[SERVED_NESTED] <= TIE:
-        print(f"best on training: {best}, within {TIE} of the served {SERVED_NESTED}: a tie")
-        best = SERVED_NESTED
-    baseline = "no rule"
+    best = max(rules, key=lambda name: scores[name])
+    if best != served and scores[best] - scores[served] <= TIE:
+        print(f"best on training: {best}, within {TIE} of the served {served}: a tie")
+        best = served
     holds = (docstrings(best, 1) >= docstrings(baseline, 1)
              and asked(best, "held-out") >= asked(baseline, "held-out"))
     print(f"chosen on training: {best}; its held-out docstring and question figures at least "
           f"those of {baseline}: {holds}")
-    for name in dict.fromkeys((best, SERVED_NESTED)):
+    for name in dict.fromkeys((best, served)):
         if name != baseline:
             nested_intervals(tables, benches, questions, name, baseline)
-    return best
+    return best, holds
 
 
 def nested_intervals(tables: dict[str, Table], benches: Sequence[Bench],
@@ -674,6 +726,66 @@ def section_nested(benches: Sequence[Bench], served: dict[str, Served], embedder
     chosen = choose_nested(tables, benches, questions)
     print(f"the served nested-helper rule ({DEFAULT_FUSION.nested}, "
           f"{DEFAULT_FUSION.nested_amount:g}) is this choice: {chosen == SERVED_NESTED}")
+
+
+def path_table(bench: Bench, served: Served) -> Table:
+    """Keyword-only and served MRR with the words of each unit's path in each field."""
+    lexical: Table = {}
+    table: Table = {}
+    for name in PATHS:
+        train, test = (keyword_signals(bench, f"3d: {name}", which, served.docs)
+                       for which in ("train", "test"))
+        lexical[name] = (train, test)
+        table[name] = (fusion_ranks(replace(served.train, lexical=train), DEFAULT_FUSION),
+                       fusion_ranks(replace(served.test, lexical=test), DEFAULT_FUSION))
+    print_table(bench, "3d. path words: keyword side alone, BM25 MRR", lexical)
+    print_table(bench, "3d. path words: served MRR", table, recall=True)
+    return table
+
+
+def rewrite_path_words(index: Index, column: str | None) -> None:
+    """Rewrite an index's keyword entries with the words of each unit's path in ``column``
+    (None: in no field)."""
+    original = CodeUnit.lexical_fields
+
+    def fields(unit: CodeUnit, code: str | None = None,
+               path_in: str | None = column) -> dict[str, str]:
+        return original(unit, code, path_in)
+
+    CodeUnit.lexical_fields = fields  # type: ignore[method-assign]
+    try:
+        with index.lock.write(), index.store.transaction():
+            index.store.rewrite_lexical()
+    finally:
+        CodeUnit.lexical_fields = original  # type: ignore[method-assign]
+
+
+def path_questions(embedder: Embedder, cache: Path) -> dict[str, dict[str, dict]]:
+    """Each question set asked through a real index (the one stage 3c keeps) with its
+    keyword entries rewritten each stage-3d way, served ranking otherwise; the entries are
+    rewritten as served at the end."""
+    def prepare(index: Index, rule: str) -> Fusion:
+        rewrite_path_words(index, PATHS[rule])
+        return DEFAULT_FUSION
+
+    return asked_through_indexes(embedder, cache, list(PATHS), prepare, "3d. path words",
+                                 lambda index: rewrite_path_words(index, PATH_WORDS_IN))
+
+
+def section_paths(benches: Sequence[Bench], served: dict[str, Served], embedder: Embedder,
+                  cache: Path) -> None:
+    tables = {b.name: path_table(b, served[b.name]) for b in benches}
+    questions = path_questions(embedder, cache)
+    chosen, holds = choose_rule(tables, benches, questions, list(PATHS), SERVED_PATH,
+                                "no path words", "3d. path words")
+    print("every placement against no path words, held-out:")
+    for name in PATHS:
+        if name != "no path words":
+            nested_intervals(tables, benches, questions, name, "no path words")
+    kept = chosen if holds else "no path words"
+    print(f"to serve: {kept} (the training choice {'holds' if holds else 'falls'} on held-out)"
+          f"; the served placement (PATH_WORDS_IN = {PATH_WORDS_IN!r}) is this: "
+          f"{kept == SERVED_PATH}")
 
 
 def section_served(bench: Bench, served: Served) -> None:
@@ -870,8 +982,9 @@ def main() -> None:
     parser.add_argument("--train-sample", type=int, default=1500,
                         help="training pairs used to choose the keyword side and the fusion")
     parser.add_argument("--corpus", choices=("all", "stdlib", "sample", "packaged", "tune",
-                                             "nested"), default="all",
-                        help="the corpora (nested: every one, only stage 3c)")
+                                             "nested", "paths"), default="all",
+                        help="the corpora (nested: every one, only stage 3c; paths: every "
+                             "one, only stage 3d)")
     parser.add_argument("--tiers", action="store_true",
                         help="compare the embedding tiers on sample_repo and a small "
                              "standard-library copy instead")
@@ -912,20 +1025,20 @@ def main() -> None:
             return
         cache = VectorCache(cache_dir / "vectors.npz", embedder.model_id, prune=False)
         corpora: list[tuple[str, Path, bool]] = []
-        if args.corpus in ("all", "stdlib", "nested"):
+        if args.corpus in ("all", "stdlib", "nested", "paths"):
             corpora.append(("python standard library", copy_stdlib(Path(scratch) / "stdlib"),
                             True))
-        if args.corpus in ("all", "sample", "nested"):
+        if args.corpus in ("all", "sample", "nested", "paths"):
             corpora.append(("sample_repo", PROJECT / "sample_repo", True))
-        if args.corpus in ("all", "packaged", "nested"):
+        if args.corpus in ("all", "packaged", "nested", "paths"):
             corpora.extend(packaged_corpora())
         # a corpus too small to split is held out whole (it takes no part in the choices)
         benches = [Bench(name, units_of(repo), embedder, cache,
                          Split() if chooses else Split(1.0), args.train_sample, chooses)
                    for name, repo, chooses in corpora]
         choosing = [b for b in benches if b.chooses]
-        if args.corpus == "nested":
-            run_nested(choosing, embedder, cache_dir)
+        if args.corpus in ("nested", "paths"):
+            run_nested(choosing, embedder, cache_dir, paths=args.corpus == "paths")
         else:
             run(choosing, [b for b in benches if not b.chooses], (embedder, cache_dir))
     print(f"\n{time.perf_counter() - started:.0f} s")
@@ -943,15 +1056,19 @@ def packaged_corpora() -> list[tuple[str, Path, bool]]:
     return found
 
 
-def run_nested(benches: Sequence[Bench], embedder: Embedder, cache: Path) -> None:
-    """Stage 3c alone, on the shipped text and keyword side."""
+def run_nested(benches: Sequence[Bench], embedder: Embedder, cache: Path,
+               paths: bool = False) -> None:
+    """Stage 3c (or with ``paths`` stage 3d) alone, on the shipped text and keyword side."""
     for bench in benches:
         if len(bench.train) < CHOOSING:
             bench.chooses = False
     served = {b.name: served_signals(b, SHIPPED_TEXT, next(iter(KEYWORDS))) for b in benches}
     for bench in benches:
         bench.pools = list(served[bench.name].test.lexical)
-    section_nested(benches, served, embedder, cache)
+    if paths:
+        section_paths(benches, served, embedder, cache)
+    else:
+        section_nested(benches, served, embedder, cache)
 
 
 def run(benches: Sequence[Bench], checked: Sequence[Bench] = (),
@@ -988,6 +1105,7 @@ def run(benches: Sequence[Bench], checked: Sequence[Bench] = (),
     print(f"search's CANDIDATES ({CANDIDATES}) is this choice: {depth == served_depth}")
     if nested is not None:
         section_nested(benches, served, *nested)
+        section_paths(benches, served, *nested)
     for bench in benches:
         section_served(bench, served[bench.name])
         if len(bench.test) < SMALL:
