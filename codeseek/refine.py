@@ -259,14 +259,19 @@ MIN_PAIRS = 8
 """Refined candidates needed to fit the map from static to full cosines; with fewer, the
 dense side is the static tier's alone (as at 0% refined)."""
 
-TIER_MAPS = ("standardised", "linear", "matched")
+TIER_MAPS = ("standardised", "linear", "matched", "slots")
 """How :func:`merge_tiers` puts the two tiers' cosines on one scale, the served one
 first: ``standardised`` scores each tier in standard deviations over its own candidate
 list; ``linear`` fits full = a * static + b on the refined candidates (kept for the
 benchmark's comparison: on the standard-library subset it ranked worse at 25% and 50%
 refined, the fitted slope shrinking the unrefined units' scores toward the mean);
 ``matched`` maps static onto full by the mean and spread of the same pairs (no shrinking:
-the slope is the ratio of spreads, not times the correlation), also for comparison."""
+the slope is the ratio of spreads, not times the correlation), also for comparison;
+``slots`` keeps every candidate's static score but hands the refined candidates' static
+scores out again in the full tier's order (the best refined unit by the full tier takes
+the best static score among them), so refining can reorder the refined units but never
+gives them scores the static tier would not: at 0% the static ranking, at 100% the full
+tier's."""
 
 
 def _standardised(side: Sequence[tuple[int, float]]) -> list[tuple[int, float]]:
@@ -316,6 +321,8 @@ def merge_tiers(full: Sequence[tuple[int, float]], static: Sequence[tuple[int, f
     the list is the static tier's alone, as at 0% refined.
     ``matched``: the same pairs, the line that gives the static cosines the full ones'
     mean and spread.
+    ``slots``: the same scores; the refined candidates' static scores, best first, go
+    to them in the full tier's order; the others keep theirs.
     ``standardised``: each tier in standard deviations over its own list.
     """
     if how == "standardised":
@@ -330,6 +337,17 @@ def merge_tiers(full: Sequence[tuple[int, float]], static: Sequence[tuple[int, f
     full_scores.update(refined)
     static_scores = dict(static)
     static_scores.update(static_of or {})
+    if how == "slots":
+        both = [unit for unit in full_scores if unit in static_scores]
+        by_full = sorted(both, key=lambda unit: (-full_scores[unit], unit))
+        slots = sorted((static_scores[unit] for unit in both), reverse=True)
+        scores = {unit: score for unit, score in static_scores.items()
+                  if unit not in full_scores}
+        scores.update(zip(by_full, slots, strict=True))
+        # equal slots keep the full tier's order among the refined
+        place = {unit: (0, at) for at, unit in enumerate(by_full)}
+        return sorted(scores.items(),
+                      key=lambda pair: (-pair[1], place.get(pair[0], (1, pair[0]))))[:n]
     line = fit_static_to_full(static_scores, full_scores, matched=how == "matched")
     if line is None:
         return list(static[:n])

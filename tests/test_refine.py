@@ -427,6 +427,35 @@ def test_watch_refine_serves_throughout_and_ends_on_the_full_tier(sample_copy: P
             daemon.stop()
 
 
+def test_slots_reorder_only_the_refined_units_and_end_on_the_full_ranking() -> None:
+    """``slots``: the refined candidates take the static scores among them in the full
+    tier's order; unrefined ones keep theirs. References: numpy argsort of the static
+    scores (0% refined) and of the full scores (everything refined)."""
+    from codeseek.refine import merge_tiers
+
+    generator = np.random.default_rng(11)
+    static_scores = generator.uniform(-0.2, 0.8, 50)
+    full_scores = generator.uniform(-0.2, 0.8, 50)  # another order altogether
+    static = sorted(((i, float(s)) for i, s in enumerate(static_scores)),
+                    key=lambda pair: (-pair[1], pair[0]))
+    assert merge_tiers([], static, {}, 50, how="slots") == static  # 0%: static as it is
+    every = {i: float(full_scores[i]) for i in range(50)}
+    merged = merge_tiers(sorted(every.items(), key=lambda p: -p[1]), static, every, 50,
+                         how="slots")
+    assert [i for i, _ in merged] == [int(i) for i in np.argsort(-full_scores, kind="stable")]
+    assert sorted(s for _, s in merged) == sorted(float(s) for s in static_scores)
+    refined_ids = set(range(0, 50, 3))
+    part = {i: float(full_scores[i]) for i in refined_ids}
+    merged = dict(merge_tiers(sorted(part.items(), key=lambda p: -p[1]), static, part, 50,
+                              how="slots"))
+    for i in set(range(50)) - refined_ids:
+        assert merged[i] == float(static_scores[i])  # unrefined: untouched
+    order = sorted(refined_ids, key=lambda i: -merged[i])
+    assert order == sorted(refined_ids, key=lambda i: -full_scores[i])
+    assert sorted(merged[i] for i in refined_ids) == sorted(
+        float(static_scores[i]) for i in refined_ids)
+
+
 def test_merge_maps_static_onto_full_and_falls_back_to_static() -> None:
     """The two tiers' cosines put on one scale (refine.merge_tiers): when the full tier's
     cosines are an increasing line of the static ones, the merged list at any share
@@ -470,7 +499,7 @@ def test_merge_maps_static_onto_full_and_falls_back_to_static() -> None:
                        how="linear") == static[:40]
 
 
-@pytest.mark.parametrize("how", ["standardised", "linear", "matched"])
+@pytest.mark.parametrize("how", ["standardised", "linear", "matched", "slots"])
 def test_searches_mid_refinement_rank_as_designed(sample_copy: Path, how: str) -> None:
     """Through the served path on the fake tiers: at 0% refined the dense side is the
     static tier's ranking; with every unit refined (before the switch) it is the full
