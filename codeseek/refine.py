@@ -10,15 +10,16 @@ them has a target vector too (vectors are keyed by model id, so both coexist).
   vector per content hash, as a build embeds them. Each batch of vectors is one
   transaction, so a kill at any point loses at most the batch in flight, and the
   next run embeds only what still lacks a target vector.
-* Searching (:class:`RefiningSearcher`): BM25 as always; the dense side takes each
-  unit's score from the best tier it has: the target tier's cosine for refined
-  units, the static tier's for the rest, each standardised over its own candidates
-  (:func:`merge_tiers`; a per-query line fitted on the refined candidates is the
-  measured alternative, ``TIER_MAPS``). Every fusion rule is unchanged by an
-  increasing affine map of one side's scores, so at 0% refined the ranking is the
-  static tier's and at 100% the full tier's (exact search over the refined units,
-  where a full index searches its HNSW graph). Between the two the ranking is not
-  guaranteed to improve monotonically (README gives the measured figures).
+* Searching (:class:`RefiningSearcher`): BM25 as always; the dense side keeps the
+  static tier's scores, but the refined candidates' static scores are handed out
+  again in the full tier's order (``slots`` in :func:`merge_tiers`: the refined unit
+  the full tier ranks first takes the best static score among the refined ones), so
+  refining reorders the refined units by the better tier without giving them scores
+  the static tier would not. At 0% refined the ranking is the static tier's, with
+  every unit refined the full tier's (exact search over the refined units, where a
+  full index searches its HNSW graph); in between it is not guaranteed to improve
+  at every step, but it did at every step measured (README; the other mixes of
+  ``TIER_MAPS`` are measured beside it).
 * Batching (:class:`Refiner`): pending units are taken 2,048 at a time in order of
   usefulness, sorted by length, and committed 256 at a time.
 * Queries first (:class:`QueryTraffic`): the index counts the searches under way;
@@ -259,19 +260,18 @@ MIN_PAIRS = 8
 """Refined candidates needed to fit the map from static to full cosines; with fewer, the
 dense side is the static tier's alone (as at 0% refined)."""
 
-TIER_MAPS = ("standardised", "linear", "matched", "slots")
-"""How :func:`merge_tiers` puts the two tiers' cosines on one scale, the served one
-first: ``standardised`` scores each tier in standard deviations over its own candidate
-list; ``linear`` fits full = a * static + b on the refined candidates (kept for the
-benchmark's comparison: on the standard-library subset it ranked worse at 25% and 50%
-refined, the fitted slope shrinking the unrefined units' scores toward the mean);
-``matched`` maps static onto full by the mean and spread of the same pairs (no shrinking:
-the slope is the ratio of spreads, not times the correlation), also for comparison;
-``slots`` keeps every candidate's static score but hands the refined candidates' static
-scores out again in the full tier's order (the best refined unit by the full tier takes
-the best static score among them), so refining can reorder the refined units but never
-gives them scores the static tier would not: at 0% the static ranking, at 100% the full
-tier's."""
+TIER_MAPS = ("slots", "standardised", "linear", "matched")
+"""How :func:`merge_tiers` puts the two tiers' cosines on one scale, the served one first.
+
+``slots`` (served; chosen by ``scripts/bench_index.py --refine``: the only mix whose
+figures rose at every step measured) keeps every candidate's static score but hands the
+refined candidates' static scores out again in the full tier's order, so refining
+reorders the refined units without giving them scores the static tier would not; with
+no unrefined candidate left, the full tier's own cosines. ``standardised`` (served
+before) scores each tier in standard deviations over its own candidate list. ``linear``
+fits full = a * static + b on the refined candidates (the fitted slope shrinks the
+unrefined units' scores toward the mean). ``matched`` maps static onto full by the mean
+and spread of the same pairs (the slope is the ratio of spreads)."""
 
 
 def _standardised(side: Sequence[tuple[int, float]]) -> list[tuple[int, float]]:
@@ -338,6 +338,9 @@ def merge_tiers(full: Sequence[tuple[int, float]], static: Sequence[tuple[int, f
     static_scores = dict(static)
     static_scores.update(static_of or {})
     if how == "slots":
+        if full_scores and all(unit in full_scores for unit in static_scores):
+            # nothing unrefined to compare with: the full tier's own scores
+            return sorted(full_scores.items(), key=lambda pair: (-pair[1], pair[0]))[:n]
         both = [unit for unit in full_scores if unit in static_scores]
         by_full = sorted(both, key=lambda unit: (-full_scores[unit], unit))
         slots = sorted((static_scores[unit] for unit in both), reverse=True)
@@ -444,12 +447,16 @@ class RefiningSearcher(Searcher):
         if self.tier_map == "standardised":
             dense = merge_tiers(full, static, set(self._rows), n, how=self.tier_map)
         else:
-            # both scores of every refined candidate: the fit's pairs
+            # both scores of every refined candidate (the static ones of the full tier's
+            # candidates beyond the static list from the HNSW index's rows, in memory)
             refined = {unit: float(self._matrix[self._rows[unit]] @ full_vector)
                        for unit, _ in static if unit in self._rows}
             seen = {unit for unit, _ in static}
             missing = [unit for unit, _ in full if unit not in seen]
-            static_of = self._cosines(vector, missing, {}) if missing else {}
+            static_of = self.vectors.cosines(vector, missing) if missing else {}
+            if len(static_of) < len(missing):  # rows the HNSW index lacks: from the store
+                static_of.update(self._cosines(
+                    vector, [unit for unit in missing if unit not in static_of], {}))
             dense = merge_tiers(full, static, refined, n, static_of, how=self.tier_map)
         lexical = self.lexical(query, n, pool)
         return (fuse(dense, lexical, self.fusion, self.enclosing(dense, lexical))[:k],

@@ -429,8 +429,9 @@ def test_watch_refine_serves_throughout_and_ends_on_the_full_tier(sample_copy: P
 
 def test_slots_reorder_only_the_refined_units_and_end_on_the_full_ranking() -> None:
     """``slots``: the refined candidates take the static scores among them in the full
-    tier's order; unrefined ones keep theirs. References: numpy argsort of the static
-    scores (0% refined) and of the full scores (everything refined)."""
+    tier's order; unrefined ones keep theirs; with none unrefined, the full scores.
+    References: numpy argsort of the static scores (0% refined) and of the full scores
+    (everything refined)."""
     from codeseek.refine import merge_tiers
 
     generator = np.random.default_rng(11)
@@ -442,8 +443,9 @@ def test_slots_reorder_only_the_refined_units_and_end_on_the_full_ranking() -> N
     every = {i: float(full_scores[i]) for i in range(50)}
     merged = merge_tiers(sorted(every.items(), key=lambda p: -p[1]), static, every, 50,
                          how="slots")
+    # everything refined: nothing to compare with, the full tier's own list
     assert [i for i, _ in merged] == [int(i) for i in np.argsort(-full_scores, kind="stable")]
-    assert sorted(s for _, s in merged) == sorted(float(s) for s in static_scores)
+    assert [s for _, s in merged] == sorted((float(s) for s in full_scores), reverse=True)
     refined_ids = set(range(0, 50, 3))
     part = {i: float(full_scores[i]) for i in refined_ids}
     merged = dict(merge_tiers(sorted(part.items(), key=lambda p: -p[1]), static, part, 50,
