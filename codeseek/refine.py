@@ -18,8 +18,8 @@ them has a target vector too (vectors are keyed by model id, so both coexist).
   the static tier would not. At 0% refined the ranking is the static tier's, with
   every unit refined the full tier's (exact search over the refined units, where a
   full index searches its HNSW graph); in between it is not guaranteed to improve
-  at every step, but it did at every step measured (README; the other mixes of
-  ``TIER_MAPS`` are measured beside it).
+  at every step, but it nearly did at every step measured (README; the other mixes
+  of ``TIER_MAPS`` are measured beside it).
 * Batching (:class:`Refiner`): pending units are taken 2,048 at a time in order of
   usefulness, sorted by length, and committed 256 at a time.
 * Queries first (:class:`QueryTraffic`): the index counts the searches under way;
@@ -263,9 +263,10 @@ dense side is the static tier's alone (as at 0% refined)."""
 TIER_MAPS = ("slots", "standardised", "linear", "matched")
 """How :func:`merge_tiers` puts the two tiers' cosines on one scale, the served one first.
 
-``slots`` (served; chosen by ``scripts/bench_index.py --refine``: the only mix whose
-figures rose at every step measured) keeps every candidate's static score but hands the
-refined candidates' static scores out again in the full tier's order, so refining
+``slots`` (served; chosen by ``scripts/bench_index.py --refine``: the mix whose figures
+rose at every step measured, but for one question's MRR at 25%) keeps every candidate's
+static score but hands the refined candidates' static scores out again in the full
+tier's order, so refining
 reorders the refined units without giving them scores the static tier would not; with
 no unrefined candidate left, the full tier's own cosines. ``standardised`` (served
 before) scores each tier in standard deviations over its own candidate list. ``linear``
