@@ -266,13 +266,13 @@ TIER_MAPS = ("slots", "standardised", "linear", "matched")
 ``slots`` (served; chosen by ``scripts/bench_index.py --refine``: the mix whose figures
 rose at every step measured, but for one question's MRR at 25%) keeps every candidate's
 static score but hands the refined candidates' static scores out again in the full
-tier's order, so refining
-reorders the refined units without giving them scores the static tier would not; with
-no unrefined candidate left, the full tier's own cosines. ``standardised`` (served
-before) scores each tier in standard deviations over its own candidate list. ``linear``
-fits full = a * static + b on the refined candidates (the fitted slope shrinks the
-unrefined units' scores toward the mean). ``matched`` maps static onto full by the mean
-and spread of the same pairs (the slope is the ratio of spreads)."""
+tier's order, so refining reorders the refined units without giving them scores the
+static tier would not; with no unrefined candidate left, the full tier's own cosines.
+``standardised`` (served before) scores each tier in standard deviations over its own
+candidate list. ``linear`` fits full = a * static + b on the refined candidates (the
+fitted slope shrinks the unrefined units' scores toward the mean). ``matched`` maps
+static onto full by the mean and spread of the same pairs (the slope is the ratio of
+spreads)."""
 
 
 def _standardised(side: Sequence[tuple[int, float]]) -> list[tuple[int, float]]:
