@@ -547,6 +547,19 @@ def searchable_first(repo: Path, scratch: Path, queries: int) -> None:
                                  [q for q, _ in picked], 60.0, give_way)
 
 
+def refine_daemon_only(repo: Path, scratch: Path, queries: int) -> None:
+    """--refine-daemon: the daemon during refinement, not giving way then giving way, asked
+    the docstring summaries of ``repo`` (read from a fake-embedder index of it)."""
+    with open_index(repo, index_dir=scratch / "docs", create=True, backend="fake") as index:
+        index.update()
+        documented = [s.unit.doc_summary for s in index.store.iter_units()
+                      if s.unit.doc_summary]
+    picked = documented[:: max(1, len(documented) // queries)][:queries]
+    for give_way in (False, True):
+        daemon_during_refinement(repo, scratch / f"index-daemon-{give_way}", picked, 60.0,
+                                 give_way)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -571,29 +584,10 @@ def main() -> None:
                         help="only `codeseek watch --refine` with and without the refiner "
                              "giving way to searches (default repository: as for --tiers)")
     args = parser.parse_args()
-    if args.refine_daemon:
-        with tempfile.TemporaryDirectory() as scratch:
-            sys.path.insert(0, str(PROJECT / "tests"))
-            from corpora import stdlib_question_subset
-
-            repo = (Path(args.path).resolve() if args.path
-                    else stdlib_question_subset(Path(scratch) / "stdlib-subset"))
-            print(f"command: .venv/bin/python scripts/bench_index.py {' '.join(sys.argv[1:])}")
-            print(f"repository: {repo}")
-            with open_index(repo, index_dir=Path(scratch) / "docs", create=True,
-                            backend="fake") as index:
-                index.update()
-                documented = [s.unit.doc_summary for s in index.store.iter_units()
-                              if s.unit.doc_summary]
-            picked = documented[:: max(1, len(documented) // args.queries)][:args.queries]
-            for give_way in (False, True):
-                daemon_during_refinement(repo, Path(scratch) / f"index-daemon-{give_way}",
-                                         picked, 60.0, give_way)
-        return
     if args.corpora:
         corpus_throughput(args.repeat)
         return
-    if args.tiers or args.refine:
+    if args.tiers or args.refine or args.refine_daemon:
         with tempfile.TemporaryDirectory() as scratch:
             sys.path.insert(0, str(PROJECT / "tests"))
             from corpora import stdlib_question_subset
@@ -606,6 +600,8 @@ def main() -> None:
                 compare_tiers(repo, Path(scratch), args.tier_units)
             if args.refine:
                 searchable_first(repo, Path(scratch), args.queries)
+            elif args.refine_daemon:  # --refine ends with this part already
+                refine_daemon_only(repo, Path(scratch), args.queries)
         return
     if args.ray:
         with tempfile.TemporaryDirectory() as scratch:
