@@ -20,6 +20,7 @@ import json
 import os
 import sys
 import tempfile
+import threading
 from collections.abc import Callable, Sequence
 from functools import lru_cache
 from pathlib import Path
@@ -305,6 +306,14 @@ def export_onnx(folder: Path, target: Path) -> None:
         raise ModelUnavailable(f"exporting {folder} to ONNX failed: {exc}") from exc
 
 
+def export_once(folder: Path, graph: Path) -> None:
+    """Export ``folder``'s model to ``graph`` unless it is there, saying so: the one slow
+    first step (stderr, so JSON output stays clean)."""
+    if not graph.exists():
+        print(EXPORT_NOTICE, file=sys.stderr, flush=True)
+        export_onnx(folder, graph)
+
+
 class OnnxEmbedder:
     """The default backend: the exported graph on onnxruntime, no torch at query time."""
 
@@ -315,23 +324,28 @@ class OnnxEmbedder:
         self.model_id = f"{_model_name(folder)}@{fingerprint}"
         self.batch_size = batch_size
         # another graph of the same model (codeseek.tiers: the int8 one) is the caller's
-        # to make; the exported one is made here on first need
-        exported = graph is None
-        graph = graph or onnx_path(cache_dir, fingerprint)
-        if exported and not graph.exists():
-            # the one slow first step: say what it is (stderr, so JSON output stays clean)
-            print(EXPORT_NOTICE, file=sys.stderr, flush=True)
-            export_onnx(folder, graph)
-        self._graph = graph
+        # to make; the exported one is made on the first encode (:meth:`_load`), so an
+        # index built searchable first is searchable before it (codeseek/refine.py)
+        self._exports = graph is None
+        self._graph = graph or onnx_path(cache_dir, fingerprint)
         self._tokenizer: Any = None
         self._session: Any = None
         self._inputs: set[str] = set()
+        self._loading = threading.Lock()  # a search and a refinement may encode first at once
 
     def _load(self) -> None:
-        """Open the tokenizer and the ONNX session, on the first encode: an update with
-        nothing to embed (an unchanged repository) never pays for them."""
+        """Export the graph if it is not cached yet, then open the tokenizer and the ONNX
+        session, on the first encode: an update with nothing to embed (an unchanged
+        repository) never pays for them."""
         if self._session is not None:
             return
+        with self._loading:
+            if self._session is None:
+                self._open()
+
+    def _open(self) -> None:
+        if self._exports:
+            export_once(self.config.folder, self._graph)
         try:
             import onnxruntime
             from tokenizers import Tokenizer

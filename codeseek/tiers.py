@@ -44,6 +44,7 @@ from codeseek.embed import (
     _model_name,
     _normalise,
     _offline,
+    export_once,
     load_embedder,
     model_fingerprint,
     onnx_path,
@@ -142,8 +143,7 @@ class Int8Embedder(OnnxEmbedder):
         graph = int8_path(cache_dir, fingerprint)
         if not graph.exists():
             full = onnx_path(cache_dir, fingerprint)
-            if not full.exists():
-                OnnxEmbedder(folder, fingerprint, cache_dir, batch_size)  # exports it
+            export_once(folder, full)
             print(INT8_NOTICE, file=sys.stderr, flush=True)
             quantise_int8(full, graph)
         super().__init__(folder, fingerprint, cache_dir, batch_size, graph=graph)

@@ -117,13 +117,15 @@ def test_the_first_export_says_what_it_does(tmp_path: Path,
     from codeseek.embed import EXPORT_NOTICE
 
     settings = load_settings(SAMPLE_REPO).with_changes(cache_dir=tmp_path / "cache")
-    load_embedder(settings)
+    embedder = load_embedder(settings)
+    assert capfd.readouterr() == ("", "")  # exported on the first encode, not before
+    embedder.encode(["drain the upload queue"])
     out, err = capfd.readouterr()
     assert out == ""
     assert err == EXPORT_NOTICE + "\n"
     assert EXPORT_NOTICE == ("codeseek: preparing the embedding model for this machine "
                              "(once, about 10 s)")
-    load_embedder(settings)  # exported: nothing more to say
+    load_embedder(settings).encode(["drain the upload queue"])  # exported: nothing to say
     assert capfd.readouterr() == ("", "")
 
 
