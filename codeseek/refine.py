@@ -1,7 +1,9 @@
 """Searchable first, refined behind: an index built with the fast static tier, then
 embedded again with the full tier in committed batches, most useful files first.
 
-Opt-in (``codeseek index --refine``, ``codeseek watch --refine``). While a refinement
+``codeseek index`` and ``codeseek watch`` refine a new index with more source than
+``refine_above_bytes`` (4 MB) to parse by default (``Index.choose_refinement``);
+``--refine``/``--no-refine`` and ``refine`` in codeseek.toml decide otherwise. While a refinement
 runs, the manifest names its target model (``refine_model_id``) and the index's own
 model is the static tier's: every unit has a static vector, and a growing share of
 them has a target vector too (vectors are keyed by model id, so both coexist).
@@ -377,6 +379,9 @@ class RefiningSearcher(Searcher):
         self._count = 0  # rows of _labels and _matrix in use (the rest is spare room)
         self._labels = np.zeros(0, dtype=np.int64)
         self._matrix = np.zeros((0, full.dim), dtype=np.float32)
+        # the same units' static vectors, row for row (NaN: none stored), so a refined
+        # candidate's static cosine is one product, not a read of the HNSW index's rows
+        self._static = np.zeros((0, self.vectors.dim), dtype=np.float32)
         self._rows: dict[int, int] = {}
         self._queries: dict[str, np.ndarray] = {}
 
@@ -392,6 +397,7 @@ class RefiningSearcher(Searcher):
         if generation != self._generation:
             labels, matrix = self.store.unit_vectors(self.full.model_id, self.full.dim)
             self._labels, self._matrix, self._count = labels, matrix, len(labels)
+            self._static = self._static_rows(labels)
             self._rows = {int(label): i for i, label in enumerate(labels)}
         else:
             fresh = sorted(set(vector_unit_ids(self.store, self.full.model_id)) - set(self._rows))
@@ -400,6 +406,16 @@ class RefiningSearcher(Searcher):
         self._generation = generation
         self._step = step
 
+    def _static_rows(self, labels: np.ndarray) -> np.ndarray:
+        """The stored static vectors of ``labels``, in their order (NaN rows: none)."""
+        rows = np.full((len(labels), self.vectors.dim), np.nan, dtype=np.float32)
+        held, matrix = self.store.unit_vectors(self.model_id, self.vectors.dim,
+                                               [int(label) for label in labels])
+        where = {int(label): i for i, label in enumerate(labels)}
+        for label, vector in zip(held, matrix, strict=True):
+            rows[where[int(label)]] = vector
+        return rows
+
     def _append(self, labels: np.ndarray, matrix: np.ndarray) -> None:
         """Add rows, doubling the spare room when it runs out (no copy per batch)."""
         needed = self._count + len(labels)
@@ -407,11 +423,14 @@ class RefiningSearcher(Searcher):
             room = max(needed, 2 * len(self._labels), 1024)
             grown_labels = np.zeros(room, dtype=np.int64)
             grown = np.zeros((room, self.full.dim), dtype=np.float32)
+            grown_static = np.full((room, self.vectors.dim), np.nan, dtype=np.float32)
             grown_labels[: self._count] = self._labels[: self._count]
             grown[: self._count] = self._matrix[: self._count]
-            self._labels, self._matrix = grown_labels, grown
+            grown_static[: self._count] = self._static[: self._count]
+            self._labels, self._matrix, self._static = grown_labels, grown, grown_static
         self._labels[self._count : needed] = labels
         self._matrix[self._count : needed] = matrix
+        self._static[self._count : needed] = self._static_rows(labels)
         for offset, label in enumerate(labels):
             self._rows[int(label)] = self._count + offset
         self._count = needed
@@ -449,19 +468,27 @@ class RefiningSearcher(Searcher):
             dense = merge_tiers(full, static, set(self._rows), n, how=self.tier_map)
         else:
             # both scores of every refined candidate (the static ones of the full tier's
-            # candidates beyond the static list from the HNSW index's rows, in memory)
+            # candidates beyond the static list from their static rows, in memory)
             refined = {unit: float(self._matrix[self._rows[unit]] @ full_vector)
                        for unit, _ in static if unit in self._rows}
             seen = {unit for unit, _ in static}
             missing = [unit for unit, _ in full if unit not in seen]
-            static_of = self.vectors.cosines(vector, missing) if missing else {}
-            if len(static_of) < len(missing):  # rows the HNSW index lacks: from the store
-                static_of.update(self._cosines(
-                    vector, [unit for unit in missing if unit not in static_of], {}))
+            static_of = self._static_cosines(vector, missing)
             dense = merge_tiers(full, static, refined, n, static_of, how=self.tier_map)
         lexical = self.lexical(query, n, pool)
         return (fuse(dense, lexical, self.fusion, self.enclosing(dense, lexical))[:k],
                 dict(static))
+
+    def _static_cosines(self, vector: np.ndarray, units: list[int]) -> dict[int, float]:
+        """The static cosine to ``vector`` of each refined unit of ``units``."""
+        if not units:
+            return {}
+        scores = self._static[[self._rows[unit] for unit in units]] @ vector.astype(np.float32)
+        found = {unit: float(score) for unit, score in zip(units, scores, strict=True)
+                 if not np.isnan(score)}
+        if len(found) < len(units):  # no static vector stored: as a keyword-only hit
+            found.update(self._cosines(vector, [u for u in units if u not in found], {}))
+        return found
 
     def _answer(self, query: str, vector: np.ndarray, k: int,
                 pool: set[int] | None) -> list[SearchHit]:

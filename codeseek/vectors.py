@@ -142,18 +142,6 @@ class VectorIndex:
         return [(int(lab), float(1.0 - dist)) for lab, dist in zip(labels[0], distances[0],
                                                                     strict=True)]
 
-    def cosines(self, query: np.ndarray, labels: Sequence[int]) -> dict[int, float]:
-        """The cosine to ``query`` of each label held (the stored rows themselves, read
-        from memory; a label not held is left out)."""
-        with self._lock:
-            held = [int(label) for label in labels if int(label) in self._labels]
-            if not held:
-                return {}
-            rows = np.asarray(self._index.get_items(held, return_type="numpy"),
-                              dtype=np.float32)
-        scores = rows @ query.astype(np.float32)
-        return {label: float(score) for label, score in zip(held, scores, strict=True)}
-
     def save(self, path: Path) -> None:
         """Write the index atomically (:func:`codeseek.safefs.replacing`)."""
         with self._lock:

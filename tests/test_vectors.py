@@ -85,20 +85,3 @@ def test_sync_labels_equal_units_with_vectors(sample_copy: Path) -> None:
     index = open_index(sample_copy, create=True, embedder=embedder)
     index.update()
     assert index.searcher().vectors.labels == vector_unit_ids(index.store, embedder.model_id)
-
-
-def test_cosines_of_held_rows_equal_numpy_dot_products() -> None:
-    """VectorIndex.cosines reads the rows hnswlib holds; reference: numpy's dot product of
-    the unit-length rows added, and a label not held is left out."""
-    generator = np.random.default_rng(5)
-    rows = generator.normal(size=(40, 16)).astype(np.float32)
-    rows /= np.linalg.norm(rows, axis=1, keepdims=True)
-    index = VectorIndex.build(16, np.arange(100, 140), rows)
-    query = rows[3] + 0.5 * rows[7]
-    query /= np.linalg.norm(query)
-    got = index.cosines(query, [103, 107, 139, 999])
-    assert sorted(got) == [103, 107, 139]
-    np.testing.assert_allclose([got[103], got[107], got[139]],
-                               rows[[3, 7, 39]] @ query, atol=1e-6)
-    index.remove([107])
-    assert 107 not in index.cosines(query, [107])
