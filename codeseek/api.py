@@ -62,7 +62,7 @@ from codeseek.refine import (
     begin_refinement,
     refinement_of,
 )
-from codeseek.scan import ScanResult, SourceFile
+from codeseek.scan import ScanResult, SourceFile, scan_repository
 from codeseek.search import DEFAULT_FUSION, Fusion, Searcher, SearchHit, neighbour_units
 from codeseek.service import IndexStatus, repository_mismatch
 from codeseek.store import DB_NAME, Store, unlink_all
@@ -142,6 +142,31 @@ class Index:
         """Whether a refinement is under way (the first tier searchable, the target tier
         filled in behind, :mod:`codeseek.refine`)."""
         return REFINE_MODEL_KEY in self.store.manifest()
+
+    def choose_refinement(self, asked: bool | None = None) -> tuple[bool, str | None]:
+        """Whether an update should build searchable first (:meth:`update`'s ``refine``)
+        and, when the size of the repository decided it, a notice saying so.
+
+        ``asked`` is the caller's word (``--refine``/``--no-refine``; None: not said),
+        else ``codeseek.toml``'s ``refine``; else a new index (no unit yet) whose target
+        tier is slower than the static one is refined when the files it would parse add
+        up to more than ``refine_above_bytes``. A refinement under way is never begun
+        again; :meth:`refine` resumes it whatever this says."""
+        if asked is not None:
+            return asked, None
+        if self.settings.refine is not None:
+            return self.settings.refine, None
+        manifest = self.store.manifest()
+        target = self.settings.tier or tier_of(manifest.get("model_id")) or DEFAULT_TIER
+        if (target == FIRST_TIER or REFINE_MODEL_KEY in manifest
+                or self.store.counts()["units"] > 0):
+            return False, None
+        size = sum(source.size for source in scan_repository(self.settings).files)
+        if size <= self.settings.refine_above_bytes:
+            return False, None
+        return True, (f"codeseek: {size / 1e6:.1f} MB of source to index: searchable first "
+                      f"with the {FIRST_TIER} tier, the {target} tier filled in behind "
+                      "(--no-refine builds with it at once)")
 
     # -- writing ---------------------------------------------------------------------
 

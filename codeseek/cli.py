@@ -22,7 +22,7 @@ from typing import TYPE_CHECKING, Any, TextIO
 
 from codeseek import __version__
 from codeseek.confidence import weak_note
-from codeseek.config import DEFAULT_TIER, TIERS
+from codeseek.config import DEFAULT_REFINE_ABOVE_BYTES, DEFAULT_TIER, TIERS
 from codeseek.display import json_path, printable, printable_block
 from codeseek.errors import (
     CodeseekError,
@@ -114,9 +114,12 @@ def _index_parser(commands: Any) -> None:
 
 
 def _refine_option(parser: argparse.ArgumentParser, then: str) -> None:
-    parser.add_argument("--refine", action="store_true",
+    parser.add_argument("--refine", action=argparse.BooleanOptionalAction, default=None,
                         help="searchable first: build with the fast static tier, "
-                             f"{then}; an interrupted refinement resumes on the next run")
+                             f"{then}; an interrupted refinement resumes on the next run "
+                             "(default: a new index with over "
+                             f"{DEFAULT_REFINE_ABOVE_BYTES // 1000**2} MB of source to parse; "
+                             "--no-refine: build with the full tier at once)")
 
 
 def _search_parser(commands: Any) -> None:
@@ -425,15 +428,25 @@ def _index_one(path: str, args: argparse.Namespace, out: TextIO, err: TextIO) ->
     """Index one repository in this process."""
     with _open(path, args, create=True) as index:
         _print_notes(index, err)
+        refine = _choose_refinement(index, args, err)
         if args.quiet or not err.isatty():
             summary, refined = _update_and_refine(
-                index, _LineProgress(err) if not args.quiet else None, args.refine, err)
+                index, _LineProgress(err) if not args.quiet else None, refine, err)
         else:
-            summary, refined = _update_with_bar(index, err, args.refine)
+            summary, refined = _update_with_bar(index, err, refine)
         tier = index.tier
     _print_summary(summary, out, err, path if len(args.paths) > 1 else None)
     if refined is not None:
         print(f"refined {refined} units with the {tier} tier", file=out)
+
+
+def _choose_refinement(index: Index, args: argparse.Namespace, err: TextIO) -> bool:
+    """``--refine``/``--no-refine``, codeseek.toml's ``refine``, else the repository's
+    size (:meth:`~codeseek.api.Index.choose_refinement`), saying so when the size chose."""
+    refine, notice = index.choose_refinement(args.refine)
+    if notice is not None and not getattr(args, "quiet", False):
+        print(notice, file=err, flush=True)
+    return refine
 
 
 def _print_summary(summary: UpdateSummary, out: TextIO, err: TextIO,
@@ -918,7 +931,7 @@ def cmd_watch(args: argparse.Namespace, out: TextIO, err: TextIO) -> int:
 
     with _open(args.path, args, create=True) as index:
         _print_notes(index, err)
-        run_foreground(index, log, poll=args.poll, refine=args.refine)
+        run_foreground(index, log, poll=args.poll, refine=_choose_refinement(index, args, err))
     return EXIT_OK
 
 

@@ -30,6 +30,11 @@ DEFAULT_TIER = "full"
 DEFAULT_MAX_FILE_BYTES = 1024 * 1024
 DEFAULT_BATCH_SIZE = 32
 DEFAULT_TOP_K = 10
+# a new index with more source than this to parse is built searchable first: the static
+# tier at once, the full tier filled in behind (codeseek/refine.py). 4 MB is about 6,400
+# units (the standard-library copy holds 1,580 units per MB), a full build of over a
+# minute on an idle 2-core machine and some three minutes on a busy one
+DEFAULT_REFINE_ABOVE_BYTES = 4 * 1000 * 1000
 # codeseek.toml is read only if it is a regular file itself (not a link, not a FIFO)
 # of at most this many bytes; settings never need more
 MAX_CONFIG_FILE_BYTES = 1024 * 1024
@@ -61,6 +66,9 @@ class Settings:
         cache_dir: where derived model files (the ONNX export) are cached.
         tier: the embedding tier asked for (``full``, ``int8`` or ``static``), or None:
             an existing index's own tier, DEFAULT_TIER for a new one.
+        refine: build a new index searchable first (codeseek/refine.py): True, False,
+            or None: when it has more than ``refine_above_bytes`` of source to parse.
+        refine_above_bytes: the size from which a new index is built searchable first.
     """
 
     repo: Path
@@ -73,6 +81,8 @@ class Settings:
     batch_size: int = DEFAULT_BATCH_SIZE
     cache_dir: Path = field(default_factory=lambda: default_cache_dir(os.environ))
     tier: str | None = None
+    refine: bool | None = None
+    refine_above_bytes: int = DEFAULT_REFINE_ABOVE_BYTES
 
     def with_changes(self, **changes: Any) -> Settings:
         """A copy with some fields replaced."""
@@ -149,6 +159,10 @@ def load_settings(
         raise ConfigError(f"{name}: unknown tier {chosen_tier!r}; choose one of: "
                           f"{', '.join(TIERS)}")
     max_bytes = pick(None, "CODESEEK_MAX_FILE_BYTES", "max_file_bytes")
+    refine = file_values.get("refine")
+    if refine is not None and not isinstance(refine, bool):
+        raise ConfigError(f"{root / CONFIG_FILE_NAME}: refine must be true or false (leave "
+                          f"it out to decide by the repository's size), not {refine!r}")
     exclude = file_values.get("exclude", [])
     if not isinstance(exclude, list) or not all(isinstance(p, str) for p in exclude):
         raise ConfigError(f"{root / CONFIG_FILE_NAME}: 'exclude' must be a list of patterns")
@@ -168,6 +182,10 @@ def load_settings(
         ),
         cache_dir=default_cache_dir(env),
         tier=chosen_tier,
+        refine=refine,
+        refine_above_bytes=_positive_int(
+            file_values.get("refine_above_bytes"),
+            f"{root / CONFIG_FILE_NAME}: refine_above_bytes", DEFAULT_REFINE_ABOVE_BYTES),
     )
 
 

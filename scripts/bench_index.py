@@ -47,6 +47,13 @@ median without a daemon, mid-refinement; twice, with the refiner not giving way 
 searches and then giving way (the served behaviour, codeseek.refine.QueryTraffic).
 --refine-daemon runs only that last part.
 
+With --watch-first (default repository: the whole standard-library copy) it starts
+`codeseek watch` with no option on a new index, as a user would (its size decides whether
+it is built searchable first), and prints the seconds to searchable and the warm p50 right
+after: once with this machine's model cache, once with an empty one (the ONNX export and
+the static tier's distillation then happen before it is searchable); then `codeseek watch
+--no-refine` (a full build: minutes) and the same queries on the full index, side by side.
+
 With --corpora it prints parse throughput only, per language, on the real
 registry code the language tests use (tests/corpora.py; fetched and cached on
 first use) and on this machine's standard library for Python: the raw
@@ -57,7 +64,9 @@ signatures) in MB/s and units/s, best of --repeat passes. No embedding.
 from __future__ import annotations
 
 import argparse
+import contextlib
 import functools
+import os
 import shutil
 import statistics
 import subprocess
@@ -78,6 +87,7 @@ import codeseek.refine as refine_module  # noqa: E402
 import codeseek.search as search_module  # noqa: E402
 from codeseek import open_index  # noqa: E402
 from codeseek.api import Index  # noqa: E402
+from codeseek.client import DaemonClient, DaemonUnavailable  # noqa: E402
 from codeseek.config import load_settings  # noqa: E402
 from codeseek.embed import Embedder, load_embedder  # noqa: E402
 from codeseek.languages import LanguageSpec, spec_by_name  # noqa: E402
@@ -434,14 +444,31 @@ NO_GIVING_WAY = ("import sys, codeseek.refine as r; r.MAX_YIELD_SECONDS = 0.0; "
                  "from codeseek.cli import main; sys.exit(main(sys.argv[1:]))")
 
 
+def wait_until_watching(client: DaemonClient, process: subprocess.Popen[bytes]) -> None:
+    """Until the daemon of ``process`` says it is watching (its first build done)."""
+    while True:
+        if process.poll() is not None:
+            raise SystemExit(f"the daemon exited with status {process.returncode}")
+        with contextlib.suppress(DaemonUnavailable, KeyError):
+            if client.status()["daemon"]["state"] == "watching":
+                return
+        time.sleep(0.2)
+
+
+def stop_daemon(client: DaemonClient, process: subprocess.Popen[bytes]) -> None:
+    try:
+        client.shutdown()
+    except DaemonUnavailable:
+        process.terminate()
+    process.wait(timeout=120)
+
+
 def daemon_during_refinement(repo: Path, index_dir: Path, queries: list[str],
                              seconds: float, give_way: bool = True) -> None:
     """`codeseek watch --refine` on a fresh index: time to searchable from its start, warm
     query p50 through the daemon while it refines, then (daemon stopped mid-refinement)
     the cold `codeseek search` median without a daemon. ``give_way=False``: the refiner
     does not wait for searches (codeseek.refine.QueryTraffic), for comparison."""
-    from codeseek.client import DaemonClient, DaemonUnavailable
-
     codeseek = str(PROJECT / ".venv" / "bin" / "codeseek")
     launcher = [codeseek] if give_way else [sys.executable, "-c", NO_GIVING_WAY]
     command = [*launcher, "watch", str(repo), "--index-dir", str(index_dir), "--refine"]
@@ -452,15 +479,7 @@ def daemon_during_refinement(repo: Path, index_dir: Path, queries: list[str],
     walls: list[float] = []
     refined: list[int] = []
     try:
-        while True:
-            if process.poll() is not None:
-                raise SystemExit(f"the daemon exited with status {process.returncode}")
-            try:
-                if client.status()["daemon"]["state"] == "watching":
-                    break
-            except (DaemonUnavailable, KeyError):
-                pass
-            time.sleep(0.2)
+        wait_until_watching(client, process)
         print(f"`codeseek watch --refine`: searchable {time.perf_counter() - started:.1f} s "
               "after its start", flush=True)
         client.search(queries[0], 10)  # the daemon's first query loads the full tier's encoder
@@ -476,11 +495,7 @@ def daemon_during_refinement(repo: Path, index_dir: Path, queries: list[str],
             time.sleep(0.1)
         total = client.status()["index"]["units"]
     finally:
-        try:
-            client.shutdown()
-        except DaemonUnavailable:
-            process.terminate()
-        process.wait(timeout=120)
+        stop_daemon(client, process)
     print(f"warm query through the daemon during refinement ({min(refined, default=0)} to "
           f"{max(refined, default=0)} of {total} units refined): {len(walls)} queries, "
           f"p50 {percentile(walls, 0.5):.1f} ms, p95 {percentile(walls, 0.95):.1f} ms")
@@ -560,6 +575,56 @@ def refine_daemon_only(repo: Path, scratch: Path, queries: int) -> None:
                                  give_way)
 
 
+def watch_first(repo: Path, scratch: Path, queries: int) -> None:
+    """`codeseek watch` on a new index with no option (the size decides whether it is built
+    searchable first): seconds from its start to searchable, whether it refines, warm
+    query p50/p95 through the daemon right after; once with this machine's model cache,
+    once with an empty one (the ONNX export and the static tier's distillation included),
+    then with --no-refine (a full build, minutes) for the same queries on the full tier."""
+    with open_index(repo, index_dir=scratch / "docs", create=True, backend="fake") as index:
+        index.update()
+        documented = [s.unit.doc_summary for s in index.store.iter_units()
+                      if s.unit.doc_summary]
+        units = index.store.counts()["units"]
+    picked = documented[:: max(1, len(documented) // queries)][:queries]
+    size = sum(source.size for source in scan_repository(load_settings(repo)).files)
+    print(f"{units} units, {size / 1e6:.1f} MB of source", flush=True)
+    codeseek = str(PROJECT / ".venv" / "bin" / "codeseek")
+    runs = [("this machine's", ()), ("an empty", ()), ("this machine's", ("--no-refine",))]
+    for cache, options in runs:
+        index_dir = scratch / f"index-watch-{len(cache)}-{len(options)}"
+        env = dict(os.environ)
+        if cache == "an empty":
+            env["CODESEEK_CACHE_DIR"] = str(scratch / "empty-cache")
+        started = time.perf_counter()
+        process = subprocess.Popen([codeseek, "watch", str(repo), "--index-dir", str(index_dir),
+                                    *options],
+                                   stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL, env=env)
+        client = DaemonClient(index_dir)
+        walls: list[float] = []
+        try:
+            wait_until_watching(client, process)
+            searchable = time.perf_counter() - started
+            state = client.status()["index"]
+            client.search(picked[0], 10)  # the first query loads the full tier's encoder
+            refined: list[int] = []
+            for query in picked[:100]:
+                walls.append(timed(functools.partial(client.search, query, 10))[1] * 1000)
+                now = client.status()["index"].get("refinement")
+                refined.append(int(now["refined"]) if now else 0)
+                time.sleep(0.1)
+        finally:
+            stop_daemon(client, process)
+        refining = state.get("refinement")
+        print(f"`codeseek watch {' '.join(options)}` with {cache} model cache: searchable "
+              f"{searchable:.1f} s after its start; tier {state['tier']}, "
+              + (f"refining toward {refining['tier']} ({min(refined)} to {max(refined)} "
+                 "units refined while asked)" if refining else "not refining")
+              + f"; warm query through the daemon right after: {len(walls)} queries, p50 "
+              f"{percentile(walls, 0.5):.1f} ms, p95 {percentile(walls, 0.95):.1f} ms",
+              flush=True)
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__,
                                      formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -583,6 +648,10 @@ def main() -> None:
     parser.add_argument("--refine-daemon", action="store_true",
                         help="only `codeseek watch --refine` with and without the refiner "
                              "giving way to searches (default repository: as for --tiers)")
+    parser.add_argument("--watch-first", action="store_true",
+                        help="only `codeseek watch` on a new index with no option: seconds "
+                             "to searchable, with this machine's model cache and an empty "
+                             "one (default repository: a stdlib copy)")
     args = parser.parse_args()
     if args.corpora:
         corpus_throughput(args.repeat)
@@ -602,6 +671,14 @@ def main() -> None:
                 searchable_first(repo, Path(scratch), args.queries)
             elif args.refine_daemon:  # --refine ends with this part already
                 refine_daemon_only(repo, Path(scratch), args.queries)
+        return
+    if args.watch_first:
+        with tempfile.TemporaryDirectory() as scratch:
+            repo = Path(args.path).resolve() if args.path else copy_stdlib(
+                Path(scratch) / "stdlib")
+            print(f"command: .venv/bin/python scripts/bench_index.py {' '.join(sys.argv[1:])}")
+            print(f"repository: {repo}")
+            watch_first(repo, Path(scratch), args.queries)
         return
     if args.ray:
         with tempfile.TemporaryDirectory() as scratch:

@@ -375,8 +375,96 @@ def test_cli_index_refine_and_watch_option(sample_copy: Path) -> None:
     assert code != 0 and "--refine embeds toward" in err
     from codeseek.cli import build_parser
 
-    assert build_parser().parse_args(["watch", "--refine"]).refine
-    assert not build_parser().parse_args(["watch"]).refine
+    assert build_parser().parse_args(["watch", "--refine"]).refine is True
+    assert build_parser().parse_args(["watch", "--no-refine"]).refine is False
+    assert build_parser().parse_args(["watch"]).refine is None  # decided by size
+    assert build_parser().parse_args(["index", "--no-refine"]).refine is False
+
+
+def _source_bytes(repo: Path) -> int:
+    """The bytes of the files an index of ``repo`` parses, by os.stat (the reference),
+    over the files the scan lists."""
+    from codeseek.config import load_settings
+    from codeseek.scan import scan_repository
+
+    files = scan_repository(load_settings(repo)).files
+    assert files
+    return sum(os.stat(source.abs_path).st_size for source in files)
+
+
+def _write_toml(repo: Path, text: str) -> None:
+    (repo / "codeseek.toml").write_text(text, encoding="utf-8")
+
+
+def test_a_new_index_above_the_size_is_refined_by_default(sample_copy: Path) -> None:
+    size = _source_bytes(sample_copy)
+    _write_toml(sample_copy, f"refine_above_bytes = {size - 1}\n")  # one byte under
+    with open_index(sample_copy, create=True, backend="fake") as index:
+        refine, notice = index.choose_refinement()
+        assert refine and notice is not None
+        assert f"{size / 1e6:.1f} MB" in notice and "--no-refine" in notice
+        assert index.choose_refinement(False) == (False, None)  # --no-refine
+    _write_toml(sample_copy, f"refine_above_bytes = {size}\n")  # not above it
+    with open_index(sample_copy, create=True, backend="fake") as index:
+        assert index.choose_refinement() == (False, None)
+        assert index.choose_refinement(True) == (True, None)  # --refine
+
+
+def test_the_size_rule_leaves_existing_and_static_indexes_alone(sample_copy: Path) -> None:
+    _write_toml(sample_copy, "refine_above_bytes = 1\n")
+    with open_index(sample_copy, create=True, backend="fake", tier="static") as index:
+        assert index.choose_refinement() == (False, None)  # nothing slower to refine toward
+    with open_index(sample_copy, create=True, backend="fake") as index:
+        index.update()  # a full build: the index holds units now
+        assert index.choose_refinement() == (False, None)
+    _write_toml(sample_copy, "refine_above_bytes = 1\nrefine = false\n")
+    shutil.rmtree(sample_copy / ".codeseek")
+    with open_index(sample_copy, create=True, backend="fake") as index:
+        assert index.choose_refinement() == (False, None)  # codeseek.toml said no
+    _write_toml(sample_copy, "refine = true\n")
+    with open_index(sample_copy, create=True, backend="fake") as index:
+        assert index.choose_refinement() == (True, None)  # said yes, whatever the size
+
+
+@pytest.mark.parametrize("line, problem", [
+    ('refine = "yes"', "refine must be true or false"),
+    ("refine_above_bytes = 2.5", "refine_above_bytes must be a whole number"),
+    ("refine_above_bytes = 0", "refine_above_bytes must be positive"),
+])
+def test_refine_settings_in_codeseek_toml_are_checked(sample_copy: Path, line: str,
+                                                     problem: str) -> None:
+    _write_toml(sample_copy, line + "\n")
+    code, out, err = _run("index", str(sample_copy), "--backend", "fake", "-q")
+    assert code != 0 and out == ""
+    assert err.count("\n") == 1 and problem in err and "codeseek.toml" in err
+
+
+def test_cli_index_and_watch_refine_a_large_new_index_by_default(sample_copy: Path) -> None:
+    _write_toml(sample_copy, "refine_above_bytes = 1000\n")
+    code, out, err = _run("index", str(sample_copy), "--backend", "fake")
+    assert code == 0, err
+    assert "searchable first with the static tier" in err
+    units = json.loads(_run("status", str(sample_copy), "--json")[1])["units"]
+    assert f"refined {units} units with the full tier" in out
+    code, out, err = _run("index", str(sample_copy), "--backend", "fake")  # not new now
+    assert code == 0 and "refined" not in out and "searchable first" not in err
+
+    shutil.rmtree(sample_copy / ".codeseek")
+    code, out, err = _run("index", str(sample_copy), "--backend", "fake", "--no-refine")
+    assert code == 0 and "refined" not in out and "searchable first" not in err
+    status = json.loads(_run("status", str(sample_copy), "--json")[1])
+    assert status["tier"] == "full" and status.get("refinement") is None
+
+    import codeseek.daemon
+
+    shutil.rmtree(sample_copy / ".codeseek")
+    asked: list[bool] = []
+    with pytest.MonkeyPatch.context() as patch:
+        patch.setattr(codeseek.daemon, "run_foreground",
+                      lambda index, log, poll=False, refine=False: asked.append(refine))
+        assert _run("watch", str(sample_copy), "--backend", "fake")[0] == 0
+        assert _run("watch", str(sample_copy), "--backend", "fake", "--no-refine")[0] == 0
+    assert asked == [True, False]
 
 
 def test_refine_toward_the_static_tier_is_refused(sample_copy: Path) -> None:
@@ -541,4 +629,44 @@ def test_searches_mid_refinement_rank_as_designed(sample_copy: Path, how: str) -
         np.testing.assert_allclose(got[:half], [score for _, score in full][:half], atol=1e-6)
     finally:
         refine_module.fuse = real_fuse  # type: ignore[assignment]
+        index.close()
+
+
+def test_refined_units_static_cosines_equal_numpy_over_the_stored_rows(
+        sample_copy: Path) -> None:
+    """The static cosine of a refined candidate comes from the rows the searcher keeps
+    beside the full ones; reference: numpy's dot product over the static vectors read
+    straight from the store, after a batch and again after a change of the index."""
+    from codeseek.refine import RefiningSearcher
+
+    index = _started(sample_copy)
+    try:
+        index.refine(limit=40)
+        searcher = index.searcher()
+        assert isinstance(searcher, RefiningSearcher)
+
+        def check() -> None:
+            vector = searcher.query_vectors([QUERIES[1]])[0]
+            with searcher.lock.read():
+                searcher._reload()
+                refined = [int(label) for label in searcher._labels[: searcher._count]]
+                got = searcher._static_cosines(vector, refined)
+            labels, matrix = index.store.unit_vectors(searcher.model_id, searcher.vectors.dim,
+                                                      refined)
+            expected = dict(zip((int(label) for label in labels), matrix @ vector,
+                                strict=True))
+            assert refined and sorted(got) == sorted(expected) == sorted(refined)
+            np.testing.assert_allclose([got[u] for u in refined],
+                                       [expected[u] for u in refined], atol=1e-6)
+
+        check()
+        index.refine(limit=40)  # another batch: rows appended
+        check()
+        target = sample_copy / "python" / "kestrune" / "lanterns.py"
+        target.write_text('def count_teal_lanterns(street):\n    """Count the teal lanterns '
+                          'on a street."""\n    return len(street)\n', encoding="utf-8")
+        index.update()  # a new generation: every row read again
+        index.refine(limit=40)
+        check()
+    finally:
         index.close()

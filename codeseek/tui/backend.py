@@ -177,9 +177,11 @@ class LocalIndexer:
         return self._open(create=False)
 
     def update(self, progress: ProgressCallback) -> UpdateSummary:
-        """Build the index, or bring it up to date."""
+        """Build the index, or bring it up to date, with the full tier at once: every
+        index this UI opens shares one model, so it never builds searchable first
+        (``codeseek index`` and ``codeseek watch`` do, codeseek/refine.py)."""
         with self._open(create=True) as index:
-            return index.update(progress=progress)
+            return index.update(progress=progress, refine=False)
 
 
 # -- the neighbours -------------------------------------------------------------------
