@@ -31,8 +31,9 @@ MRR over the corpora; the shipped one stands unless beaten by more than TIE:
    question file (``tests/data/questions/``): plain against adapted on every
    protocol (docstring pools, whole index, name-blind, questions), the penalty and
    mix chosen, and whether the rules kept it. ``--corpus tune`` runs only this
-   section, on sample_repo and a subset of the standard library (the modules most
-   of the questions ask about, :data:`STDLIB_SUBSET`; ``--tune-stdlib whole``: all of it).
+   section, on sample_repo, Go pflag, Ruby thor and a subset of the standard library
+   (the modules most of the questions ask about, :data:`STDLIB_SUBSET`;
+   ``--tune-stdlib whole``: all of it).
 
 With ``--tiers`` it compares the embedding tiers (codeseek/tiers.py) instead: each
 tier's index of ``sample_repo/`` and of a small standard-library copy (the modules the
@@ -1021,6 +1022,13 @@ def main() -> None:
             section_tune("python standard library" if whole else
                          f"python standard library, {len(STDLIB_SUBSET)} modules", stdlib,
                          "stdlib", embedder, Path(scratch))
+            for language, questions in (("go", "pflag"), ("ruby", "thor")):
+                corpus = CORPORA[language]
+                try:
+                    section_tune(corpus.label, fetch(corpus), questions, embedder,
+                                 Path(scratch))
+                except CorpusUnavailable as exc:
+                    print(f"left out {corpus.label}: {exc.args[0]}")
             print(f"\n{time.perf_counter() - started:.0f} s")
             return
         cache = VectorCache(cache_dir / "vectors.npz", embedder.model_id, prune=False)
