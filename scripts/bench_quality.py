@@ -56,6 +56,7 @@ from __future__ import annotations
 import argparse
 import contextlib
 import hashlib
+import inspect
 import re
 import shlex
 import shutil
@@ -228,7 +229,8 @@ _SHIPPED_EMBED_TEXT = CodeUnit.embed_text  # the shipped text, before any patch 
 
 def module_doc(path: Path) -> str:
     """The doc of the module a file is: for Python its docstring (``ast.get_docstring``), for
-    Go the package comment (the ``//`` lines directly above the ``package`` clause), else ""
+    Go the package comment (the ``//`` lines or the ``/* */`` block directly above the
+    ``package`` clause), else ""
     (the other languages have no convention for a file's doc). "" when the file cannot be
     read."""
     import ast
@@ -244,9 +246,17 @@ def module_doc(path: Path) -> str:
             return ""
     if path.suffix == ".go":
         lines = data.decode("utf-8", "replace").splitlines()
-        at = next((i for i, line in enumerate(lines) if _GO_PACKAGE.match(line)), None)
+        at = next((i for i, line in enumerate(lines) if _GO_PACKAGE.match(line)), 0)
+        above = lines[:at]
+        if above and above[-1].rstrip().endswith("*/"):  # a /* */ block
+            start = next((i for i in range(len(above) - 1, -1, -1)
+                          if above[i].lstrip().startswith("/*")), None)
+            if start is None:
+                return ""
+            block = "\n".join(above[start:])
+            return inspect.cleandoc(block.strip().removeprefix("/*").removesuffix("*/"))
         comment: list[str] = []
-        for line in reversed(lines[:at] if at is not None else []):
+        for line in reversed(above):
             if not line.startswith("//"):
                 break
             comment.insert(0, line[2:].strip())
