@@ -10,7 +10,14 @@ codeseek makes, its figure on the training split (where the choice is made)
 and on the held-out split (what it is worth). A choice is the best mean training
 MRR over the corpora; the shipped one stands unless beaten by more than TIE:
 
-1. the unit text the model embeds (the documents have no doc: see codeseek/evaluate/);
+1. the unit text the model embeds (the documents have no doc: see codeseek/evaluate/),
+   among them the unit's module context: the words of its file's path on the first line
+   (``function copytree (copytree) in shutil``), the first sentence of its module's doc
+   (a Python module's docstring, a Go package comment; at most :data:`SUMMARY_CHARS`
+   characters, never told to a unit whose own doc holds it), or both. ``--corpus context``
+   runs only these against the shipped text: dense and served MRR on the docstrings, and
+   the question sets through real indexes built with each text (kept in the cache folder
+   beside those of 3c), chosen and reported as 3c is;
 2. the keyword side (fields, identifier splitting, stemming, stopwords);
 3. the fusion of the two (reciprocal rank fusion against scaled scores, weights),
    and how many candidates of each side it fuses; 3c: what the ranking does with a
@@ -48,7 +55,9 @@ embeds nothing; the first embeds the standard library about twice (minutes).
 
 Reproduce: ``.venv/bin/python scripts/bench_quality.py`` (``--tiers`` for the tiers;
 section 6 alone: ``--corpus tune``; stage 3c alone: ``--corpus nested``, 5 minutes once
-the cache holds the vectors; stage 3d alone: ``--corpus paths``, 3 to 4 minutes)
+the cache holds the vectors; stage 3d alone: ``--corpus paths``, 3 to 4 minutes; the
+module context of stage 1 alone: ``--corpus context``, about 16 minutes the first time,
+3 to 4 once the cache holds the vectors and the question indexes)
 """
 
 from __future__ import annotations
@@ -991,7 +1000,12 @@ def section_context(benches: Sequence[Bench], embedder: Embedder, cache: Path) -
     for name in CONTEXTS:
         nested_intervals(tables, benches, questions, name, SHIPPED_TEXT)
     kept = chosen if holds else SHIPPED_TEXT
-    print(f"to serve: {kept} (the training choice {'holds' if holds else 'falls'} on held-out)")
+    print(f"to serve by these figures: {kept} (the training choice "
+          f"{'holds' if holds else 'falls'} on held-out); the served CodeUnit.embed_text is "
+          f"this: {kept == SHIPPED_TEXT}")
+    if CONTEXTS.get(kept, (False, False))[0]:
+        print("  (path words in the embedded text change its content hash when a file is "
+              "renamed or moved: its units would be embedded again; see DEVELOPERS.md)")
 
 
 def section_served(bench: Bench, served: Served) -> None:
