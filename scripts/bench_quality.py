@@ -770,8 +770,7 @@ def asked_through_indexes(embedder: Embedder, cache: Path, rules: Sequence[str],
                                           corpus=len(known))
                     for half, asked in halves.items()}
 
-        with open_index(repo, index_dir=folder, create=True, embedder=embedder) as index:
-            index.update()
+        with current_index(repo, folder, embedder) as index:
             known = {(s.unit.path, s.unit.qualname) for s in index.store.iter_units()}
             figures[name] = {}
             try:
@@ -781,9 +780,7 @@ def asked_through_indexes(embedder: Embedder, cache: Path, rules: Sequence[str],
                         figures[name][rule] = figures_of(index, rule, known)
                         continue
                     own = folder.with_name(f"{folder.name}-{re.sub(r'[^a-z0-9]+', '-', rule)}")
-                    with embedding(text), open_index(repo, index_dir=own, create=True,
-                                                     embedder=embedder) as other:
-                        other.update()
+                    with embedding(text), current_index(repo, own, embedder) as other:
                         figures[name][rule] = figures_of(other, rule, known)
             finally:
                 if finish is not None:
@@ -797,6 +794,22 @@ def asked_through_indexes(embedder: Embedder, cache: Path, rules: Sequence[str],
             print(f"  {rule:<30} {train['hit@10']:.3f}  {train['mrr@10']:.4f} | "
                   f"{test['hit@10']:.3f}  {test['mrr@10']:.4f}")
     return figures
+
+
+@contextlib.contextmanager
+def current_index(repo: Path, folder: Path, embedder: Embedder) -> Iterator[Index]:
+    """The index of ``repo`` in ``folder``, brought up to date, every unit of it embedded
+    with ``CodeUnit.embed_text`` as it is now: an update reads again only the files that
+    changed, so an index kept from a run with another unit text is built again."""
+    for attempt in range(2):
+        with open_index(repo, index_dir=folder, create=True, embedder=embedder) as index:
+            index.update()
+            if attempt or all(s.content_hash == s.unit.content_hash
+                              for s in index.store.iter_units()):
+                yield index
+                return
+        log(f"{folder.name}: embedded with another unit text; built again")
+        shutil.rmtree(folder)
 
 
 @contextlib.contextmanager
