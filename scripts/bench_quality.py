@@ -10,7 +10,14 @@ codeseek makes, its figure on the training split (where the choice is made)
 and on the held-out split (what it is worth). A choice is the best mean training
 MRR over the corpora; the shipped one stands unless beaten by more than TIE:
 
-1. the unit text the model embeds (the documents have no doc: see codeseek/evaluate/);
+1. the unit text the model embeds (the documents have no doc: see codeseek/evaluate/),
+   among them the unit's module context: the words of its file's path on the first line
+   (``function copytree (copytree) in shutil``), the first sentence of its module's doc
+   (a Python module's docstring, a Go package comment; at most :data:`SUMMARY_CHARS`
+   characters, never told to a unit whose own doc holds it), or both. ``--corpus context``
+   runs only these against the shipped text: dense and served MRR on the docstrings, and
+   the question sets through real indexes built with each text (kept in the cache folder
+   beside those of 3c), chosen and reported as 3c is;
 2. the keyword side (fields, identifier splitting, stemming, stopwords);
 3. the fusion of the two (reciprocal rank fusion against scaled scores, weights),
    and how many candidates of each side it fuses; 3c: what the ranking does with a
@@ -49,13 +56,17 @@ embeds nothing; the first embeds the standard library about twice (minutes).
 
 Reproduce: ``.venv/bin/python scripts/bench_quality.py`` (``--tiers`` for the tiers;
 section 6 alone: ``--corpus tune``; stage 3c alone: ``--corpus nested``, 5 minutes once
-the cache holds the vectors; stage 3d alone: ``--corpus paths``, 3 to 4 minutes)
+the cache holds the vectors; stage 3d alone: ``--corpus paths``, 3 to 4 minutes; the
+module context of stage 1 alone: ``--corpus context``, about 16 minutes the first time,
+3 to 4 once the cache holds the vectors and the question indexes)
 """
 
 from __future__ import annotations
 
 import argparse
+import contextlib
 import hashlib
+import inspect
 import re
 import shlex
 import shutil
@@ -64,7 +75,7 @@ import sys
 import sysconfig
 import tempfile
 import time
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from dataclasses import dataclass, replace
 from pathlib import Path
 
@@ -125,7 +136,9 @@ from codeseek.units import (  # noqa: E402
     CodeUnit,
     code_words,
     lexical_codes,
+    path_words,
     split_identifier,
+    summarize_doc,
 )
 
 SMALL = 200  # a corpus with fewer held-out docstrings is also checked with all of them
@@ -215,6 +228,123 @@ def text_words_beyond(limit: int) -> Callable[[CodeUnit], str]:
     return text
 
 
+# -- module context (stage 1 candidates, ``--corpus context``) ---------------------------
+
+SUMMARY_CHARS = 100  # at most this much of a module doc's first sentence (the model reads 256
+# word pieces)
+_SENTENCE_END = re.compile(r"(?<=[.!?])\s")
+_GO_PACKAGE = re.compile(r"^package\s+\w+")
+_SHIPPED_EMBED_TEXT = CodeUnit.embed_text  # the shipped text, before any patch of a trial index
+
+
+def module_doc(path: Path) -> str:
+    """The doc of the module a file is: for Python its docstring (``ast.get_docstring``), for
+    Go the package comment (the ``//`` lines or the ``/* */`` block directly above the
+    ``package`` clause), else ""
+    (the other languages have no convention for a file's doc). "" when the file cannot be
+    read."""
+    import ast
+
+    try:
+        data = path.read_bytes()
+    except OSError:
+        return ""
+    if path.suffix in (".py", ".pyi"):
+        try:
+            return ast.get_docstring(ast.parse(data)) or ""
+        except (SyntaxError, ValueError, RecursionError, MemoryError):
+            return ""
+    if path.suffix == ".go":
+        lines = data.decode("utf-8", "replace").splitlines()
+        at = next((i for i, line in enumerate(lines) if _GO_PACKAGE.match(line)), 0)
+        above = lines[:at]
+        if above and above[-1].rstrip().endswith("*/"):  # a /* */ block
+            start = next((i for i in range(len(above) - 1, -1, -1)
+                          if above[i].lstrip().startswith("/*")), None)
+            if start is None:
+                return ""
+            block = "\n".join(above[start:])
+            return inspect.cleandoc(block.strip().removeprefix("/*").removesuffix("*/"))
+        comment: list[str] = []
+        for line in reversed(above):
+            if not line.startswith("//"):
+                break
+            comment.insert(0, line[2:].strip())
+        return "\n".join(comment)
+    return ""
+
+
+def first_sentence(doc: str, limit: int = SUMMARY_CHARS) -> str:
+    """A doc's first sentence (of its summary, :func:`codeseek.units.summarize_doc`), cut at
+    a word boundary to at most ``limit`` characters."""
+    sentence = _SENTENCE_END.split(summarize_doc(doc), maxsplit=1)[0].strip()
+    if len(sentence) > limit:
+        sentence = sentence[:limit].rsplit(" ", 1)[0]
+    return sentence
+
+
+def module_context(unit: CodeUnit, summary: str) -> str:
+    """The module-doc sentence a unit's text may carry: "" when the unit's own doc holds it
+    (a doc that is the module's doc must not be told to its own document)."""
+    own = " ".join(unit.doc.split())
+    if not summary or not own:
+        return summary
+    mine = first_sentence(unit.doc)
+    return "" if summary in own or (mine and mine in summary) else summary
+
+
+def summaries(repo: Path) -> Callable[[str], str]:
+    """path (relative to ``repo``) -> the first sentence of that file's module doc."""
+    memo: dict[str, str] = {}
+
+    def of(path: str) -> str:
+        if path not in memo:
+            memo[path] = first_sentence(module_doc(repo / path))
+        return memo[path]
+    return of
+
+
+def context_text(unit: CodeUnit, summary: str, paths: bool, module: bool) -> str:
+    """The shipped text with the unit's module context: the words of its file's path at the
+    end of the first line (``function copytree (copytree) in shutil``) and/or, on a line of
+    its own after it, ``summary`` (the module doc's first sentence)."""
+    head, newline, rest = _SHIPPED_EMBED_TEXT(unit).partition("\n")
+    if paths and (words := path_words(unit.path)):
+        head = f"{head} in {words}"
+    if module and summary:
+        head = f"{head}\n{summary}"
+    return head + newline + rest
+
+
+# bare unit -> its module-doc sentence, leak-guarded with the unit's own doc (Bench fills it)
+MODULE_CONTEXT: dict[CodeUnit, str] = {}
+
+
+def text_context(paths: bool, module: bool) -> Callable[[CodeUnit], str]:
+    """A stage-1 candidate: the shipped text with module context (:func:`context_text`)."""
+    def text(unit: CodeUnit) -> str:
+        return context_text(unit, MODULE_CONTEXT.get(unit, ""), paths, module)
+    return text
+
+
+def index_text(repo: Path, paths: bool, module: bool) -> Callable[[CodeUnit], str]:
+    """The same candidate as a real index of ``repo`` embeds it (units keep their docs)."""
+    of = summaries(repo)
+
+    def text(unit: CodeUnit) -> str:
+        return context_text(unit, module_context(unit, of(unit.path)) if module else "",
+                            paths, module)
+    return text
+
+
+# candidate -> (path words on the first line, module doc's first sentence)
+CONTEXTS: dict[str, tuple[bool, bool]] = {
+    "+ path words on the first line": (True, False),
+    "+ module doc's first sentence": (False, True),
+    "+ path words and module doc": (True, True),
+}
+
+
 REPRESENTATIONS: dict[str, Callable[[CodeUnit], str]] = {
     "name + code (before)": text_before,
     "name + signature + code words": text_words,
@@ -223,6 +353,7 @@ REPRESENTATIONS: dict[str, Callable[[CodeUnit], str]] = {
     "name + code, words from 800 chars": text_words_beyond(800),
     "name + code, words from 1600 chars": text_words_beyond(1600),
     "shipped (CodeUnit.embed_text)": text_shipped,
+    **{name: text_context(*flags) for name, flags in CONTEXTS.items()},
 }
 SHIPPED_TEXT = "shipped (CodeUnit.embed_text)"
 
@@ -366,6 +497,7 @@ class Bench:
     split: Split
     train_sample: int
     chooses: bool = True
+    repo: Path | None = None  # where the files are (for the module docs of stage 1)
 
     def __post_init__(self) -> None:
         self.selection = select_cases(self.units, self.split)
@@ -375,6 +507,11 @@ class Bench:
         take = min(self.train_sample, len(unique))
         self.train = [unique[i] for i in sorted(rng.choice(len(unique), take, replace=False))]
         self.bare = [without_doc(u) for u in self.units]
+        if self.repo is not None:
+            # the documents have no doc, so the context is guarded with the unit's own
+            of = summaries(self.repo)
+            MODULE_CONTEXT.update({bare: module_context(unit, of(unit.path))
+                                   for unit, bare in zip(self.units, self.bare, strict=True)})
         self.queries = self.encode([c.query for c in self.selection.cases], "queries")
         self.memo: dict[tuple[str, str], dict] = {}
         self.pools: list[object] = []
@@ -441,9 +578,9 @@ def choose_across(tables: dict[str, Table], benches: Sequence[Bench], shipped: s
     return best
 
 
-def representation_table(bench: Bench) -> Table:
+def representation_table(bench: Bench, names: Sequence[str] = tuple(REPRESENTATIONS)) -> Table:
     table: Table = {}
-    for name in REPRESENTATIONS:
+    for name in names:
         docs = bench.docs(name)
         sampler = bench.sampler(docs)
         row = tuple(dense_signals(cases, bench.qmatrix(cases), docs, sampler,
@@ -598,11 +735,15 @@ def question_corpora(cache: Path) -> list[tuple[str, Path, Path]]:
 
 def asked_through_indexes(embedder: Embedder, cache: Path, rules: Sequence[str],
                           prepare: Callable[[Index, str], Fusion], title: str,
-                          finish: Callable[[Index], None] | None = None
-                          ) -> dict[str, dict[str, dict]]:
+                          finish: Callable[[Index], None] | None = None,
+                          texts: Callable[[str, Path], Callable[[CodeUnit], str] | None]
+                          | None = None) -> dict[str, dict[str, dict]]:
     """Each question set asked through a real index (kept in the cache folder) under each
     rule, exactly as search serves it: ``prepare(index, rule)`` readies the index for a rule
-    and gives its fusion, ``finish(index)`` restores it. corpus -> rule -> half -> figures."""
+    and gives its fusion, ``finish(index)`` restores it. With ``texts``, ``texts(rule, repo)``
+    is the unit text a rule's index embeds instead of the shipped one (None: the shipped
+    index): such a rule is asked through an index of its own, built with that text.
+    corpus -> rule -> half -> figures."""
     from codeseek.evaluate import load_questions
     from codeseek.evaluate.questions import check_questions
     from codeseek.search import Searcher
@@ -612,32 +753,40 @@ def asked_through_indexes(embedder: Embedder, cache: Path, rules: Sequence[str],
         # one index folder per corpus and repository path (sample_repo of each worktree)
         where = hashlib.sha256(str(repo.resolve()).encode()).hexdigest()[:8]
         folder = cache / "nested" / f"{re.sub(r'[^A-Za-z0-9]+', '-', name)}-{where}"
-        with open_index(repo, index_dir=folder, create=True, embedder=embedder) as index:
-            index.update()
+        questions = load_questions(path)
+        halves = {half: [q for q in questions if question_half(q.text) == half]
+                  for half in ("training", "held-out")}
+
+        def figures_of(index: Index, rule: str, known: set[tuple[str, str]],
+                       path: Path = path, halves: dict = halves) -> dict:
             plain = index.searcher()
+            trial = Searcher(index.store, plain.vectors, plain.embedder, plain.model_id,
+                             index.lock, fusion=prepare(index, rule))
+
+            def ask(texts: list[str], depth: int) -> list[list[tuple[str, str]]]:
+                return [[(h.path, h.qualname) for h in hits]
+                        for hits in trial.search_many(texts, depth)]
+
+            return {half: check_questions(asked, ask, known, source=path.name,
+                                          corpus=len(known))
+                    for half, asked in halves.items()}
+
+        with current_index(repo, folder, embedder) as index:
             known = {(s.unit.path, s.unit.qualname) for s in index.store.iter_units()}
-            questions = load_questions(path)
-            halves = {half: [q for q in questions if question_half(q.text) == half]
-                      for half in ("training", "held-out")}
             figures[name] = {}
             try:
                 for rule in rules:
-                    trial = Searcher(index.store, plain.vectors, plain.embedder,
-                                     plain.model_id, index.lock, fusion=prepare(index, rule))
-
-                    def ask(texts: list[str], depth: int, trial: Searcher = trial
-                            ) -> list[list[tuple[str, str]]]:
-                        return [[(h.path, h.qualname) for h in hits]
-                                for hits in trial.search_many(texts, depth)]
-
-                    figures[name][rule] = {
-                        half: check_questions(asked, ask, known, source=path.name,
-                                              corpus=len(known))
-                        for half, asked in halves.items()}
+                    text = texts(rule, repo) if texts is not None else None
+                    if text is None:
+                        figures[name][rule] = figures_of(index, rule, known)
+                        continue
+                    own = folder.with_name(f"{folder.name}-{re.sub(r'[^a-z0-9]+', '-', rule)}")
+                    with embedding(text), current_index(repo, own, embedder) as other:
+                        figures[name][rule] = figures_of(other, rule, known)
             finally:
                 if finish is not None:
                     finish(index)
-            counts = {half: len(asked) for half, asked in halves.items()}
+        counts = {half: len(asked) for half, asked in halves.items()}
         print(f"\n[{name}] {title}: {path.name} through a real index "
               f"({len(known)} units), questions training {counts['training']} | held-out "
               f"{counts['held-out']}: hit@10 and MRR@10")
@@ -646,6 +795,34 @@ def asked_through_indexes(embedder: Embedder, cache: Path, rules: Sequence[str],
             print(f"  {rule:<30} {train['hit@10']:.3f}  {train['mrr@10']:.4f} | "
                   f"{test['hit@10']:.3f}  {test['mrr@10']:.4f}")
     return figures
+
+
+@contextlib.contextmanager
+def current_index(repo: Path, folder: Path, embedder: Embedder) -> Iterator[Index]:
+    """The index of ``repo`` in ``folder``, brought up to date, every unit of it embedded
+    with ``CodeUnit.embed_text`` as it is now: an update reads again only the files that
+    changed, so an index kept from a run with another unit text is built again."""
+    for attempt in range(2):
+        with open_index(repo, index_dir=folder, create=True, embedder=embedder) as index:
+            index.update()
+            if attempt or all(s.content_hash == s.unit.content_hash
+                              for s in index.store.iter_units()):
+                yield index
+                return
+        log(f"{folder.name}: embedded with another unit text; built again")
+        shutil.rmtree(folder)
+
+
+@contextlib.contextmanager
+def embedding(text: Callable[[CodeUnit], str]) -> Iterator[None]:
+    """``CodeUnit.embed_text`` is ``text`` meanwhile (what an index built then embeds, and
+    the content hashes it compares)."""
+    original = CodeUnit.embed_text
+    CodeUnit.embed_text = text  # type: ignore[method-assign]
+    try:
+        yield
+    finally:
+        CodeUnit.embed_text = original  # type: ignore[method-assign]
 
 
 def nested_questions(embedder: Embedder, cache: Path) -> dict[str, dict[str, dict]]:
@@ -787,6 +964,62 @@ def section_paths(benches: Sequence[Bench], served: dict[str, Served], embedder:
     print(f"to serve: {kept} (the training choice {'holds' if holds else 'falls'} on held-out)"
           f"; the served placement (PATH_WORDS_IN = {PATH_WORDS_IN!r}) is this: "
           f"{kept == SERVED_PATH}")
+
+
+def context_questions(embedder: Embedder, cache: Path) -> dict[str, dict[str, dict]]:
+    """Each question set asked through a real index per unit text: the shipped one (the index
+    stage 3c keeps) and each module-context candidate (an index of its own, built with it)."""
+    def texts(rule: str, repo: Path) -> Callable[[CodeUnit], str] | None:
+        return index_text(repo, *CONTEXTS[rule]) if rule in CONTEXTS else None
+
+    return asked_through_indexes(embedder, cache, [SHIPPED_TEXT, *CONTEXTS],
+                                 lambda index, rule: DEFAULT_FUSION, "1. module context",
+                                 texts=texts)
+
+
+def withheld(bench: Bench) -> int:
+    """How many of a corpus's units are in a file with a module doc but are not told it
+    (their own doc holds it)."""
+    if bench.repo is None:
+        return 0
+    of = summaries(bench.repo)
+    return sum(1 for unit, bare in zip(bench.units, bench.bare, strict=True)
+               if of(unit.path) and not MODULE_CONTEXT.get(bare))
+
+
+def section_context(benches: Sequence[Bench], embedder: Embedder, cache: Path) -> None:
+    """Stage 1's module-context candidates against the shipped text: dense (exact) and
+    served MRR on the docstrings, MRR@10 on the question sets through real indexes; chosen
+    on training, with the held-out differences to the shipped text."""
+    names = [SHIPPED_TEXT, *CONTEXTS]
+    for bench in benches:
+        told = [MODULE_CONTEXT.get(u, "") for u in bench.bare]
+        files = {u.path for u, sentence in zip(bench.bare, told, strict=True) if sentence}
+        print(f"\n[{bench.name}] {sum(map(bool, told))} of {len(told)} units told a module "
+              f"doc's first sentence ({len(files)} files; withheld from "
+              f"{withheld(bench)} units whose own doc holds it)")
+        representation_table(bench, names)
+    tables: dict[str, Table] = {}
+    for bench in benches:
+        tables[bench.name] = {}
+        for name in names:
+            served = served_signals(bench, name, next(iter(KEYWORDS)))
+            tables[bench.name][name] = (fusion_ranks(served.train, DEFAULT_FUSION),
+                                        fusion_ranks(served.test, DEFAULT_FUSION))
+        print_table(bench, "1. module context: served MRR", tables[bench.name], recall=True)
+    questions = context_questions(embedder, cache)
+    chosen, holds = choose_rule(tables, benches, questions, names, SHIPPED_TEXT, SHIPPED_TEXT,
+                                "1. module context")
+    print("every candidate against the shipped text, held-out:")
+    for name in CONTEXTS:
+        nested_intervals(tables, benches, questions, name, SHIPPED_TEXT)
+    kept = chosen if holds else SHIPPED_TEXT
+    print(f"to serve by these figures: {kept} (the training choice "
+          f"{'holds' if holds else 'falls'} on held-out); the served CodeUnit.embed_text is "
+          f"this: {kept == SHIPPED_TEXT}")
+    if CONTEXTS.get(kept, (False, False))[0]:
+        print("  (path words in the embedded text change its content hash when a file is "
+              "renamed or moved: its units would be embedded again; see DEVELOPERS.md)")
 
 
 def section_served(bench: Bench, served: Served) -> None:
@@ -983,9 +1216,11 @@ def main() -> None:
     parser.add_argument("--train-sample", type=int, default=1500,
                         help="training pairs used to choose the keyword side and the fusion")
     parser.add_argument("--corpus", choices=("all", "stdlib", "sample", "packaged", "tune",
-                                             "nested", "paths"), default="all",
+                                             "nested", "paths", "context"),
+                        default="all",
                         help="the corpora (nested: every one, only stage 3c; paths: every "
-                             "one, only stage 3d)")
+                             "one, only stage 3d; context: every one, only stage 1's "
+                             "module-context candidates)")
     parser.add_argument("--tiers", action="store_true",
                         help="compare the embedding tiers on sample_repo and a small "
                              "standard-library copy instead")
@@ -1033,19 +1268,23 @@ def main() -> None:
             return
         cache = VectorCache(cache_dir / "vectors.npz", embedder.model_id, prune=False)
         corpora: list[tuple[str, Path, bool]] = []
-        if args.corpus in ("all", "stdlib", "nested", "paths"):
+        if args.corpus in ("all", "stdlib", "nested", "paths", "context"):
             corpora.append(("python standard library", copy_stdlib(Path(scratch) / "stdlib"),
                             True))
-        if args.corpus in ("all", "sample", "nested", "paths"):
+        if args.corpus in ("all", "sample", "nested", "paths", "context"):
             corpora.append(("sample_repo", PROJECT / "sample_repo", True))
-        if args.corpus in ("all", "packaged", "nested", "paths"):
+        if args.corpus in ("all", "packaged", "nested", "paths", "context"):
             corpora.extend(packaged_corpora())
         # a corpus too small to split is held out whole (it takes no part in the choices)
         benches = [Bench(name, units_of(repo), embedder, cache,
-                         Split() if chooses else Split(1.0), args.train_sample, chooses)
+                         Split() if chooses else Split(1.0), args.train_sample, chooses, repo)
                    for name, repo, chooses in corpora]
         choosing = [b for b in benches if b.chooses]
-        if args.corpus in ("nested", "paths"):
+        if args.corpus == "context":
+            for bench in choosing:
+                bench.chooses = len(bench.train) >= CHOOSING
+            section_context([b for b in choosing if b.chooses], embedder, cache_dir)
+        elif args.corpus in ("nested", "paths"):
             run_nested(choosing, embedder, cache_dir, paths=args.corpus == "paths")
         else:
             run(choosing, [b for b in benches if not b.chooses], (embedder, cache_dir))
